@@ -1,0 +1,63 @@
+"""Typed errors, each knowing where it happened; the CLI maps them to messages and exit codes in one place."""
+
+from __future__ import annotations
+
+EXIT_PASS = 0
+EXIT_BLOCK = 1
+EXIT_USAGE = 2
+EXIT_UNVERIFIED = 3
+
+
+class VerifierError(Exception):
+    """Base of every error the gate reports to a user; ``exit_code`` says how the CLI ends."""
+
+    exit_code = EXIT_USAGE
+
+    def __init__(self, message: str, hint: str | None = None) -> None:
+        super().__init__(message)
+        self.message = message
+        self.hint = hint
+
+    def __str__(self) -> str:
+        return self.message if not self.hint else f"{self.message}\n  hint: {self.hint}"
+
+
+class UsageError(VerifierError):
+    """The command line asked for something that cannot be done (bad revision, missing file)."""
+
+
+class GitError(VerifierError):
+    """A git command failed; carries the command and git's own message."""
+
+    def __init__(self, args: list[str], stderr: str, hint: str | None = None) -> None:
+        super().__init__(f"git {' '.join(args)} failed: {stderr.strip() or 'no message'}", hint)
+        self.git_args = args
+        self.stderr = stderr
+
+
+class PolicyError(VerifierError):
+    """A policy file is broken; knows the file (or revision:file), line and key."""
+
+    def __init__(self, source: str, line: int | None, key: str | None, problem: str) -> None:
+        where = source if line is None else f"{source}:{line}"
+        what = f"key '{key}': {problem}" if key else problem
+        super().__init__(f"{where}: {what}")
+        self.source = source
+        self.line = line
+        self.key = key
+        self.problem = problem
+
+
+class CannotVerify(VerifierError):
+    """The gate could not reach a verdict (no sandbox, timeout, crash); it never passes by default."""
+
+    exit_code = EXIT_UNVERIFIED
+
+
+class SandboxUnavailable(CannotVerify):
+    """No requested sandbox backend works here; ``tried`` lists each backend with the reason it failed."""
+
+    def __init__(self, tried: list[tuple[str, str]], hint: str | None = None) -> None:
+        lines = "; ".join(f"{name}: {reason}" for name, reason in tried)
+        super().__init__(f"no sandbox could be started ({lines})", hint)
+        self.tried = tried

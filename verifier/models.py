@@ -1,0 +1,254 @@
+"""The plain data that flows between the pipeline's stages, each type defined once.
+
+revision spec -> Change -> Provenance -> Policy -> Selection -> SandboxResult -> RunResult
+-> Finding -> Report. Every type is a frozen dataclass of plain values, so a stage can be tested
+on data alone and every boundary can be serialised (see :func:`to_plain`).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any, Literal
+
+INDEX = "index"  # the "head" of a --staged check: the index, which has no commit yet
+
+ChangeKind = Literal["range", "commit", "staged"]
+FileStatus = Literal["added", "modified", "deleted", "renamed", "copied", "type-changed"]
+Severity = Literal["block", "warn", "info", "error"]
+Verdict = Literal["pass", "warn", "block", "error"]
+RuleSetting = Literal["block", "warn", "off"]
+
+
+@dataclass(frozen=True)
+class Commit:
+    """One commit of the change (or the pending commit of a --staged check, sha ``index``)."""
+
+    sha: str
+    parents: tuple[str, ...]
+    author: str
+    committer: str
+    message: str
+
+
+@dataclass(frozen=True)
+class FileChange:
+    """One file of the final diff from base to head; line numbers are 1-based."""
+
+    path: str  # at head; for a deletion, the deleted path
+    old_path: str | None  # at base; None for an added file
+    status: FileStatus
+    binary: bool = False
+    old_mode: str | None = None
+    new_mode: str | None = None
+    added_lines: tuple[int, ...] = ()  # numbers in the head version
+    removed_lines: tuple[int, ...] = ()  # numbers in the base version
+
+
+@dataclass(frozen=True)
+class Change:
+    """What changed: the base and head revisions, the commits between them and the final diff."""
+
+    spec: str
+    kind: ChangeKind
+    base: str | None  # None: the empty tree (a root commit, or --staged in a repository with no commit)
+    head: str  # a commit sha, or INDEX
+    commits: tuple[Commit, ...]
+    files: tuple[FileChange, ...]
+
+    def file(self, path: str) -> FileChange | None:
+        return next((f for f in self.files if f.path == path), None)
+
+
+@dataclass(frozen=True)
+class MachineMark:
+    """What a commit's trailers say about who wrote it: the agent, and the paths the mark covers."""
+
+    agent: str
+    scope: tuple[str, ...] = ()  # path globs; empty means the whole commit
+
+
+@dataclass(frozen=True)
+class Provenance:
+    """Which added lines of the final diff a model wrote, and which commit introduced each."""
+
+    machine_lines: Mapping[str, tuple[int, ...]]
+    line_commits: Mapping[str, Mapping[int, str]]  # path -> head line -> introducing commit sha
+    marks: Mapping[str, MachineMark]  # commit sha -> its mark, for the machine-written commits only
+
+    @property
+    def machine_line_count(self) -> int:
+        return sum(len(lines) for lines in self.machine_lines.values())
+
+    @property
+    def agents(self) -> tuple[str, ...]:
+        return tuple(sorted({mark.agent for mark in self.marks.values()}))
+
+
+@dataclass(frozen=True)
+class Limits:
+    """Resource limits of one sandboxed run."""
+
+    wall_seconds: float = 600.0
+    cpu_seconds: int = 600
+    memory_mb: int = 2048
+    processes: int = 256
+    output_bytes: int = 1_000_000
+    file_size_mb: int = 64
+    workspace_mb: int = 1024
+    tmp_mb: int = 256
+
+
+@dataclass(frozen=True)
+class Policy:
+    """The trusted policy that judges a change (read from the base revision, or the shipped default)."""
+
+    source: str
+    coverage_threshold: float = 90.0
+    test_paths: tuple[str, ...] = ()
+    pytest_args: tuple[str, ...] = ()
+    python_path: tuple[str, ...] = (".", "src")
+    limits: Limits = field(default_factory=Limits)
+    allow_process_sandbox: bool = False
+    rules: Mapping[str, RuleSetting] = field(default_factory=dict)
+
+    def setting(self, rule_id: str, default: RuleSetting) -> RuleSetting:
+        return self.rules.get(rule_id, default)
+
+
+@dataclass(frozen=True)
+class Selection:
+    """Which tests to run and why; an empty ``node_ids`` with ``whole_suite`` runs everything."""
+
+    whole_suite: bool
+    node_ids: tuple[str, ...] = ()
+    reason: str = "all tests run"
+
+
+@dataclass(frozen=True)
+class SandboxRequest:
+    """What a sandbox backend runs: a Python command in a copy of ``tree``, limited and scrubbed."""
+
+    tree: str  # host folder holding the materialised tree; the backend copies or mounts it as the workspace
+    python_args: tuple[str, ...]  # run as ``<the backend's python> *python_args`` with cwd = the workspace
+    env: Mapping[str, str]
+    limits: Limits
+    collect: tuple[str, ...]  # workspace-relative files to bring back
+
+
+@dataclass(frozen=True)
+class SandboxResult:
+    """What came back from a sandboxed run: status, capped output, collected files, resource facts."""
+
+    backend: str
+    isolation: str  # one line: what this backend isolates
+    exit_status: int | None  # None when killed by a signal or never started
+    signal: int | None
+    timed_out: bool
+    output: str
+    output_truncated: bool
+    files: Mapping[str, bytes]
+    wall_seconds: float
+    cpu_seconds: float = 0.0
+    max_rss_kb: int = 0
+    limit_hit: str | None = None  # "wall", "output", "memory", "processes", "file-size" when known
+
+
+@dataclass(frozen=True)
+class TestOutcome:
+    """One test's result, keyed by its pytest node id."""
+
+    node_id: str
+    outcome: Literal["passed", "failed", "error", "skipped"]
+    message: str = ""
+    duration: float = 0.0
+
+
+@dataclass(frozen=True)
+class FileCoverage:
+    """coverage.py's measurement of one file: executed and missing statements (first lines)."""
+
+    path: str
+    executed: frozenset[int]
+    missing: frozenset[int]
+    excluded: frozenset[int] = frozenset()
+    contexts: Mapping[int, tuple[str, ...]] = field(default_factory=dict)
+
+
+RunStatus = Literal["completed", "timeout", "crashed", "collection-error", "no-tests", "harness-error"]
+
+
+@dataclass(frozen=True)
+class RunResult:
+    """The test run, read from the files the harness wrote (never scraped from the console)."""
+
+    status: RunStatus
+    backend: str
+    isolation: str
+    pytest_exit: int | None
+    tests: tuple[TestOutcome, ...]
+    coverage: Mapping[str, FileCoverage]
+    collection_errors: tuple[str, ...] = ()
+    output_tail: str = ""
+    wall_seconds: float = 0.0
+    limit_hit: str | None = None
+
+    def count(self, outcome: str) -> int:
+        return sum(1 for t in self.tests if t.outcome == outcome)
+
+
+@dataclass(frozen=True)
+class Finding:
+    """One thing a rule found; ``path`` and ``line`` are None for change-wide findings."""
+
+    rule: str
+    severity: Severity
+    message: str
+    path: str | None = None
+    line: int | None = None
+    details: Mapping[str, Any] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class CoverageSummary:
+    """Coverage of the executable machine-written lines (coverage.py's statements)."""
+
+    executable: int
+    covered: int
+    uncovered: Mapping[str, tuple[int, ...]]
+    threshold: float
+
+    @property
+    def percent(self) -> float | None:
+        return None if self.executable == 0 else round(100.0 * self.covered / self.executable, 2)
+
+
+@dataclass(frozen=True)
+class Report:
+    """Everything the gate concluded about one change; the reporters only format this."""
+
+    verdict: Verdict
+    change: Change
+    provenance: Provenance
+    policy_source: str
+    run: RunResult | None
+    coverage: CoverageSummary | None
+    findings: tuple[Finding, ...]
+    sources: Mapping[str, Mapping[int, str]] = field(default_factory=dict)  # path -> line -> text, for display
+    notes: tuple[str, ...] = ()  # plain facts the reader should see (e.g. "the process sandbox isolates nothing")
+
+
+def to_plain(value: Any) -> Any:
+    """Turn nested dataclasses, mappings, tuples and sets into JSON-ready plain values."""
+    if dataclasses.is_dataclass(value) and not isinstance(value, type):
+        return {f.name: to_plain(getattr(value, f.name)) for f in dataclasses.fields(value)}
+    if isinstance(value, Mapping):
+        return {str(k): to_plain(v) for k, v in value.items()}
+    if isinstance(value, (frozenset, set)):
+        return sorted(to_plain(v) for v in value)
+    if isinstance(value, (list, tuple)):
+        return [to_plain(v) for v in value]
+    if isinstance(value, bytes):
+        return value.decode("utf-8", "replace")
+    return value
