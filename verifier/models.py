@@ -106,6 +106,7 @@ class Policy:
 
     source: str
     coverage_threshold: float = 90.0
+    coverage_exclude: tuple[str, ...] = ()
     test_paths: tuple[str, ...] = ()
     pytest_args: tuple[str, ...] = ()
     python_path: tuple[str, ...] = (".", "src")

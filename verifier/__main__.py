@@ -1,0 +1,7 @@
+"""``python -m verifier``: the same as the ``verifier`` command."""
+
+import sys
+
+from verifier.cli import main
+
+sys.exit(main())

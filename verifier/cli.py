@@ -1,0 +1,191 @@
+"""The command line: a thin argparse layer over :func:`verifier.pipeline.verify` and friends.
+
+Errors are mapped to messages and exit codes here, in one place: 0 pass or warn, 1 block, 2 usage or
+policy error, 3 could not verify. Imports are lazy: ``check --staged`` on a message without the
+``Model-Written`` trailer (the commit hook's common case) returns before anything heavy is imported.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+
+from verifier.errors import EXIT_UNVERIFIED, UsageError, VerifierError
+
+SANDBOX_CHOICES = ("auto", "docker", "namespace", "process")
+FORMAT_SUFFIX = {"text": "txt", "json": "json"}
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="verifier", description="A test-driven gate for machine-written patches.")
+    parser.add_argument("-C", dest="repo", default=".", help="run as if started in this folder")
+    commands = parser.add_subparsers(dest="command", required=True)
+
+    check = commands.add_parser("check", help="verify a change: A..B, one commit, or --staged")
+    check.add_argument("spec", nargs="?", help="A..B, a commit, or nothing (@{upstream}..HEAD, else HEAD)")
+    check.add_argument("--staged", action="store_true", help="check the index against HEAD (a commit hook)")
+    check.add_argument("--message-file", type=Path, help="with --staged: the pending commit message")
+    check.add_argument("--sandbox", choices=SANDBOX_CHOICES, default="auto", help="where the tests run")
+    check.add_argument("--format", action="append", choices=tuple(FORMAT_SUFFIX), help="output format (repeatable)")
+    check.add_argument("--output", type=Path, help="write the report here (a folder when several formats)")
+    check.add_argument("--quiet", action="store_true", help="print only the verdict line and findings")
+
+    rules = commands.add_parser("rules", help="list the rules, or explain one")
+    rules.add_argument("rule", nargs="?", help="a rule id to explain")
+
+    policy = commands.add_parser("policy", help="check a policy file")
+    policy.add_argument("action", choices=("check",))
+    policy.add_argument("file", nargs="?", type=Path, default=Path("verifier.yaml"))
+
+    demo = commands.add_parser("demo", help="build a demo repository and run the gate on it")
+    demo.add_argument("dir", nargs="?", type=Path, help="where to build it (default: a new temporary folder)")
+    demo.add_argument("--sandbox", choices=SANDBOX_CHOICES, default="auto")
+
+    sandbox = commands.add_parser("sandbox", help="sandbox tools")
+    sandbox.add_argument("action", choices=("doctor",))
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    try:
+        return _dispatch(args)
+    except VerifierError as error:
+        print(f"verifier: {error}", file=sys.stderr)
+        _write_error_report(args, str(error), error.exit_code)
+        return error.exit_code
+    except KeyboardInterrupt:
+        print("verifier: interrupted; nothing was verified", file=sys.stderr)
+        return 130
+    except Exception as error:  # fail closed: an internal error is never a pass
+        if os.environ.get("VERIFIER_DEBUG"):
+            raise
+        print(f"verifier: internal error: {type(error).__name__}: {error} "
+              "(set VERIFIER_DEBUG=1 for the traceback)", file=sys.stderr)
+        return EXIT_UNVERIFIED
+
+
+def _dispatch(args: argparse.Namespace) -> int:
+    handlers = {"check": _check, "rules": _rules, "policy": _policy, "demo": _demo, "sandbox": _sandbox}
+    return handlers[args.command](args)
+
+
+def _check(args: argparse.Namespace) -> int:
+    message = _read_message(args)
+    if args.staged and not _has_machine_trailer(message):
+        if not args.quiet:
+            print("verifier: no Model-Written trailer in the message; nothing to verify")
+        return 0
+    from verifier.change import RevisionSpec
+    from verifier.pipeline import Options, verify
+    from verifier.verdict import EXIT_CODES
+
+    spec = RevisionSpec(text=args.spec, staged=args.staged, message=message)
+    progress = None if args.quiet else (lambda text: print(f"verifier: {text}", file=sys.stderr))
+    report = verify(args.repo, spec, Options(sandbox=args.sandbox, progress=progress))
+    _emit(report, args)
+    return EXIT_CODES[report.verdict]
+
+
+def _read_message(args: argparse.Namespace) -> str:
+    if args.message_file is None:
+        if args.staged:
+            raise UsageError("--staged needs --message-file", hint="pass the pending message, as a commit-msg hook has")
+        return ""
+    if not args.staged:
+        raise UsageError("--message-file goes with --staged")
+    try:
+        return args.message_file.read_text(encoding="utf-8", errors="replace")
+    except OSError as error:
+        raise UsageError(f"cannot read the message file {args.message_file}: {error.strerror}") from error
+
+
+def _has_machine_trailer(message: str) -> bool:
+    from verifier.trailers import machine_mark
+
+    return machine_mark(message) is not None
+
+
+def _emit(report, args: argparse.Namespace) -> None:  # type: ignore[no-untyped-def]
+    from verifier.report import render
+
+    formats = args.format or ["text"]
+    if not args.quiet or report.verdict != "pass":
+        colour = sys.stdout.isatty() and "NO_COLOR" not in os.environ
+        print(render(report, "text", colour=colour), end="")
+    if args.output is None:
+        if formats != ["text"]:
+            for fmt in formats:
+                if fmt != "text":
+                    print(render(report, fmt), end="")
+        return
+    for fmt, target in _targets(args.output, formats):
+        target.parent.mkdir(parents=True, exist_ok=True)
+        target.write_text(render(report, fmt), encoding="utf-8")
+
+
+def _targets(output: Path, formats: list[str]) -> list[tuple[str, Path]]:
+    if len(formats) == 1:
+        return [(formats[0], output)]
+    return [(fmt, output / f"report.{FORMAT_SUFFIX[fmt]}") for fmt in formats]
+
+
+def _write_error_report(args: argparse.Namespace, message: str, exit_code: int) -> None:
+    """Even when the gate stops early, a CI step reading the JSON report finds the reason there."""
+    if getattr(args, "command", None) != "check" or args.output is None or "json" not in (args.format or []):
+        return
+    import json
+
+    from verifier.report.jsonfmt import error_dict
+
+    target = dict(_targets(args.output, args.format))["json"]
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        target.write_text(json.dumps(error_dict(message, exit_code), indent=2) + "\n", encoding="utf-8")
+    except OSError:
+        pass
+
+
+def _rules(args: argparse.Namespace) -> int:
+    from verifier.rules import load_all
+
+    registry = load_all()
+    if args.rule is None:
+        for rule in registry.values():
+            print(f"{rule.id:<22} {rule.default:<6} {rule.stage:<8} {rule.summary}")
+        return 0
+    rule = registry.get(args.rule)
+    if rule is None:
+        raise UsageError(f"no rule '{args.rule}'", hint="'verifier rules' lists them")
+    fixed = " (cannot be switched off)" if rule.fixed else ""
+    print(f"{rule.id}: {rule.summary}\ndefault: {rule.default}{fixed}; stage: {rule.stage}\n\n{rule.explanation}")
+    return 0
+
+
+def _policy(args: argparse.Namespace) -> int:
+    from verifier.policy import load_policy_file
+
+    policy = load_policy_file(args.file)
+    print(f"{args.file}: valid (coverage threshold {policy.coverage_threshold:g}%, "
+          f"wall limit {policy.limits.wall_seconds:g}s)")
+    return 0
+
+
+def _demo(args: argparse.Namespace) -> int:
+    from verifier.demo import run_demo
+
+    return run_demo(args.dir, sandbox=args.sandbox)
+
+
+def _sandbox(args: argparse.Namespace) -> int:
+    from verifier.doctor import doctor
+
+    return doctor()
+
+
+if __name__ == "__main__":  # pragma: no cover - python -m verifier.cli
+    sys.exit(main())
+

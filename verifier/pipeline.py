@@ -1,0 +1,126 @@
+"""The gate, end to end: ``verify(repo, spec, options) -> Report``.
+
+Reading this module top to bottom follows one change from git to the verdict:
+change -> provenance -> policy -> static rules -> selection -> sandbox -> dynamic rules -> verdict.
+Side effects stay at the edges: git is only read, and the only files written are in a temporary folder
+outside the repository, removed in every case.
+"""
+
+from __future__ import annotations
+
+import shutil
+import tempfile
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+
+from verifier.change import RevisionSpec, read_change
+from verifier.gitio import Git
+from verifier.models import INDEX, Change, CoverageSummary, Finding, Policy, Provenance, Report, RunResult, Selection
+from verifier.policy import load_policy
+from verifier.provenance import attribute
+from verifier.verdict import decide
+
+Progress = Callable[[str], None]
+
+
+@dataclass(frozen=True)
+class Options:
+    """How to run the gate."""
+
+    sandbox: str = "auto"  # auto | docker | namespace | process
+    progress: Progress | None = None
+
+
+def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None) -> Report:
+    """Judge the change ``spec`` of the repository at ``repo``."""
+    options = options or Options()
+    say = options.progress or (lambda _message: None)
+    git = Git(Git(repo).toplevel())
+    change = read_change(git, spec)
+    provenance = attribute(git, change)
+    policy = load_policy(git, change.base)
+    if not provenance.machine_lines:
+        return _report(change, provenance, policy, None, [], {}, notes=("no machine-written lines to verify",))
+    sources = _head_sources(git, change, provenance)
+    from verifier.rules import RuleContext, apply_rules
+
+    context = RuleContext(change, provenance, policy, sources)
+    findings = apply_rules("static", context)
+    say(f"{provenance.machine_line_count} machine-written lines in {len(provenance.machine_lines)} files")
+    run = _run_tests(git, change, policy, Selection(whole_suite=True), options, say)
+    from verifier.measure import summarise_coverage
+
+    coverage = summarise_coverage(
+        provenance.machine_lines, run.coverage, sources, policy.coverage_threshold, policy.coverage_exclude
+    )
+    dynamic = RuleContext(change, provenance, policy, sources, run, coverage)
+    findings += apply_rules("dynamic", dynamic)
+    notes = _sandbox_notes(run)
+    return _report(change, provenance, policy, run, findings, sources, coverage=coverage, notes=notes)
+
+
+def _head_sources(git: Git, change: Change, provenance: Provenance) -> dict[str, str]:
+    """The head text of every file with machine-written lines (for rules and for display)."""
+    rev = None if change.head == INDEX else change.head
+    sources = {}
+    for path in provenance.machine_lines:
+        data = git.show_file(rev, path)
+        if data is not None:
+            sources[path] = data.decode("utf-8", "replace")
+    return sources
+
+
+def _run_tests(
+    git: Git, change: Change, policy: Policy, selection: Selection, options: Options, say: Progress
+) -> RunResult:
+    """Materialise the head tree outside the repository and run the tests there, in the sandbox."""
+    from verifier import sandbox, testrun
+
+    backend = sandbox.choose(options.sandbox, policy.allow_process_sandbox or options.sandbox == "process")
+    workdir = Path(tempfile.mkdtemp(prefix="verifier-tree-"))
+    try:
+        tree = workdir / "tree"
+        if change.head == INDEX:
+            git.export_index(tree)
+        else:
+            git.export_commit(change.head, tree)
+        request = testrun.prepare(tree, policy, selection)
+        say(f"running the tests in the {backend.name} sandbox")
+        return testrun.read_run(backend.run(request))
+    finally:
+        shutil.rmtree(workdir, ignore_errors=True)
+
+
+def _lines(text: str, numbers: tuple[int, ...]) -> dict[int, str]:
+    rows = text.split("\n")
+    return {n: rows[n - 1] for n in numbers if 0 < n <= len(rows)}
+
+
+def _sandbox_notes(run: RunResult) -> tuple[str, ...]:
+    if run.backend == "process":
+        return ("the process sandbox isolates nothing: the tests ran with the user's rights on this machine",)
+    return ()
+
+
+def _report(
+    change: Change,
+    provenance: Provenance,
+    policy: Policy,
+    run: RunResult | None,
+    findings: list[Finding],
+    sources: dict[str, str],
+    coverage: CoverageSummary | None = None,
+    notes: tuple[str, ...] = (),
+) -> Report:
+    return Report(
+        verdict=decide(findings),
+        change=change,
+        provenance=provenance,
+        policy_source=policy.source,
+        run=run,
+        coverage=coverage,
+        findings=tuple(findings),
+        sources={path: _lines(text, provenance.machine_lines.get(path, ())) for path, text in sources.items()},
+        notes=notes,
+    )

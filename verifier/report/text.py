@@ -1,0 +1,103 @@
+"""The terminal view: the verdict first, then what a reviewer needs to see at a glance.
+
+Colour only when asked for (the CLI asks when standard output is a terminal and ``NO_COLOR`` is unset).
+"""
+
+from __future__ import annotations
+
+from verifier.models import Finding, Report
+
+_COLOURS = {"pass": "32", "warn": "33", "block": "31", "error": "35", "info": "36"}
+_LABELS = {
+    "pass": "PASS  the machine-written change is verified",
+    "warn": "WARN  verified, with warnings",
+    "block": "BLOCK the machine-written change does not meet the policy",
+    "error": "ERROR the change could not be verified (this is not a pass)",
+}
+
+
+def render(report: Report, colour: bool = False) -> str:
+    paint = _painter(colour)
+    out = [paint(report.verdict, _LABELS[report.verdict]), _header(report)]
+    out += _machine_lines(report)
+    out += _tests(report)
+    out += _coverage(report)
+    out += _findings(report.findings, paint)
+    out += [f"note: {note}" for note in report.notes]
+    return "\n".join(out) + "\n"
+
+
+def _painter(colour: bool):  # type: ignore[no-untyped-def]
+    def paint(key: str, text: str) -> str:
+        return f"\033[{_COLOURS.get(key, '0')}m{text}\033[0m" if colour else text
+
+    return paint
+
+
+def _header(report: Report) -> str:
+    change = report.change
+    base = change.base[:12] if change.base else "(empty tree)"
+    head = change.head[:12] if change.head != "index" else "the index"
+    sandbox = f", sandbox {report.run.backend}" if report.run else ""
+    agents = ", ".join(report.provenance.agents) or "none"
+    return f"change {change.spec}: {base} -> {head}, {len(change.commits)} commit(s), agents: {agents}{sandbox}"
+
+
+def _machine_lines(report: Report) -> list[str]:
+    machine = report.provenance.machine_lines
+    if not machine:
+        return ["machine-written lines: none"]
+    rows = [f"machine-written lines: {report.provenance.machine_line_count} in {len(machine)} file(s)"]
+    rows += [f"  {path}: {len(lines)} ({_spans(lines)})" for path, lines in machine.items()]
+    return rows
+
+
+def _tests(report: Report) -> list[str]:
+    run = report.run
+    if run is None:
+        return []
+    counts = f"{len(run.tests)} run, {run.count('passed')} passed, {run.count('failed')} failed, "
+    counts += f"{run.count('error')} errors, {run.count('skipped')} skipped"
+    return [f"tests: {counts} ({run.status}, {run.wall_seconds:.1f}s)"]
+
+
+def _coverage(report: Report) -> list[str]:
+    cov = report.coverage
+    if cov is None:
+        return []
+    if cov.percent is None:
+        return ["coverage of machine-written lines: no executable machine-written lines"]
+    rows = [f"coverage of machine-written lines: {cov.covered}/{cov.executable} = {cov.percent:.1f}% "
+            f"(threshold {cov.threshold:g}%)"]
+    for path, lines in cov.uncovered.items():
+        source = report.sources.get(path, {})
+        rows.append(f"  uncovered in {path}:")
+        rows += [f"    {line:>5} | {source.get(line, '').rstrip()}" for line in lines[:40]]
+        if len(lines) > 40:
+            rows.append(f"    ... and {len(lines) - 40} more")
+    return rows
+
+
+def _findings(findings: tuple[Finding, ...], paint) -> list[str]:  # type: ignore[no-untyped-def]
+    shown = [f for f in findings if not (f.rule == "coverage.new-lines" and f.line is not None)]
+    if not shown:
+        return ["findings: none"]
+    rows = [f"findings: {len(shown)}"]
+    for finding in shown:
+        where = f" {finding.path}" + (f":{finding.line}" if finding.line else "") if finding.path else ""
+        rows.append(f"  {paint(finding.severity, finding.severity.upper())} [{finding.rule}]{where} {finding.message}")
+        tail = finding.details.get("output_tail") if finding.details else None
+        if tail:
+            rows += [f"      {line}" for line in str(tail).strip().splitlines()[-15:]]
+    return rows
+
+
+def _spans(lines: tuple[int, ...]) -> str:
+    """Render sorted line numbers compactly: 3-7, 10, 12-13."""
+    spans: list[list[int]] = []
+    for line in lines:
+        if spans and line == spans[-1][1] + 1:
+            spans[-1][1] = line
+        else:
+            spans.append([line, line])
+    return ", ".join(f"{a}-{b}" if a != b else f"{a}" for a, b in spans)

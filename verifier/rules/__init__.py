@@ -1,0 +1,78 @@
+"""The rule registry: every rule has a stable id, a default setting, an explanation and a ``check``.
+
+Adding a rule is one function decorated with :func:`rule` in a module of this package (listed in
+``_FAMILIES``) and one test. A rule's check receives a :class:`RuleContext` and returns findings; the
+severity it reports is replaced by the policy's setting for the rule (block, warn or off).
+"""
+
+from __future__ import annotations
+
+import importlib
+from collections.abc import Callable, Iterable, Mapping
+from dataclasses import dataclass, field, replace
+
+from verifier.models import Change, CoverageSummary, Finding, Policy, Provenance, RuleSetting, RunResult
+
+_FAMILIES = ("verifier.rules.tests", "verifier.rules.coverage", "verifier.rules.code")
+
+
+@dataclass(frozen=True)
+class RuleContext:
+    """What a rule may look at; ``run`` and ``coverage`` are None for the static rules."""
+
+    change: Change
+    provenance: Provenance
+    policy: Policy
+    head_sources: Mapping[str, str] = field(default_factory=dict)  # path -> head text of machine-touched files
+    run: RunResult | None = None
+    coverage: CoverageSummary | None = None
+
+
+@dataclass(frozen=True)
+class Rule:
+    """A registered rule."""
+
+    id: str
+    default: RuleSetting
+    summary: str
+    explanation: str
+    stage: str  # "static" (no execution) or "dynamic" (reads the test run)
+    check: Callable[[RuleContext], Iterable[Finding]]
+    fixed: bool = False  # a fixed rule cannot be switched off: it is how the gate fails closed
+
+
+REGISTRY: dict[str, Rule] = {}
+
+
+def rule(
+    rule_id: str, *, default: RuleSetting, summary: str, stage: str, fixed: bool = False
+) -> Callable[[Callable[[RuleContext], Iterable[Finding]]], Callable[[RuleContext], Iterable[Finding]]]:
+    """Register the decorated function as the check of rule ``rule_id``; its docstring explains it."""
+
+    def register(check: Callable[[RuleContext], Iterable[Finding]]) -> Callable[[RuleContext], Iterable[Finding]]:
+        explanation = " ".join((check.__doc__ or "").split())
+        REGISTRY[rule_id] = Rule(rule_id, default, summary, explanation, stage, check, fixed)
+        return check
+
+    return register
+
+
+def load_all() -> Mapping[str, Rule]:
+    for module in _FAMILIES:
+        importlib.import_module(module)
+    return REGISTRY
+
+
+def apply_rules(stage: str, context: RuleContext) -> list[Finding]:
+    """Run every enabled rule of ``stage`` and give each finding the severity the policy sets."""
+    findings: list[Finding] = []
+    for registered in load_all().values():
+        if registered.stage != stage:
+            continue
+        setting = "block" if registered.fixed else context.policy.setting(registered.id, registered.default)
+        if setting == "off":
+            continue
+        for finding in registered.check(context):
+            severity = finding.severity if finding.severity in ("error", "info") else setting
+            findings.append(replace(finding, severity=severity))
+    return findings

@@ -1,0 +1,25 @@
+"""Static rules on the machine-written code itself (no execution needed)."""
+
+from __future__ import annotations
+
+import ast
+from collections.abc import Iterator
+
+from verifier.models import Finding
+from verifier.rules import RuleContext, rule
+
+
+@rule("code.syntax", default="block", summary="machine-written Python that does not parse", stage="static")
+def syntax_errors(context: RuleContext) -> Iterator[Finding]:
+    """A Python file with machine-written lines must parse. A syntax error is reported at its line, as a
+    syntax error, rather than surfacing later as a confusing collection failure. Fix the code."""
+    for path in context.provenance.machine_lines:
+        source = context.head_sources.get(path)
+        if source is None or not path.endswith(".py"):
+            continue
+        try:
+            ast.parse(source, filename=path)
+        except SyntaxError as error:
+            yield Finding("code.syntax", "block", f"syntax error: {error.msg}", path=path, line=error.lineno)
+        except ValueError as error:  # e.g. NUL bytes
+            yield Finding("code.syntax", "block", f"cannot be parsed: {error}", path=path)

@@ -1,0 +1,48 @@
+"""Rules on the outcome of the test run: the tests must pass, and the run must be complete."""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+
+from verifier.models import Finding
+from verifier.rules import RuleContext, rule
+
+_INCOMPLETE = {
+    "timeout": "the test run hit its wall-clock limit and was stopped",
+    "crashed": "the test run ended without writing its results (crashed or killed)",
+    "collection-error": "pytest could not collect the tests",
+    "no-tests": "pytest collected no tests",
+    "harness-error": "the test harness failed before the tests ran",
+}
+
+
+@rule("tests.failing", default="block", summary="a test fails at head", stage="dynamic")
+def failing_tests(context: RuleContext) -> Iterator[Finding]:
+    """Every test that ran must pass. A failure or an error in setup or teardown at the head of the
+    change is listed by its pytest node id with the first line of its message. Fix the code (or, if the
+    test was wrong, the test, in a human-reviewed change) and run the gate again."""
+    run = context.run
+    if run is None:
+        return
+    for test in run.tests:
+        if test.outcome in ("failed", "error"):
+            path = test.node_id.split("::", 1)[0]
+            first = test.message.strip().splitlines()[0] if test.message.strip() else test.outcome
+            yield Finding("tests.failing", "block", f"{test.node_id} {test.outcome}: {first}", path=path)
+
+
+@rule("run.incomplete", default="block", summary="the tests could not be run to the end", stage="dynamic",
+      fixed=True)
+def incomplete_run(context: RuleContext) -> Iterator[Finding]:
+    """The gate verifies only what it saw run. A timeout, a crash, a collection error or an empty test
+    run means the change was not verified; the gate says so and exits 3, never passing by default. The
+    message names what happened; the sandbox's output tail is in the report's details."""
+    run = context.run
+    if run is None or run.status == "completed":
+        return
+    detail = _INCOMPLETE[run.status]
+    if run.limit_hit:
+        detail += f" (limit reached: {run.limit_hit})"
+    for error in run.collection_errors[:10]:
+        yield Finding("run.incomplete", "error", f"collection error: {error}")
+    yield Finding("run.incomplete", "error", detail, details={"output_tail": run.output_tail[-4000:]})
