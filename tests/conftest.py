@@ -1,0 +1,86 @@
+"""Shared fixtures: scratch repositories made with real git, the CLI run as a real subprocess."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import subprocess
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+
+import pytest
+
+from verifier.scratch import ScratchRepo
+
+ROOT = Path(__file__).resolve().parent.parent
+AGENT = "quill-assist/2.3"
+
+
+def machine(title: str, agent: str = AGENT, scope: str | None = None) -> str:
+    """A commit message carrying the Model-Written trailer (and optionally a scope)."""
+    trailers = f"Model-Written: {agent}\n" + (f"Model-Written-Scope: {scope}\n" if scope else "")
+    return f"{title}\n\nWritten by the assistant.\n\n{trailers}"
+
+
+@dataclass
+class Outcome:
+    code: int
+    stdout: str
+    stderr: str
+    report: dict | None
+
+
+def test_sandbox() -> str:
+    """The sandbox the end-to-end tests use: namespace where it works (CI requires it), else process."""
+    from verifier.sandbox.namespace import NamespaceBackend
+
+    problem = NamespaceBackend().problem()
+    if problem is None:
+        return "namespace"
+    if os.environ.get("VERIFIER_REQUIRE_NAMESPACE") == "1":
+        pytest.fail(f"the namespace sandbox is required here but does not work: {problem}")
+    return "process"
+
+
+test_sandbox.__test__ = False  # type: ignore[attr-defined]  # a helper, not a test
+
+
+def run_check(repo: ScratchRepo | Path, *args: str, sandbox: str | None = None, env: dict | None = None,
+              timeout: float = 300) -> Outcome:
+    """Run ``verifier check`` as a real process with a JSON report; return code, output and report."""
+    path = repo.path if isinstance(repo, ScratchRepo) else repo
+    report_file = path.parent / f"report-{os.getpid()}-{hashlib.sha1(str(args).encode()).hexdigest()[:8]}.json"
+    command = [sys.executable, "-m", "verifier", "-C", str(path), "check", *args,
+               "--sandbox", sandbox or test_sandbox(), "--format", "json", "--output", str(report_file)]
+    done = subprocess.run(command, capture_output=True, text=True, timeout=timeout,
+                          env={**os.environ, "PYTHONPATH": str(ROOT), **(env or {})})
+    report = json.loads(report_file.read_text()) if report_file.exists() else None
+    report_file.unlink(missing_ok=True)
+    return Outcome(done.returncode, done.stdout, done.stderr, report)
+
+
+@pytest.fixture
+def repo(tmp_path: Path) -> ScratchRepo:
+    return ScratchRepo(tmp_path / "repo")
+
+
+def snapshot(path: Path) -> dict[str, str]:
+    """Everything a run must leave byte-identical: HEAD, refs, index, stash, working tree, untracked files."""
+    def git(*args: str) -> str:
+        return subprocess.run(["git", *args], cwd=path, capture_output=True, text=True).stdout
+
+    state = {
+        "HEAD": git("rev-parse", "HEAD") + git("symbolic-ref", "-q", "HEAD"),
+        "refs": git("for-each-ref", "--format=%(refname) %(objectname)"),
+        "stash": git("stash", "list"),
+        "status": git("status", "--porcelain=v2", "--untracked-files=all", "--ignored"),
+    }
+    index = path / ".git" / "index"
+    state["index"] = hashlib.sha256(index.read_bytes()).hexdigest() if index.exists() else "none"
+    for file in sorted(path.rglob("*")):
+        if ".git" in file.relative_to(path).parts or not file.is_file():
+            continue
+        state[str(file.relative_to(path))] = hashlib.sha256(file.read_bytes()).hexdigest()
+    return state
