@@ -126,12 +126,12 @@ def run_demo(where: Path | None, sandbox: str = "auto") -> int:
     print(f"demo repository: {repo.path} (Quillfeather Logistics' parcelkit, assistant {AGENT})\n")
     expected = ["pass", "block", "block"]
     verdicts = []
-    for (sha, what), _want in zip(cases, expected):
+    for sha, what in cases:
         print(f"=== verifier check {sha[:12]}  ({what})")
         report = verify(repo.path, RevisionSpec(text=sha), Options(sandbox=sandbox))
         verdicts.append(report.verdict)
         print(render(report, "text"))
-    print(f"=== verifier check HEAD~3..HEAD  (the three together, as a pull request)")
+    print("=== verifier check HEAD~3..HEAD  (the three together, as a pull request)")
     print(render(verify(repo.path, RevisionSpec(text="HEAD~3..HEAD"), Options(sandbox=sandbox)), "text"))
     ok = verdicts == expected
     print("demo: every verdict is as expected" if ok else f"demo: unexpected verdicts {verdicts}")

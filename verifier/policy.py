@@ -179,12 +179,13 @@ def _validate_value(node: yaml.Node, expected: Any, source: str, dotted: str, li
 
 
 def _validate_rules(node: yaml.MappingNode, source: str) -> dict[str, Any]:
-    from verifier.rules import REGISTRY
+    from verifier.rules import load_all
 
+    registry = load_all()
     settings: dict[str, Any] = {}
     for key_node, value_node in node.value:
         rule_id, line = str(key_node.value), key_node.start_mark.line + 1
-        if rule_id not in REGISTRY:
+        if rule_id not in registry:
             raise PolicyError(source, line, f"rules.{rule_id}", "no such rule (see 'verifier rules')")
         problem = _rule_setting(value_node.value)
         if problem:
