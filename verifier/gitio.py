@@ -25,7 +25,7 @@ class Git:
     def __init__(self, repo: str | os.PathLike[str]) -> None:
         self.repo = Path(repo)
         self._env = {**os.environ, "GIT_OPTIONAL_LOCKS": "0", "GIT_TERMINAL_PROMPT": "0"}
-        for leaking in ("GIT_DIR", "GIT_WORK_TREE", "GIT_INDEX_FILE"):
+        for leaking in ("GIT_DIR", "GIT_WORK_TREE", "GIT_INDEX_FILE", "GIT_DIFF_OPTS", "GIT_EXTERNAL_DIFF"):
             self._env.pop(leaking, None)
 
     def run(self, args: Sequence[str], *, input: bytes | None = None, check: bool = True) -> bytes:
@@ -122,8 +122,7 @@ class Git:
     def diff(self, diff_args: Sequence[str], base: str, head: str | None) -> bytes:
         """Run a diff from ``base`` to ``head`` (None = the index)."""
         revs = [base, "--cached"] if head is None else [base, head]
-        prefix = [a for a in diff_args]
-        return self.run([*prefix, *revs, "--"])
+        return self.run([*diff_args, *revs, "--"])
 
     def blame_porcelain(self, boundary: str | None, head: str, path: str, lines: Sequence[int]) -> bytes:
         """``git blame --porcelain`` of ``path`` at ``head`` for ``lines``, stopping at ``boundary``."""
