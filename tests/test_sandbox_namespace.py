@@ -1,0 +1,316 @@
+"""Containment tests of the namespace sandbox: real namespaces and processes, every effect checked on the host.
+
+Each run gets a unique marker in its command line and environment; afterwards the host's /proc must hold
+no process carrying it, and the private temp folder the backend used must be empty again.
+"""
+
+from __future__ import annotations
+
+import ast
+import os
+import signal
+import socket
+import subprocess
+import sys
+import tempfile
+import textwrap
+import time
+import uuid
+from collections.abc import Callable
+from pathlib import Path
+
+import pytest
+
+from verifier.models import Limits, SandboxRequest, SandboxResult
+from verifier.sandbox.namespace import NamespaceBackend, interpreter_paths
+from verifier.sandbox.process import ProcessBackend
+
+pytestmark = pytest.mark.namespace
+ROOT = Path(__file__).resolve().parent.parent
+Runner = Callable[..., SandboxResult]
+
+
+def processes_carrying(marker: str) -> list[int]:
+    """Host processes (any PID namespace) whose command line or environment holds ``marker``."""
+    found = []
+    for name in os.listdir("/proc"):
+        if not name.isdigit() or int(name) == os.getpid():
+            continue
+        for part in ("cmdline", "environ"):
+            try:
+                if marker.encode() in Path(f"/proc/{name}/{part}").read_bytes():
+                    found.append(int(name))
+                    break
+            except OSError:
+                continue
+    return found
+
+
+@pytest.fixture(scope="module")
+def backend() -> NamespaceBackend:
+    namespace = NamespaceBackend()
+    problem = namespace.problem()
+    if problem is not None:
+        if os.environ.get("VERIFIER_REQUIRE_NAMESPACE") == "1":
+            pytest.fail(f"the namespace sandbox is required here but does not work: {problem}")
+        pytest.skip(f"the namespace sandbox does not work here: {problem}")
+    return namespace
+
+
+@pytest.fixture
+def tree(tmp_path: Path) -> Path:
+    folder = tmp_path / "tree"
+    folder.mkdir()
+    (folder / "given.txt").write_text("from the tree\n")
+    return folder
+
+
+@pytest.fixture
+def run(backend: NamespaceBackend, tree: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Runner:
+    """Run Python code in the sandbox; then check that no process and no temp folder of it is left."""
+    private_temp = tmp_path / "temp"
+    private_temp.mkdir()
+    monkeypatch.setattr(tempfile, "tempdir", str(private_temp))
+
+    def run_code(code: str, sandbox: object = backend, collect: tuple[str, ...] = (),
+                 env: dict[str, str] | None = None, **limits: float) -> SandboxResult:
+        marker = f"verifier-test-{uuid.uuid4().hex}"
+        request = SandboxRequest(
+            tree=str(tree), python_args=("-c", f"# {marker}\n{textwrap.dedent(code)}"),
+            env={"MARKER": marker, **(env or {})}, limits=Limits(**{"wall_seconds": 30, **limits}),
+            collect=collect,
+        )
+        result = sandbox.run(request)  # type: ignore[attr-defined]
+        assert processes_carrying(marker) == []
+        assert os.listdir(private_temp) == []
+        return result
+
+    return run_code
+
+
+def test_a_normal_run_brings_back_the_files_it_wrote(run: Runner, tree: Path) -> None:
+    (tree / "leak").symlink_to("/etc/hostname")  # a symlink out of the workspace is never followed
+    result = run("""
+        import os
+        os.makedirs("out")
+        with open("out/result.txt", "w") as handle:
+            handle.write(open("given.txt").read().upper())
+        print("cwd", os.getcwd())
+    """, collect=("out/result.txt", "missing.txt", "leak", "../config.json"))
+    assert result.exit_status == 0, result.output
+    assert result.files == {"out/result.txt": b"FROM THE TREE\n"}
+    assert result.limit_hit is None and not result.timed_out
+    assert (tree / "out").exists() is False  # the tree itself is never written
+
+
+def test_a_listener_on_the_hosts_loopback_is_unreachable(run: Runner) -> None:
+    with socket.socket() as listener:
+        listener.bind(("127.0.0.1", 0))
+        listener.listen()
+        listener.setblocking(False)
+        port = listener.getsockname()[1]
+        code = f"""
+            import socket
+            try:
+                socket.create_connection(("127.0.0.1", {port}), timeout=3).close()
+                print("connected")
+            except OSError as error:
+                print("connect failed:", error)
+        """
+        result = run(code)
+        assert "connect failed" in result.output
+        with pytest.raises(BlockingIOError):
+            listener.accept()
+        # Control: the same code outside the namespace sandbox does reach the listener.
+        assert "connected" in run(code, sandbox=ProcessBackend()).output
+        listener.accept()[0].close()
+
+
+def test_nothing_can_be_written_outside_the_workspace(run: Runner, tree: Path, tmp_path: Path) -> None:
+    host_folder = tmp_path / "host-folder"
+    host_folder.mkdir()
+    name = f"verifier-probe-{uuid.uuid4().hex}"
+    targets = [Path("/") / name, Path("/usr") / name, Path("/etc") / name, host_folder / name, tree / name]
+    tree_before = sorted(os.listdir(tree))
+    result = run(f"""
+        import os
+        for path in {[str(t) for t in targets]!r}:
+            try:
+                os.makedirs(os.path.dirname(path), exist_ok=True)
+                with open(path, "w") as handle:
+                    handle.write("escaped")
+                print("written inside the sandbox:", path)
+            except OSError as error:
+                print("refused:", path, error.strerror)
+        open("in-workspace.txt", "w").write("fine")
+    """, collect=("in-workspace.txt",))
+    assert result.files == {"in-workspace.txt": b"fine"}
+    for target in targets:
+        assert not target.exists(), f"{target} appeared on the host"
+    assert sorted(os.listdir(tree)) == tree_before
+    for read_only in targets[:3]:
+        assert f"refused: {read_only} Read-only file system" in result.output
+
+
+def test_home_and_the_parents_environment_stay_secret(run: Runner, tmp_path: Path,
+                                                      monkeypatch: pytest.MonkeyPatch) -> None:
+    secret = f"secret-{uuid.uuid4().hex}"
+    fake_home = tmp_path / "home"
+    fake_home.mkdir()
+    (fake_home / "token.txt").write_text(secret)
+    real_home = Path(os.path.expanduser("~"))
+    planted = real_home / f".verifier-test-{uuid.uuid4().hex}"
+    planted.write_text(secret)
+    monkeypatch.setenv("HOME", str(fake_home))
+    monkeypatch.setenv("VERIFIER_TEST_SECRET", secret)
+    try:
+        result = run(f"""
+            import os
+            print(sorted(os.environ.items()))
+            for path in ({str(fake_home / "token.txt")!r}, {str(planted)!r}, "/proc/1/environ"):
+                try:
+                    print(open(path).read())
+                except OSError as error:
+                    print("cannot read", path, error.strerror)
+            try:
+                print("home listing:", sorted(os.listdir({str(real_home)!r})))
+            except OSError as error:
+                print("home listing failed:", error.strerror)
+        """)
+    finally:
+        planted.unlink()
+    assert result.exit_status == 0, result.output
+    assert secret not in result.output
+    assert "cannot read /proc/1/environ Permission denied" in result.output  # the init's, not readable
+    # Of the real home the sandbox may show only the way down to the interpreter's own folders.
+    allowed = {Path(p).relative_to(real_home).parts[0] for p in interpreter_paths()
+               if Path(p).is_relative_to(real_home)}
+    listing = result.output.split("home listing:")[-1].strip()
+    shown = set(ast.literal_eval(listing)) if listing.startswith("[") else set()
+    assert shown <= allowed
+    assert planted.name not in shown
+
+
+def test_a_fork_bomb_runs_into_the_process_limit(run: Runner) -> None:
+    result = run("""
+        import os, time
+        children = 0
+        try:
+            while True:
+                if os.fork() == 0:
+                    time.sleep(120)
+                    os._exit(0)
+                children += 1
+        finally:
+            print("children:", children, flush=True)
+    """, processes=24)
+    assert result.limit_hit == "processes", result.output
+    assert int(result.output.split("children:")[1].split()[0]) < 24
+
+
+def test_an_endless_fork_bomb_is_killed_at_the_wall_limit(run: Runner) -> None:
+    result = run("""
+        import os
+        while True:
+            try:
+                os.fork()
+            except OSError:
+                pass
+    """, processes=32, wall_seconds=3)
+    assert result.timed_out and result.limit_hit == "wall"
+    assert result.exit_status is None and result.signal == signal.SIGKILL
+
+
+def test_a_memory_hog_gets_a_memory_error(run: Runner) -> None:
+    result = run("""
+        hog = bytearray(8 << 30)
+        print("allocated", len(hog))
+    """, memory_mb=512)
+    assert result.exit_status == 1 and "allocated" not in result.output
+    assert result.limit_hit == "memory"
+
+
+def test_an_endless_loop_is_killed_at_the_wall_limit(run: Runner) -> None:
+    result = run("while True: pass", wall_seconds=2)
+    assert result.timed_out and result.limit_hit == "wall" and result.exit_status is None
+
+
+def test_a_flood_of_output_is_capped_and_stopped(run: Runner) -> None:
+    result = run("""
+        import sys
+        chunk = b"x" * (1 << 20)
+        for _ in range(100):
+            sys.stdout.buffer.write(chunk)
+        print("finished")
+    """, output_bytes=10_000)
+    assert result.output_truncated and result.limit_hit == "output"
+    assert len(result.output) < 10_200
+    assert "finished" not in result.output
+
+
+def test_a_file_larger_than_the_file_size_limit_cannot_be_written(run: Runner) -> None:
+    result = run("""
+        with open("big.bin", "wb") as handle:
+            handle.write(b"x" * (3 << 20))
+    """, file_size_mb=1)
+    assert result.exit_status == 1 and result.limit_hit == "file-size", result.output
+
+
+_PARENT = """
+import sys, time
+from verifier.models import Limits, SandboxRequest
+from verifier.sandbox.namespace import NamespaceBackend
+request = SandboxRequest(tree=sys.argv[1], python_args=("-c", "# " + sys.argv[2][::-1] + "\\nwhile True: pass"),
+                         env={}, limits=Limits(wall_seconds=120), collect=())
+try:
+    NamespaceBackend().run(request)
+except KeyboardInterrupt:
+    print("interrupted", flush=True)
+    sys.exit(130)
+"""
+
+
+def _start_parent(tree: Path, temp: Path, marker: str) -> subprocess.Popen[str]:
+    """A separate verifier-like process running an endless command, once that command is running."""
+    # The marker goes in reversed, so that only the sandboxed command carries it, not this parent.
+    parent = subprocess.Popen([sys.executable, "-c", _PARENT, str(tree), marker[::-1]], text=True,
+                              stdout=subprocess.PIPE, env={**os.environ, "PYTHONPATH": str(ROOT),
+                                                           "TMPDIR": str(temp)})
+    for _ in range(300):
+        if processes_carrying(marker):
+            return parent
+        time.sleep(0.05)
+    parent.kill()
+    pytest.fail("the sandboxed command never started")
+
+
+def _wait_until_gone(marker: str) -> list[int]:
+    for _ in range(200):
+        left = processes_carrying(marker)
+        if not left:
+            return left
+        time.sleep(0.05)
+    return left
+
+
+def test_ctrl_c_in_the_parent_cleans_up_and_re_raises(backend: NamespaceBackend, tree: Path,
+                                                      tmp_path: Path) -> None:
+    marker = f"verifier-test-{uuid.uuid4().hex}"
+    temp = tmp_path / "temp"
+    temp.mkdir()
+    parent = _start_parent(tree, temp, marker)
+    parent.send_signal(signal.SIGINT)
+    stdout, _ = parent.communicate(timeout=60)
+    assert parent.returncode == 130 and "interrupted" in stdout
+    assert processes_carrying(marker) == []
+    assert os.listdir(temp) == []
+
+
+def test_kill_9_of_the_parent_leaves_no_process(backend: NamespaceBackend, tree: Path, tmp_path: Path) -> None:
+    marker = f"verifier-test-{uuid.uuid4().hex}"
+    temp = tmp_path / "temp"
+    temp.mkdir()
+    parent = _start_parent(tree, temp, marker)
+    parent.kill()
+    parent.wait()
+    assert _wait_until_gone(marker) == []  # the kernel's parent-death signals, not our cleanup, did this
