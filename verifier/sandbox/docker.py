@@ -1,0 +1,561 @@
+"""The docker backend: each run in a fresh, locked-down container of the sandbox image.
+
+The tree is copied in as a tar archive (never bind-mounted) into a size-limited tmpfs volume at
+``/workspace``; the command runs there as a non-root user with no network, a read-only root
+filesystem, no capabilities, no new privileges and cgroup limits on processes, memory (no swap) and
+CPU. The wall-clock limit is enforced from outside (the container is killed) and output is capped.
+
+How a run works, and why: an engine's archive API only sees a volume while the daemon has it
+mounted, so the container starts with a tiny *holder* as PID 1 (it reaps orphans and ends the
+container by itself once the wall limit plus a grace has passed), the tree is copied in, the command
+runs by ``exec`` and the collected files are copied out before the container is removed. Every
+container carries labels naming its owner process, so a later run reaps what a killed run left.
+
+The Docker SDK is imported here only, when a docker run or check is actually asked for.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import io
+import json
+import os
+import socket
+import tarfile
+import tempfile
+import threading
+import time
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path, PurePosixPath
+from typing import TYPE_CHECKING, Any
+
+from verifier.errors import CannotVerify, SandboxUnavailable
+from verifier.models import Limits, SandboxRequest, SandboxResult
+
+if TYPE_CHECKING:
+    from docker import DockerClient
+
+NAME = "docker"
+DEFAULT_IMAGE = "verifier-sandbox:latest"
+IMAGE_ENV = "VERIFIER_SANDBOX_IMAGE"
+WORKSPACE = "/workspace"
+SANDBOX_UID = 10001  # the image's ``sandbox`` user; numeric, so it works in any image
+LABEL = "verifier.sandbox"
+OWNER_LABEL = "verifier.owner"  # host/pid/start-ticks of the verifier process that started it
+EXPIRES_LABEL = "verifier.expires"  # host epoch after which the container is certainly orphaned
+ORPHAN_GRACE_SECONDS = 60
+MAX_CPUS = 2.0
+SPOOL_BYTES = 32 * 1024 * 1024
+
+# PID 1 of every sandbox container: reap orphaned children; end the container after argv[1] seconds.
+HOLDER = """\
+import os, sys, time
+end = time.monotonic() + float(sys.argv[1])
+while time.monotonic() < end:
+    try:
+        while os.waitpid(-1, os.WNOHANG)[0]:
+            pass
+    except ChildProcessError:
+        pass
+    time.sleep(0.5)
+"""
+
+
+# -- reaching the engine ----------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Endpoint:
+    """Where the engine is and how to reach it: from DOCKER_HOST, the current context, or the default."""
+
+    host: str | None  # None: the SDK's default socket
+    source: str  # "DOCKER_HOST", "context <name>" or "default"
+    tls_dir: str | None = None
+
+
+def docker_config_dir() -> Path:
+    return Path(os.environ.get("DOCKER_CONFIG") or Path.home() / ".docker")
+
+
+def current_context() -> str:
+    """The context the docker command line would use (DOCKER_CONTEXT, else config.json's currentContext)."""
+    if os.environ.get("DOCKER_CONTEXT"):
+        return os.environ["DOCKER_CONTEXT"]
+    try:
+        config = json.loads((docker_config_dir() / "config.json").read_text())
+    except (OSError, ValueError):
+        return "default"
+    return str(config.get("currentContext") or "default")
+
+
+def engine_endpoint() -> Endpoint:
+    """DOCKER_HOST wins; else a simple (host and optional TLS files) Docker context; else the default."""
+    if os.environ.get("DOCKER_HOST"):
+        return Endpoint(os.environ["DOCKER_HOST"], "DOCKER_HOST")
+    name = current_context()
+    if name == "default":
+        return Endpoint(None, "default")
+    # The docker CLI stores a context under the sha256 of its name (contexts/meta/<hash>/meta.json).
+    digest = hashlib.sha256(name.encode()).hexdigest()
+    meta_file = docker_config_dir() / "contexts" / "meta" / digest / "meta.json"
+    try:
+        meta = json.loads(meta_file.read_text())
+        host = meta["Endpoints"]["docker"]["Host"]
+    except (OSError, ValueError, KeyError, TypeError) as error:
+        raise SandboxUnavailable(
+            [(NAME, f"the current Docker context '{name}' cannot be read ({meta_file}: {error})")],
+            hint="run 'docker context use default' or set DOCKER_HOST",
+        ) from error
+    tls_dir = docker_config_dir() / "contexts" / "tls" / digest / "docker"
+    return Endpoint(host, f"context {name}", str(tls_dir) if tls_dir.is_dir() else None)
+
+
+def connect(timeout: int = 60) -> DockerClient:
+    """A client of the engine that answers, or SandboxUnavailable saying what to do."""
+    try:
+        import docker
+        from docker.tls import TLSConfig
+    except ImportError as error:
+        raise SandboxUnavailable(
+            [(NAME, "the Docker SDK for Python is not installed")], hint="pip install 'verifier[docker]'"
+        ) from error
+    endpoint = engine_endpoint()
+    where = endpoint.host or "the default socket"
+    try:
+        if endpoint.host is None:
+            client = docker.from_env(timeout=timeout)
+        elif endpoint.source == "DOCKER_HOST":
+            client = docker.from_env(timeout=timeout)  # also honours DOCKER_TLS_VERIFY / DOCKER_CERT_PATH
+        else:
+            tls = _context_tls(TLSConfig, endpoint.tls_dir) if endpoint.tls_dir else False
+            client = docker.DockerClient(base_url=endpoint.host, tls=tls, timeout=timeout)
+        client.ping()
+    except docker.errors.DockerException as error:
+        raise SandboxUnavailable(
+            [(NAME, f"no Docker engine answers at {where} ({endpoint.source}): {_first_line(error)}")],
+            hint="start the engine, or point DOCKER_HOST (or a Docker context) at one that runs",
+        ) from error
+    return client
+
+
+def _context_tls(tls_config: Any, folder: str) -> Any:
+    files = {name: os.path.join(folder, f"{name}.pem") for name in ("ca", "cert", "key")}
+    have = {name: path for name, path in files.items() if os.path.exists(path)}
+    client_cert = (have["cert"], have["key"]) if "cert" in have and "key" in have else None
+    return tls_config(client_cert=client_cert, ca_cert=have.get("ca"), verify="ca" in have)
+
+
+def _first_line(error: BaseException) -> str:
+    text = str(error).strip() or type(error).__name__
+    return text.splitlines()[0][:300]
+
+
+# -- reaping what killed runs left ------------------------------------------------------------------
+def _start_ticks(pid: int) -> str | None:
+    """The process's start time in clock ticks (field 22 of /proc/pid/stat), None when it is gone."""
+    try:
+        stat = Path(f"/proc/{pid}/stat").read_text()
+    except OSError:
+        return None
+    return stat.rsplit(")", 1)[1].split()[19]
+
+
+def _alive(pid: int, ticks: str) -> bool:
+    if Path("/proc/self/stat").exists():
+        return _start_ticks(pid) == ticks  # a reused pid has another start time
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def owner_label() -> str:
+    return f"{socket.gethostname()}/{os.getpid()}/{_start_ticks(os.getpid()) or '0'}"
+
+
+def is_orphan(labels: Mapping[str, str], now: float) -> bool:
+    """A container is orphaned when its owner process on this host is dead, or it outlived its expiry."""
+    try:
+        if float(labels.get(EXPIRES_LABEL, "inf")) < now:
+            return True
+        host, pid, ticks = labels.get(OWNER_LABEL, "").split("/")
+        return host == socket.gethostname() and not _alive(int(pid), ticks)
+    except ValueError:
+        return False  # not a label this module wrote: leave it alone
+
+
+def reap_orphans(client: DockerClient) -> int:
+    """Remove sandbox containers (and their volumes) whose owner died; return how many went."""
+    import docker
+
+    removed = 0
+    now = time.time()
+    for container in client.containers.list(all=True, filters={"label": f"{LABEL}=1"}):
+        if is_orphan(container.labels, now):
+            try:
+                container.remove(force=True, v=True)
+                removed += 1
+            except docker.errors.NotFound:
+                pass  # another run reaped it first
+            except docker.errors.APIError as error:
+                if error.status_code != 409:  # 409: removal already in progress elsewhere
+                    raise
+    return removed
+
+
+# -- moving files in and out ------------------------------------------------------------------------
+def _owned_by_sandbox(info: tarfile.TarInfo) -> tarfile.TarInfo | None:
+    """Give every entry to the sandbox user; drop devices and FIFOs; strip set-id bits."""
+    if not (info.isfile() or info.isdir() or info.issym() or info.islnk()):
+        return None
+    info.uid = info.gid = SANDBOX_UID
+    info.uname = info.gname = ""
+    info.mode &= 0o777
+    return info
+
+
+def tree_archive(tree: str) -> tempfile.SpooledTemporaryFile[bytes]:
+    """A tar of the tree's contents (not the folder itself), spooled to disk when large."""
+    spool: tempfile.SpooledTemporaryFile[bytes] = tempfile.SpooledTemporaryFile(max_size=SPOOL_BYTES)  # noqa: SIM115
+    with tarfile.open(fileobj=spool, mode="w", format=tarfile.PAX_FORMAT) as archive:
+        for entry in sorted(os.listdir(tree)):
+            archive.add(os.path.join(tree, entry), arcname=entry, filter=_owned_by_sandbox)
+    spool.seek(0)
+    return spool
+
+
+def collect_path(relative: str) -> str:
+    """The in-container path of a workspace-relative file, refusing absolute or escaping paths."""
+    path = PurePosixPath(relative)
+    if path.is_absolute() or ".." in path.parts or not path.parts:
+        raise CannotVerify(f"cannot collect '{relative}': not a path inside the workspace")
+    return f"{WORKSPACE}/{path}"
+
+
+def _single_file(chunks: Iterator[bytes]) -> bytes | None:
+    with tempfile.SpooledTemporaryFile(max_size=SPOOL_BYTES) as spool:
+        for chunk in chunks:
+            spool.write(chunk)
+        spool.seek(0)
+        with tarfile.open(fileobj=spool, mode="r") as archive:
+            member = archive.next()
+            if member is None or not member.isfile():
+                return None
+            extracted = archive.extractfile(member)
+            return extracted.read() if extracted else None
+
+
+# -- one run ----------------------------------------------------------------------------------------
+@dataclass
+class _Outcome:
+    """What the command did, as seen from outside the container."""
+
+    output: bytearray = field(default_factory=bytearray)
+    truncated: bool = False
+    killed_for: str | None = None  # "wall" or "output" when we killed the container
+    exit_code: int | None = None
+
+
+def _labels(limits: Limits) -> dict[str, str]:
+    expires = time.time() + limits.wall_seconds + ORPHAN_GRACE_SECONDS
+    return {LABEL: "1", OWNER_LABEL: owner_label(), EXPIRES_LABEL: f"{expires:.0f}"}
+
+
+def _host_settings(client: DockerClient, limits: Limits) -> dict[str, Any]:
+    """The lock-down: everything a container is denied, in the SDK's create() keywords."""
+    from docker.types import DriverConfig, Mount, Ulimit
+
+    workspace_options = f"size={limits.workspace_mb}m,uid={SANDBOX_UID},gid={SANDBOX_UID},mode=0700,nosuid,nodev"
+    workspace = Mount(
+        WORKSPACE,
+        None,  # anonymous: removed with the container
+        type="volume",
+        driver_config=DriverConfig("local", {"type": "tmpfs", "device": "tmpfs", "o": workspace_options}),
+    )
+    cpus = min(MAX_CPUS, float(client.info().get("NCPU") or 1))
+    file_bytes = limits.file_size_mb * 1024 * 1024
+    return {
+        "network_mode": "none",
+        "read_only": True,
+        "mounts": [workspace],
+        "tmpfs": {"/tmp": f"size={limits.tmp_mb}m,mode=1777,exec,nosuid,nodev"},
+        "cap_drop": ["ALL"],
+        "security_opt": ["no-new-privileges:true"],
+        "user": f"{SANDBOX_UID}:{SANDBOX_UID}",
+        "pids_limit": limits.processes,
+        "mem_limit": f"{limits.memory_mb}m",
+        "memswap_limit": f"{limits.memory_mb}m",  # equal to the memory limit: no swap
+        "nano_cpus": int(cpus * 1e9),
+        "ipc_mode": "private",
+        "shm_size": f"{min(64, limits.tmp_mb)}m",
+        "ulimits": [
+            Ulimit(name="cpu", soft=limits.cpu_seconds, hard=limits.cpu_seconds + 5),
+            Ulimit(name="fsize", soft=file_bytes, hard=file_bytes),
+        ],
+    }
+
+
+def _command_env(env: Mapping[str, str]) -> dict[str, str]:
+    # The host's PATH means nothing inside; the image's PATH finds its ``python``.
+    inside = {key: value for key, value in env.items() if key != "PATH"}
+    inside.update(HOME="/tmp", TMPDIR="/tmp")
+    return inside
+
+
+def _untimed(raw: Any) -> None:
+    """Let a blocking read of the exec stream wait as long as the command runs (the watchdog ends it)."""
+    for candidate in (raw, getattr(raw, "_sock", None)):
+        if hasattr(candidate, "settimeout"):
+            candidate.settimeout(None)
+
+
+class _Run:
+    """One container: created, started, used and always removed (``with`` guarantees the last)."""
+
+    def __init__(self, client: DockerClient, image: str, limits: Limits) -> None:
+        self.client = client
+        self.image = image
+        self.limits = limits
+        self.container: Any = None
+        self._killed = threading.Event()
+
+    def __enter__(self) -> _Run:
+        settings = _host_settings(self.client, self.limits)
+        lifetime = self.limits.wall_seconds + ORPHAN_GRACE_SECONDS
+        self.container = self.client.containers.create(
+            self.image,
+            ["python", "-I", "-c", HOLDER, str(lifetime)],
+            detach=True,
+            labels=_labels(self.limits),
+            working_dir=WORKSPACE,
+            **settings,
+        )
+        self.container.start()
+        return self
+
+    def __exit__(self, *_: object) -> None:
+        self.remove()
+
+    def remove(self) -> None:
+        import docker
+
+        if self.container is None:
+            return
+        with contextlib.suppress(docker.errors.NotFound):
+            self.container.remove(force=True, v=True)
+        self.container = None
+
+    def kill(self, reason: str, outcome: _Outcome) -> None:
+        import docker
+
+        if self._killed.is_set():
+            return
+        self._killed.set()
+        outcome.killed_for = outcome.killed_for or reason
+        with contextlib.suppress(docker.errors.APIError):  # already stopped
+            self.container.kill()
+
+    def copy_in(self, tree: str) -> None:
+        import docker
+
+        with tree_archive(tree) as archive:
+            size_mb = archive.seek(0, io.SEEK_END) / (1024 * 1024)
+            archive.seek(0)
+            try:
+                self.container.put_archive(WORKSPACE, archive)
+            except docker.errors.APIError as error:
+                raise CannotVerify(
+                    f"the tree ({size_mb:.1f} MB as an archive) could not be copied into the sandbox "
+                    f"workspace (limit {self.limits.workspace_mb} MB): {_first_line(error)}",
+                    hint="raise the policy's workspace limit, or make the tree smaller",
+                ) from error
+
+    def execute(self, python_args: tuple[str, ...], env: Mapping[str, str]) -> _Outcome:
+        """Run ``python *python_args`` in the workspace; kill at the wall limit or the output cap."""
+        outcome = _Outcome()
+        api = self.client.api
+        exec_id = api.exec_create(
+            self.container.id,
+            ["python", *python_args],
+            workdir=WORKSPACE,
+            user=f"{SANDBOX_UID}:{SANDBOX_UID}",
+            environment=_command_env(env),
+        )["Id"]
+        watchdog = threading.Timer(self.limits.wall_seconds, self.kill, args=("wall", outcome))
+        watchdog.daemon = True
+        raw = api.exec_start(exec_id, socket=True)
+        watchdog.start()
+        try:
+            self._read_output(raw, outcome)
+        finally:
+            watchdog.cancel()
+            _close(raw)  # first: an unread stream would hold the engine up while it kills
+        if outcome.truncated:
+            self.kill("output", outcome)
+        if not self._killed.is_set():
+            outcome.exit_code = api.exec_inspect(exec_id).get("ExitCode")
+        return outcome
+
+    def _read_output(self, raw: Any, outcome: _Outcome) -> None:
+        from docker.utils.socket import frames_iter
+
+        _untimed(raw)
+        cap = self.limits.output_bytes
+        try:
+            for _stream, data in frames_iter(raw, tty=False):
+                room = cap - len(outcome.output)
+                outcome.output += data[: max(room, 0)]
+                if len(data) > room:
+                    outcome.truncated = True  # execute() kills the container once the stream is closed
+                    return
+        except OSError:
+            if not self._killed.is_set():
+                raise  # the stream broke without our kill: the engine went away
+
+    def copy_out(self, paths: tuple[str, ...]) -> dict[str, bytes]:
+        import docker
+
+        files: dict[str, bytes] = {}
+        for relative in paths:
+            try:
+                chunks, _stat = self.container.get_archive(collect_path(relative))
+            except docker.errors.NotFound:
+                continue  # the command did not write it; the caller decides what that means
+            content = _single_file(chunks)
+            if content is not None:
+                files[relative] = content
+        return files
+
+    def usage(self) -> tuple[float, int, int, int]:
+        """CPU seconds, peak memory (KB), the memory limit (KB) and the peak's failure count, if known."""
+        try:
+            stats = self.client.api.stats(self.container.id, stream=False, one_shot=True)
+        except Exception:  # stats are a courtesy: never let them fail a run
+            return 0.0, 0, 0, 0
+        cpu = stats.get("cpu_stats", {}).get("cpu_usage", {}).get("total_usage", 0) / 1e9
+        memory = stats.get("memory_stats", {})
+        peak = int(memory.get("max_usage", 0)) // 1024
+        return cpu, peak, int(memory.get("limit", 0)) // 1024, int(memory.get("failcnt", 0))
+
+
+def _close(raw: Any) -> None:
+    """End the exec stream's connection for real (closing a socket file object alone may keep it open)."""
+    for candidate in (getattr(raw, "_sock", None), raw):
+        if hasattr(candidate, "shutdown"):
+            with contextlib.suppress(OSError):
+                candidate.shutdown(socket.SHUT_RDWR)
+    with contextlib.suppress(OSError):
+        raw.close()
+
+
+# -- reading what happened --------------------------------------------------------------------------
+SIGNAL_LIMITS = {9: None, 24: "cpu", 25: "file-size"}  # SIGKILL, SIGXCPU, SIGXFSZ on Linux (signal(7))
+
+
+def _exit_and_signal(code: int | None) -> tuple[int | None, int | None]:
+    """Docker reports a process killed by signal N as exit code 128 + N."""
+    if code is not None and 128 < code <= 128 + 64:
+        return None, code - 128
+    return code, None
+
+
+def _limit_hit(outcome: _Outcome, signal: int | None, peak_kb: int, limit_kb: int) -> str | None:
+    if outcome.killed_for:
+        return outcome.killed_for
+    if signal == 9 and limit_kb and peak_kb >= limit_kb * 0.95:
+        return "memory"
+    return SIGNAL_LIMITS.get(signal) if signal else None
+
+
+class DockerBackend:
+    """Runs the request in a fresh, locked-down container of the sandbox image."""
+
+    name = NAME
+    isolation = (
+        "container: own filesystem and PID space, no network, no capabilities, non-root, read-only root, "
+        "cgroup limits; shares the host kernel"
+    )
+
+    def __init__(self, image: str | None = None) -> None:
+        self.image = image or os.environ.get(IMAGE_ENV) or DEFAULT_IMAGE
+
+    def problem(self) -> str | None:
+        try:
+            client = connect()
+        except SandboxUnavailable as error:
+            return "; ".join(reason for _, reason in error.tried) + (f" ({error.hint})" if error.hint else "")
+        try:
+            return self._image_problem(client)
+        finally:
+            client.close()
+
+    def _image_problem(self, client: DockerClient) -> str | None:
+        import docker
+
+        try:
+            client.images.get(self.image)
+        except docker.errors.ImageNotFound:
+            return (
+                f"the sandbox image {self.image} is not on the engine; build it with 'verifier sandbox build' "
+                f"(offline: sandbox_images/build-offline) or set {IMAGE_ENV}"
+            )
+        except docker.errors.APIError as error:
+            return f"the engine refused to look up image {self.image}: {_first_line(error)}"
+        return None
+
+    def run(self, request: SandboxRequest) -> SandboxResult:
+        import docker
+        import requests
+
+        client = connect()
+        try:
+            reap_orphans(client)
+            problem = self._image_problem(client)
+            if problem:
+                raise SandboxUnavailable([(NAME, problem)])
+            return self._run_in_container(client, request)
+        except (docker.errors.DockerException, requests.exceptions.RequestException) as error:
+            raise SandboxUnavailable(
+                [(NAME, f"the engine refused or stopped answering: {_first_line(error)}")],
+                hint="see 'verifier sandbox doctor'; the engine's own log says more",
+            ) from error
+        finally:
+            client.close()
+
+    def _run_in_container(self, client: DockerClient, request: SandboxRequest) -> SandboxResult:
+        started = time.monotonic()
+        with _Run(client, self.image, request.limits) as box:
+            box.copy_in(request.tree)
+            outcome = box.execute(request.python_args, request.env)
+            cpu, peak_kb, limit_kb, _failures = box.usage()
+            files = {} if outcome.killed_for else box.copy_out(request.collect)
+        exit_status, signal = _exit_and_signal(outcome.exit_code)
+        if outcome.killed_for:
+            signal = 9
+        _refuse_missing_python(exit_status, outcome)
+        return SandboxResult(
+            backend=NAME,
+            isolation=self.isolation,
+            exit_status=exit_status,
+            signal=signal,
+            timed_out=outcome.killed_for == "wall",
+            output=bytes(outcome.output).decode("utf-8", "replace"),
+            output_truncated=outcome.truncated,
+            files=files,
+            wall_seconds=round(time.monotonic() - started, 3),
+            cpu_seconds=round(cpu, 3),
+            max_rss_kb=peak_kb,  # the container's peak memory (cgroup), the closest a container offers
+            limit_hit=_limit_hit(outcome, signal, peak_kb, limit_kb),
+        )
+
+
+def _refuse_missing_python(exit_status: int | None, outcome: _Outcome) -> None:
+    """An image without ``python`` cannot verify anything: say so instead of reporting a failed run."""
+    if exit_status in (126, 127) and bytes(outcome.output[:200]).startswith(b"OCI runtime exec failed"):
+        raise SandboxUnavailable(
+            [(NAME, "the sandbox image has no 'python' on its PATH")],
+            hint="rebuild it with 'verifier sandbox build' or pick another image",
+        )
