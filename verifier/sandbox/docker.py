@@ -530,9 +530,10 @@ class DockerBackend:
         with _Run(client, self.image, request.limits) as box:
             box.copy_in(request.tree)
             outcome = box.execute(request.python_args, request.env)
-            cpu, peak_kb, limit_kb, _failures = box.usage()
+            exit_status, signal = _exit_and_signal(outcome.exit_code)
+            # The engine's stats cost about half a second, so they are read only to explain a kill.
+            cpu, peak_kb, limit_kb, _failures = box.usage() if signal else (0.0, 0, 0, 0)
             files = {} if outcome.killed_for else box.copy_out(request.collect)
-        exit_status, signal = _exit_and_signal(outcome.exit_code)
         if outcome.killed_for:
             signal = 9
         _refuse_missing_python(exit_status, outcome)
@@ -547,7 +548,7 @@ class DockerBackend:
             files=files,
             wall_seconds=round(time.monotonic() - started, 3),
             cpu_seconds=round(cpu, 3),
-            max_rss_kb=peak_kb,  # the container's peak memory (cgroup), the closest a container offers
+            max_rss_kb=peak_kb,  # the container's peak memory (cgroup), known only after a kill
             limit_hit=_limit_hit(outcome, signal, peak_kb, limit_kb),
         )
 
