@@ -51,9 +51,11 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
     run = _run_tests(git, change, policy, Selection(whole_suite=True), options, say)
     from verifier.measure import summarise_coverage
 
-    coverage = summarise_coverage(
-        provenance.machine_lines, run.coverage, sources, policy.coverage_threshold, policy.coverage_exclude
-    )
+    coverage = None
+    if run.status == "completed":  # a partial run's coverage would blame the code for what never ran
+        coverage = summarise_coverage(
+            provenance.machine_lines, run.coverage, sources, policy.coverage_threshold, policy.coverage_exclude
+        )
     dynamic = RuleContext(change, provenance, policy, sources, run, coverage)
     findings += apply_rules("dynamic", dynamic)
     notes = _sandbox_notes(run)

@@ -27,8 +27,15 @@ def failing_tests(context: RuleContext) -> Iterator[Finding]:
     for test in run.tests:
         if test.outcome in ("failed", "error"):
             path = test.node_id.split("::", 1)[0]
-            first = test.message.strip().splitlines()[0] if test.message.strip() else test.outcome
-            yield Finding("tests.failing", "block", f"{test.node_id} {test.outcome}: {first}", path=path)
+            yield Finding("tests.failing", "block", f"{test.node_id} {test.outcome}: {_gist(test.message)}",
+                          path=path, details={"message": test.message})
+
+
+def _gist(message: str) -> str:
+    """The line of pytest's report that says what went wrong (its first ``E`` line), else the last line."""
+    lines = [line.strip() for line in message.splitlines() if line.strip()]
+    errors = [line[1:].strip() for line in lines if line.startswith("E ")]
+    return errors[0] if errors else (lines[-1] if lines else "no message")
 
 
 @rule("run.incomplete", default="block", summary="the tests could not be run to the end", stage="dynamic",
