@@ -119,6 +119,24 @@ class Git:
         )
         return done.stdout if done.returncode == 0 else None
 
+    def read_blobs(self, specs: Sequence[str]) -> dict[str, bytes]:
+        """Read many ``rev:path`` (or ``:path`` for the index) blobs in one ``git cat-file --batch``;
+        specs that name no blob are left out."""
+        if not specs:
+            return {}
+        out = self.run(["cat-file", "--batch"], input="".join(f"{spec}\n" for spec in specs).encode())
+        blobs: dict[str, bytes] = {}
+        offset = 0
+        for spec in specs:
+            header_end = out.index(b"\n", offset)
+            header = out[offset:header_end].split()
+            offset = header_end + 1
+            if len(header) == 3 and header[1] == b"blob":
+                size = int(header[2])
+                blobs[spec] = out[offset : offset + size]
+                offset += size + 1
+        return blobs
+
     def diff(self, diff_args: Sequence[str], base: str, head: str | None) -> bytes:
         """Run a diff from ``base`` to ``head`` (None = the index)."""
         revs = [base, "--cached"] if head is None else [base, head]

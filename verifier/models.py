@@ -113,6 +113,7 @@ class Policy:
     limits: Limits = field(default_factory=Limits)
     allow_process_sandbox: bool = False
     rules: Mapping[str, RuleSetting] = field(default_factory=dict)
+    rule_options: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)  # rule id -> option -> value
 
     def setting(self, rule_id: str, default: RuleSetting) -> RuleSetting:
         return self.rules.get(rule_id, default)

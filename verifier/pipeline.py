@@ -42,10 +42,10 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
     policy = load_policy(git, change.base)
     if not provenance.machine_lines:
         return _report(change, provenance, policy, None, [], {}, notes=("no machine-written lines to verify",))
-    sources = _head_sources(git, change, provenance)
+    base_sources, sources = _changed_sources(git, change)
     from verifier.rules import RuleContext, apply_rules
 
-    context = RuleContext(change, provenance, policy, sources)
+    context = RuleContext(change, provenance, policy, sources, base_sources)
     findings = apply_rules("static", context)
     say(f"{provenance.machine_line_count} machine-written lines in {len(provenance.machine_lines)} files")
     run = _run_tests(git, change, policy, Selection(whole_suite=True), options, say)
@@ -56,21 +56,23 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
         coverage = summarise_coverage(
             provenance.machine_lines, run.coverage, sources, policy.coverage_threshold, policy.coverage_exclude
         )
-    dynamic = RuleContext(change, provenance, policy, sources, run, coverage)
+    dynamic = RuleContext(change, provenance, policy, sources, base_sources, run, coverage)
     findings += apply_rules("dynamic", dynamic)
     notes = _sandbox_notes(run)
     return _report(change, provenance, policy, run, findings, sources, coverage=coverage, notes=notes)
 
 
-def _head_sources(git: Git, change: Change, provenance: Provenance) -> dict[str, str]:
-    """The head text of every file with machine-written lines (for rules and for display)."""
-    rev = None if change.head == INDEX else change.head
-    sources = {}
-    for path in provenance.machine_lines:
-        data = git.show_file(rev, path)
-        if data is not None:
-            sources[path] = data.decode("utf-8", "replace")
-    return sources
+def _changed_sources(git: Git, change: Change) -> tuple[dict[str, str], dict[str, str]]:
+    """The base and head text of every changed text file, read in one batch (for rules and display)."""
+    head_prefix = ":" if change.head == INDEX else f"{change.head}:"
+    wanted = [f for f in change.files if not f.binary]
+    specs = [f"{head_prefix}{f.path}" for f in wanted if f.status != "deleted"]
+    if change.base:
+        specs += [f"{change.base}:{f.old_path}" for f in wanted if f.old_path]
+    blobs = {spec: data.decode("utf-8", "replace") for spec, data in git.read_blobs(specs).items()}
+    head = {f.path: blobs[s] for f in wanted if (s := f"{head_prefix}{f.path}") in blobs}
+    base = {f.old_path: blobs[s] for f in wanted if f.old_path and (s := f"{change.base}:{f.old_path}") in blobs}
+    return base, head
 
 
 def _run_tests(

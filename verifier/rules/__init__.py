@@ -10,6 +10,7 @@ from __future__ import annotations
 import importlib
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field, replace
+from typing import Any
 
 from verifier.models import Change, CoverageSummary, Finding, Policy, Provenance, RuleSetting, RunResult
 
@@ -23,7 +24,8 @@ class RuleContext:
     change: Change
     provenance: Provenance
     policy: Policy
-    head_sources: Mapping[str, str] = field(default_factory=dict)  # path -> head text of machine-touched files
+    head_sources: Mapping[str, str] = field(default_factory=dict)  # path -> head text, every changed text file
+    base_sources: Mapping[str, str] = field(default_factory=dict)  # base path -> base text, every changed text file
     run: RunResult | None = None
     coverage: CoverageSummary | None = None
 
@@ -39,19 +41,34 @@ class Rule:
     stage: str  # "static" (no execution) or "dynamic" (reads the test run)
     check: Callable[[RuleContext], Iterable[Finding]]
     fixed: bool = False  # a fixed rule cannot be switched off: it is how the gate fails closed
+    options: Mapping[str, Any] = field(default_factory=dict)  # option name -> default value
+    sources: tuple[str, ...] = ()  # where the rule's facts come from (CWE ids, Python's documentation, ...)
+
+    def option(self, policy: Policy, name: str) -> Any:
+        """The policy's value of one of this rule's options, else the rule's default."""
+        return policy.rule_options.get(self.id, {}).get(name, self.options[name])
 
 
 REGISTRY: dict[str, Rule] = {}
 
 
 def rule(
-    rule_id: str, *, default: RuleSetting, summary: str, stage: str, fixed: bool = False
+    rule_id: str,
+    *,
+    default: RuleSetting,
+    summary: str,
+    stage: str,
+    fixed: bool = False,
+    options: Mapping[str, Any] | None = None,
+    sources: tuple[str, ...] = (),
 ) -> Callable[[Callable[[RuleContext], Iterable[Finding]]], Callable[[RuleContext], Iterable[Finding]]]:
     """Register the decorated function as the check of rule ``rule_id``; its docstring explains it."""
 
     def register(check: Callable[[RuleContext], Iterable[Finding]]) -> Callable[[RuleContext], Iterable[Finding]]:
         explanation = " ".join((check.__doc__ or "").split())
-        REGISTRY[rule_id] = Rule(rule_id, default, summary, explanation, stage, check, fixed)
+        REGISTRY[rule_id] = Rule(
+            rule_id, default, summary, explanation, stage, check, fixed, dict(options or {}), sources
+        )
         return check
 
     return register
