@@ -45,7 +45,9 @@ def build_parser() -> argparse.ArgumentParser:
     demo.add_argument("--sandbox", choices=SANDBOX_CHOICES, default="auto")
 
     sandbox = commands.add_parser("sandbox", help="sandbox tools")
-    sandbox.add_argument("action", choices=("doctor",))
+    sandbox.add_argument("action", choices=("doctor", "build"),
+                         help="doctor: what works here; build: the docker image for this repository")
+    sandbox.add_argument("--rev", default="HEAD", help="build: read the test dependencies at this revision")
     return parser
 
 
@@ -181,6 +183,14 @@ def _demo(args: argparse.Namespace) -> int:
 
 
 def _sandbox(args: argparse.Namespace) -> int:
+    if args.action == "build":
+        from verifier.gitio import Git
+        from verifier.images import build_image
+
+        git = Git(args.repo)
+        tag = build_image(str(git.toplevel()), git.resolve(args.rev), lambda line: print(line, file=sys.stderr))
+        print(tag)
+        return 0
     from verifier.doctor import doctor
 
     return doctor()

@@ -82,6 +82,8 @@ def _run_tests(
     from verifier import sandbox, testrun
 
     backend = sandbox.choose(options.sandbox, policy.allow_process_sandbox or options.sandbox == "process")
+    if backend.name == "docker":
+        _pick_image(backend, git, change)
     workdir = Path(tempfile.mkdtemp(prefix="verifier-tree-"))
     try:
         tree = workdir / "tree"
@@ -94,6 +96,17 @@ def _run_tests(
         return testrun.read_run(backend.run(request))
     finally:
         shutil.rmtree(workdir, ignore_errors=True)
+
+
+def _pick_image(backend, git: Git, change: Change) -> None:  # type: ignore[no-untyped-def]
+    """Use the image built for this repository's test dependencies (at base) when there is one."""
+    import os
+
+    from verifier.images import image_for
+    from verifier.sandbox.docker import IMAGE_ENV
+
+    if not os.environ.get(IMAGE_ENV):
+        backend.image = image_for(str(git.repo), change.base) or backend.image
 
 
 def _lines(text: str, numbers: tuple[int, ...]) -> dict[int, str]:
