@@ -13,8 +13,10 @@ from __future__ import annotations
 
 import functools
 import re
+from typing import TYPE_CHECKING
 
-from verifier.models import MachineMark
+if TYPE_CHECKING:  # the commit hook's fast path must not pay for importing the data model
+    from verifier.models import MachineMark
 
 MACHINE_KEY = "Model-Written"
 SCOPE_KEY = "Model-Written-Scope"
@@ -45,6 +47,8 @@ def machine_mark(message: str) -> MachineMark | None:
     if not agents:
         return None
     globs = (glob for key, value in trailers if key.lower() == SCOPE_KEY.lower() for glob in value.split())
+    from verifier.models import MachineMark
+
     return MachineMark(agent=agents[-1] or UNKNOWN_AGENT, scope=tuple(dict.fromkeys(globs)))
 
 
