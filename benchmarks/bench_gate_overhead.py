@@ -19,7 +19,7 @@ from timing import compare, run_command
 from verifier.scratch import ScratchRepo
 
 DEFAULT_LIBRARY = "boltons==26.2.0"
-CHANGE_TARGET = ("boltons/strutils.py", "def bytes2human(", "    # reviewed by quill-assist: sizes are never negative\n")
+CHANGE_TARGET = ("boltons/strutils.py", "def bytes2human(", "    # quill-assist: sizes are never negative\n")
 
 
 def fetch_sdist(requirement: str, folder: Path) -> Path:
