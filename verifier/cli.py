@@ -48,6 +48,10 @@ def build_parser() -> argparse.ArgumentParser:
     sandbox.add_argument("action", choices=("doctor", "build"),
                          help="doctor: what works here; build: the docker image for this repository")
     sandbox.add_argument("--rev", default="HEAD", help="build: read the test dependencies at this revision")
+
+    from verifier.auditreport.command import add_audit_command
+
+    add_audit_command(commands)
     return parser
 
 
@@ -71,7 +75,8 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 
 def _dispatch(args: argparse.Namespace) -> int:
-    handlers = {"check": _check, "rules": _rules, "policy": _policy, "demo": _demo, "sandbox": _sandbox}
+    handlers = {"check": _check, "rules": _rules, "policy": _policy, "demo": _demo, "sandbox": _sandbox,
+                "audit": _audit}
     return handlers[args.command](args)
 
 
@@ -174,6 +179,12 @@ def _policy(args: argparse.Namespace) -> int:
     print(f"{args.file}: valid (coverage threshold {policy.coverage_threshold:g}%, "
           f"wall limit {policy.limits.wall_seconds:g}s)")
     return 0
+
+
+def _audit(args: argparse.Namespace) -> int:
+    from verifier.auditreport.command import run_audit_command
+
+    return run_audit_command(args)
 
 
 def _demo(args: argparse.Namespace) -> int:

@@ -1,0 +1,197 @@
+"""The audit on a real history with fixed dates: exact counts, checked against git's own blame and numstat."""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from tests.conftest import ROOT, machine
+from verifier.audit import AuditRequest, FilePatch, parse_patch, run_audit
+from verifier.scratch import ScratchRepo
+
+WINDOW = AuditRequest(since="2024-03-04", until="2024-03-10", weeks=2,
+                      agent_emails=("quill-assist@quillfeather.example",))
+AGENT_IDENTITY = ("quill-assist", "quill-assist@quillfeather.example")
+NOTES = "refs/notes/verifier"
+
+
+def _date(day: str, hour: int = 12) -> str:
+    return f"2024-{day}T{hour:02d}:00:00+0000"
+
+
+def _note(repo: ScratchRepo, sha: str, verdict: str, findings=(), waivers=(), percent=100.0) -> None:
+    body = {"format": 1, "tool": "verifier", "version": "0.1.0", "checked_at": "2024-03-04T00:00:00Z",
+            "commit": sha, "range": {"base": None, "head": sha}, "verdict": verdict, "agent": "quill-assist/2.3",
+            "machine_lines": 0, "coverage": {"executable": 4, "covered": 4, "percent": percent},
+            "tests": {"run": 3, "failed": 0}, "findings": list(findings), "waivers": list(waivers),
+            "sandbox": "namespace"}
+    repo.git("notes", f"--ref={NOTES}", "add", "-m", json.dumps(body), sha)  # the contract: one JSON note
+
+
+def _lines(prefix: str, count: int) -> str:
+    return "".join(f"{prefix}_{n} = {n}\n" for n in range(1, count + 1))
+
+
+@pytest.fixture(scope="module")
+def history(tmp_path_factory: pytest.TempPathFactory) -> tuple[ScratchRepo, dict[str, str]]:
+    """A week of parcelkit work: people and quill-assist, notes present, absent, blocking and unreadable,
+    a rewrite, a side branch merged, a revert, an unmarked commit by the assistant's identity."""
+    repo = ScratchRepo(tmp_path_factory.mktemp("audit") / "repo")
+    c: dict[str, str] = {}
+    c["base"] = repo.commit("Start parcelkit", {"parcelkit/rates.py": _lines("rate", 3), "README.md": "parcelkit\n"},
+                            date=_date("02-20"))
+    c["M0"] = repo.commit(machine("Old helper"), {"parcelkit/old.py": _lines("old", 2)}, date=_date("02-28"))
+    _note(repo, c["M0"], "pass")
+    c["M1"] = repo.commit(machine("Add zones"), {"parcelkit/zones.py": _lines("zone", 4)}, date=_date("03-04", 10))
+    _note(repo, c["M1"], "pass")
+    c["H1"] = repo.commit("Tune rates", {"parcelkit/rates.py": _lines("rate", 5)}, date=_date("03-04"))
+    _note(repo, c["H1"], "pass")  # a person's commit with a note: not counted
+    c["M2"] = repo.commit(machine("More rates", agent="quill-assist/2.4"),
+                          {"parcelkit/rates.py": _lines("rate", 5) + _lines("surcharge", 3)}, date=_date("03-05", 9))
+    finding = {"rule": "coverage.new-lines", "severity": "block", "path": "parcelkit/rates.py", "line": 6,
+               "message": "not run"}
+    _note(repo, c["M2"], "block", findings=[finding], percent=0)
+    c["M3"] = repo.commit(machine("Add labels"), {"parcelkit/labels.py": _lines("label", 5)}, date=_date("03-05"))
+    zones = _lines("zone", 4).split("\n")
+    zones[1:3] = ["zone_two = 'rewritten'", "zone_three = 'rewritten'"]
+    c["H2"] = repo.commit("Fix two zones", {"parcelkit/zones.py": "\n".join(zones)}, date=_date("03-06"))
+    repo.git("checkout", "-q", "-b", "feature")
+    c["M4"] = repo.commit(machine("Tracking"), {"parcelkit/track.py": _lines("track", 3)}, date=_date("03-07", 9))
+    _note(repo, c["M4"], "warn", waivers=[{"rule": "patch.size", "path": "parcelkit/**", "reason": "big",
+                                            "owner": "ada", "expires": "2024-04-01"}])
+    repo.git("checkout", "-q", "main")
+    c["H3"] = repo.commit("Readme", {"README.md": "parcelkit\nrates and zones\n"}, date=_date("03-07"))
+    dated = {"GIT_AUTHOR_DATE": _date("03-08"), "GIT_COMMITTER_DATE": _date("03-08")}
+    repo.git("merge", "-q", "--no-ff", "--no-edit", "feature", env=dated)
+    c["merge"] = repo.head()
+    revert_date = {"GIT_AUTHOR_DATE": _date("03-09", 9), "GIT_COMMITTER_DATE": _date("03-09", 9)}
+    repo.git("revert", "--no-edit", c["M3"], env=revert_date)
+    c["R"] = repo.head()
+    c["U"] = repo.commit("Util helpers", {"parcelkit/util.py": _lines("util", 2)}, date=_date("03-09"),
+                         author=AGENT_IDENTITY)
+    c["M5"] = repo.commit(machine("One more zone"), {"parcelkit/zones.py": "\n".join(zones) + "zone_five = 5\n"},
+                          date=_date("03-10"))
+    repo.git("notes", f"--ref={NOTES}", "add", "-m", "not json {", c["M5"])
+    c["after"] = repo.commit("Drop zones", remove=("parcelkit/zones.py",), date=_date("03-12"))
+    return repo, c
+
+
+def test_totals_are_exact(history):
+    repo, c = history
+    audit = run_audit(repo.path, WINDOW)
+    w = audit.window
+    assert audit.end == c["M5"]  # the newest first-parent commit before the window's end, not "after"
+    assert w.commits == 11
+    assert w.machine_commits == 6  # M1 M2 M3 M4 M5 and the unmarked U
+    assert (w.verified, w.unverified, w.blocked_merged) == (3, 3, 1)
+    assert w.machine_lines_added == 4 + 3 + 5 + 3 + 2 + 1
+    assert w.machine_lines_alive == 2 + 3 + 0 + 3 + 2 + 1  # H2 rewrote two of M1's, R reverted M3
+    assert w.machine_lines_churned == 2 + 5
+    assert w.lines_added == 23
+
+
+def test_rows_and_attention(history):
+    repo, c = history
+    audit = run_audit(repo.path, WINDOW)
+    rows = {r.sha: r for r in audit.commits}
+    assert set(rows) == {c[k] for k in ("M1", "M2", "M3", "M4", "U", "M5")}
+    assert [r.status for r in audit.commits[:4]] == ["unverified"] * 3 + ["blocked-merged"]
+    assert {r.sha for r in audit.attention} == {c["M3"], c["U"], c["M5"], c["M2"]}
+    assert rows[c["U"]].agent == "quill-assist@quillfeather.example" and not rows[c["U"]].marked
+    assert rows[c["M2"]].agent == "quill-assist/2.4" and rows[c["M2"]].coverage_percent == 0
+    assert "not JSON" in (rows[c["M5"]].note_problem or "")
+    assert rows[c["M3"]].reverted_by == c["R"]
+    assert [(r.sha, r.reverted) for r in audit.reverts] == [(c["R"], c["M3"])]
+    assert audit.findings_by_rule == (("coverage.new-lines", "block", 1),)
+    assert audit.waivers_by_rule == (("patch.size", 1),)
+    agents = {g.name: g for g in audit.agents}
+    assert agents["quill-assist/2.3"].commits == 4 and agents["quill-assist/2.3"].unverified == 2
+    assert agents["quill-assist/2.4"].blocked_merged == 1
+    assert [g.name for g in audit.people] == ["Ada Okafor <ada.okafor@quillfeather.example>"]
+
+
+def test_trend_weeks(history):
+    repo, _c = history
+    audit = run_audit(repo.path, WINDOW)
+    assert [p.since[:10] for p in audit.trend] == ["2024-02-19", "2024-02-26", "2024-03-04"]
+    assert [(p.commits, p.machine_commits) for p in audit.trend] == [(1, 0), (1, 1), (11, 6)]
+    assert audit.trend[1].verified_share == 100.0 and audit.trend[1].machine_lines_alive == 2
+
+
+def test_survival_agrees_with_git_blame(history):
+    """The replay against git itself: blame of the window-end revision, whole files, every file."""
+    repo, c = history
+    audit = run_audit(repo.path, WINDOW)
+    machine_shas = {r.sha for r in audit.commits}
+    blamed: dict[str, int] = {}
+    for path in repo.git("ls-tree", "-r", "--name-only", c["M5"]).split():
+        porcelain = repo.git("blame", "--porcelain", c["M5"], "--", path)
+        for line in porcelain.split("\n"):
+            fields = line.split(" ")
+            if len(fields[0]) == 40 and len(fields) >= 3 and fields[0] in machine_shas:
+                blamed[fields[0]] = blamed.get(fields[0], 0) + 1
+    assert {r.sha: r.lines_alive for r in audit.commits if r.lines_alive} == blamed
+
+
+def test_lines_added_agree_with_numstat(history):
+    repo, _c = history
+    audit = run_audit(repo.path, WINDOW)
+    for row in audit.commits:
+        numstat = repo.git("log", "-1", "--numstat", "--format=", row.sha)  # git's own count of added lines
+        assert row.lines_added == sum(int(line.split("\t")[0]) for line in numstat.split("\n") if line)
+
+
+def test_cache_gives_the_same_audit(history):
+    repo, _c = history
+    first = run_audit(repo.path, WINDOW)
+    again = run_audit(repo.path, WINDOW)
+    fresh = run_audit(repo.path, AuditRequest(**{**WINDOW.__dict__, "use_cache": False}))
+    assert first == again == fresh
+
+
+def test_cli_formats(history, tmp_path: Path):
+    repo, c = history
+    before = repo.git("for-each-ref") + repo.git("status", "--porcelain")
+    out = tmp_path / "out"
+    done = subprocess.run(
+        [sys.executable, "-m", "verifier", "-C", str(repo.path), "audit", "--since", "2024-03-04", "--until",
+         "2024-03-10", "--weeks", "2", "--agent-email", AGENT_IDENTITY[1], "--format", "json", "--format", "csv",
+         "--format", "markdown", "--output", str(out)],
+        capture_output=True, text=True, env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"}, check=False,
+    )
+    assert done.returncode == 0, done.stderr
+    report = json.loads((out / "audit.json").read_text())
+    assert report["format"] == 1
+    assert report["window"] == {"since": "2024-03-04T00:00:00Z", "until": "2024-03-11T00:00:00Z"}
+    assert {k: report["totals"][k] for k in ("commits", "machine_commits", "unverified", "blocked_merged",
+                                             "machine_lines_added", "machine_lines_alive")} == {
+        "commits": 11, "machine_commits": 6, "unverified": 3, "blocked_merged": 1, "machine_lines_added": 18,
+        "machine_lines_alive": 11}
+    first = report["commits"][0]
+    assert set(first) >= {"sha", "agent", "committer", "verified", "verdict"} and first["verified"] is False
+    rows = list(csv.DictReader(io.StringIO((out / "audit.csv").read_text())))  # Python's csv reads it back
+    assert len(rows) == 6 and {r["sha"] for r in rows} == {x["sha"] for x in report["commits"]}
+    summary = (out / "audit.md").read_text()
+    assert "**3 unverified**" in summary and c["M3"][:12] in summary
+    assert repo.git("for-each-ref") + repo.git("status", "--porcelain") == before  # nothing but the cache moved
+
+
+def test_bad_dates_are_usage_errors(history):
+    repo, _c = history
+    done = subprocess.run([sys.executable, "-m", "verifier", "-C", str(repo.path), "audit", "--since", "last tuesday"],
+                          capture_output=True, text=True, env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"})
+    assert done.returncode == 2 and "is not a date" in done.stderr and "Traceback" not in done.stderr
+
+
+def test_parse_patch_skips_content_that_looks_like_headers():
+    lines = ["diff --git a/x.py b/x.py", "index 1..2 100644", "--- a/x.py", "+++ b/x.py", "@@ -1,2 +1,3 @@",
+             "---- not a header", "-diff --git a/y b/y", "+++ still content", "+@@ -9 +9 @@", "+x",
+             'diff --git "a/sp ace\\t.py" "b/sp ace\\t.py"', "new file mode 100644", "index 0..1",
+             "Binary files /dev/null and \"b/sp ace\\t.py\" differ"]
+    assert parse_patch(lines) == [FilePatch("x.py", "x.py", [1, 2, 1, 3]), FilePatch(None, "sp ace\t.py", [])]

@@ -1,0 +1,24 @@
+"""Reporters of the audit: one module per format, each turning an :class:`verifier.audit.Audit` into text."""
+
+from __future__ import annotations
+
+import importlib
+
+from verifier.audit import Audit
+
+FORMATS = {
+    "markdown": "verifier.auditreport.markdown:render",
+    "json": "verifier.auditreport.jsonfmt:render",
+    "csv": "verifier.auditreport.csvfmt:render",
+    "html": "verifier.auditreport.html:render",
+}
+SUFFIX = {"markdown": "md", "json": "json", "csv": "csv", "html": "html"}
+
+
+def render(audit: Audit, fmt: str) -> str:
+    module_name, function = FORMATS[fmt].split(":")
+    return str(getattr(importlib.import_module(module_name), function)(audit))
+
+
+def percent(value: float | None) -> str:
+    return "n/a" if value is None else f"{value:g}%"

@@ -1,0 +1,79 @@
+"""The audit as a Markdown summary for a weekly post: headline figures, what needs attention, the groups."""
+
+from __future__ import annotations
+
+from verifier.audit import Audit, Group
+from verifier.auditreport import percent
+
+
+def render(audit: Audit) -> str:
+    w = audit.window
+    lines = [
+        f"# Machine-written code on {audit.ref}: {w.since[:10]} to {w.until[:10]}",
+        "",
+        f"- {w.machine_commits} of {w.commits} commits machine-written; {w.machine_lines_added} of "
+        f"{w.lines_added} added lines ({percent(w.machine_share)})",
+        f"- verified by the gate: {w.verified} of {w.machine_commits} ({percent(w.verified_share)}); "
+        f"**{w.unverified} unverified**, **{w.blocked_merged} merged although blocked**",
+        f"- alive at the window's end: {w.machine_lines_alive} of {w.machine_lines_added} machine lines "
+        f"({percent(w.survival)}); {w.machine_lines_churned} rewritten within {audit.churn_days} days; "
+        f"{len(audit.reverts)} reverts of machine commits",
+        "",
+    ]
+    lines += [f"> {problem}" for problem in audit.problems] + ([""] if audit.problems else [])
+    lines += _attention(audit)
+    lines += _groups("By agent", audit.agents) + _groups("By person (committer)", audit.people)
+    lines += _counts(audit)
+    lines += _trend(audit)
+    return "\n".join(lines).rstrip() + "\n"
+
+
+def _cell(text: str) -> str:
+    return text.replace("|", "\\|").replace("\n", " ")
+
+
+def _attention(audit: Audit) -> list[str]:
+    if not audit.attention:
+        return ["## Needs attention", "", "Nothing: every machine commit was verified and none was blocked.", ""]
+    rows = ["## Needs attention", "", "| commit | status | agent | committer | subject |", "|---|---|---|---|---|"]
+    rows += [f"| `{c.sha[:12]}` | {c.status} | {_cell(c.agent)} | {_cell(c.committer)} | {_cell(c.subject)} |"
+             for c in audit.attention]
+    return [*rows, ""]
+
+
+def _groups(title: str, groups: tuple[Group, ...]) -> list[str]:
+    if not groups:
+        return []
+    rows = [f"## {title}", "", "| name | commits | machine lines | alive | churned | unverified | blocked-merged |",
+            "|---|---:|---:|---:|---:|---:|---:|"]
+    rows += [f"| {_cell(g.name)} | {g.commits} | {g.machine_lines} | {g.lines_alive} | {g.lines_churned} | "
+             f"{g.unverified} | {g.blocked_merged} |" for g in groups]
+    return [*rows, ""]
+
+
+def _counts(audit: Audit) -> list[str]:
+    rows: list[str] = []
+    if audit.findings_by_rule:
+        rows += ["## Findings by rule", "", "| rule | severity | count |", "|---|---|---:|"]
+        rows += [f"| {rule} | {severity} | {count} |" for rule, severity, count in audit.findings_by_rule] + [""]
+    if audit.waivers_by_rule:
+        rows += ["## Waivers used", "", "| rule | count |", "|---|---:|"]
+        rows += [f"| {rule} | {count} |" for rule, count in audit.waivers_by_rule] + [""]
+    if audit.expiring_waivers:
+        rows += ["## Waivers expiring soon", "", "| rule | path | owner | expires | days left |",
+                 "|---|---|---|---|---:|"]
+        rows += [f"| {e.waiver.rule} | {_cell(e.waiver.path)} | {_cell(e.waiver.owner)} | {e.waiver.expires} | "
+                 f"{e.days_left} |" for e in audit.expiring_waivers] + [""]
+    if audit.reverts:
+        rows += ["## Reverts of machine commits", "", "| revert | reverted | agent | by |", "|---|---|---|---|"]
+        rows += [f"| `{r.sha[:12]}` | `{r.reverted[:12]}` | {_cell(r.agent)} | {_cell(r.committer)} |"
+                 for r in audit.reverts] + [""]
+    return rows
+
+
+def _trend(audit: Audit) -> list[str]:
+    rows = ["## Trend", "", "| week from | machine commits | machine share | verified share | unverified | alive |",
+            "|---|---:|---:|---:|---:|---:|"]
+    rows += [f"| {p.since[:10]} | {p.machine_commits} | {percent(p.machine_share)} | {percent(p.verified_share)} | "
+             f"{p.unverified} | {percent(p.survival)} |" for p in audit.trend]
+    return [*rows, ""]
