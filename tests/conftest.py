@@ -73,7 +73,9 @@ def snapshot(path: Path) -> dict[str, str]:
 
     state = {
         "HEAD": git("rev-parse", "HEAD") + git("symbolic-ref", "-q", "HEAD"),
-        "refs": git("for-each-ref", "--format=%(refname) %(objectname)"),
+        # the gate's own notes ref is the one ref a check may write (verifier.notes)
+        "refs": "".join(line for line in git("for-each-ref", "--format=%(refname) %(objectname)")
+                        .splitlines(keepends=True) if not line.startswith("refs/notes/verifier ")),
         "stash": git("stash", "list"),
         "status": git("status", "--porcelain=v2", "--untracked-files=all", "--ignored"),
     }

@@ -16,7 +16,8 @@ from pathlib import Path
 from verifier.errors import EXIT_UNVERIFIED, UsageError, VerifierError
 
 SANDBOX_CHOICES = ("auto", "docker", "namespace", "process")
-FORMAT_SUFFIX = {"text": "txt", "json": "json"}
+FORMAT_SUFFIX = {"text": "txt", "json": "json", "sarif": "sarif", "markdown": "md", "junit": "junit.xml"}
+HOOK_CHOICES = ("commit-msg", "pre-push", "post-commit")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -29,9 +30,15 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("--staged", action="store_true", help="check the index against HEAD (a commit hook)")
     check.add_argument("--message-file", type=Path, help="with --staged: the pending commit message")
     check.add_argument("--sandbox", choices=SANDBOX_CHOICES, default="auto", help="where the tests run")
-    check.add_argument("--format", action="append", choices=tuple(FORMAT_SUFFIX), help="output format (repeatable)")
+    check.add_argument("--format", action="append", choices=(*FORMAT_SUFFIX, "all"),
+                       help="output format (repeatable; 'all' for every format)")
     check.add_argument("--output", type=Path, help="write the report here (a folder when several formats)")
     check.add_argument("--quiet", action="store_true", help="print only the verdict line and findings")
+    check.add_argument("--no-notes", action="store_true", help="do not record the verdict as git notes")
+    check.add_argument("--notes-ref", help="the notes ref (default: git config verifier.notesRef, else "
+                       "refs/notes/verifier)")
+    check.add_argument("--deepen", type=int, metavar="N", help="in a shallow clone, fetch N more commits at a "
+                       "time (up to 10 times) until the change's base is present")
 
     rules = commands.add_parser("rules", help="list the rules, or explain one")
     rules.add_argument("rule", nargs="?", help="a rule id to explain")
@@ -39,6 +46,13 @@ def build_parser() -> argparse.ArgumentParser:
     policy = commands.add_parser("policy", help="check a policy file")
     policy.add_argument("action", choices=("check",))
     policy.add_argument("file", nargs="?", type=Path, default=Path("verifier.yaml"))
+
+    hooks = commands.add_parser("hooks", help="install, uninstall or show the git hooks")
+    hooks.add_argument("action", choices=("install", "uninstall", "status"))
+    hooks.add_argument("--no-post-commit", action="store_true", help="install without the hook that writes notes")
+    hook = commands.add_parser("hook", help="what an installed git hook runs (used by the hook scripts)")
+    hook.add_argument("name", choices=HOOK_CHOICES)
+    hook.add_argument("hook_args", nargs="*", metavar="ARG")
 
     demo = commands.add_parser("demo", help="build a demo repository and run the gate on it")
     demo.add_argument("dir", nargs="?", type=Path, help="where to build it (default: a new temporary folder)")
@@ -48,10 +62,6 @@ def build_parser() -> argparse.ArgumentParser:
     sandbox.add_argument("action", choices=("doctor", "build"),
                          help="doctor: what works here; build: the docker image for this repository")
     sandbox.add_argument("--rev", default="HEAD", help="build: read the test dependencies at this revision")
-
-    from verifier.auditreport.command import add_audit_command
-
-    add_audit_command(commands)
     return parser
 
 
@@ -76,7 +86,7 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 def _dispatch(args: argparse.Namespace) -> int:
     handlers = {"check": _check, "rules": _rules, "policy": _policy, "demo": _demo, "sandbox": _sandbox,
-                "audit": _audit}
+                "hooks": _hooks, "hook": _hook}
     return handlers[args.command](args)
 
 
@@ -88,13 +98,41 @@ def _check(args: argparse.Namespace) -> int:
         return 0
     from verifier.change import RevisionSpec
     from verifier.pipeline import Options, verify
+    from verifier.report.text import StageDisplay
     from verifier.verdict import EXIT_CODES
 
     spec = RevisionSpec(text=args.spec, staged=args.staged, message=message)
-    progress = None if args.quiet else (lambda text: print(f"verifier: {text}", file=sys.stderr))
-    report = verify(args.repo, spec, Options(sandbox=args.sandbox, progress=progress))
+    index_file = os.path.abspath(os.environ["GIT_INDEX_FILE"]) if args.staged and os.environ.get("GIT_INDEX_FILE") \
+        else None
+    with StageDisplay() as display:
+        progress = None if args.quiet else display
+        if args.deepen:
+            _deepen(args, progress)
+        options = Options(sandbox=args.sandbox, progress=progress, index_file=index_file)
+        report = verify(args.repo, spec, options)
+    _record_notes(report, args)
     _emit(report, args)
     return EXIT_CODES[report.verdict]
+
+
+def _deepen(args: argparse.Namespace, progress) -> None:  # type: ignore[no-untyped-def]
+    from verifier.ci import deepen_for
+    from verifier.gitio import Git
+
+    deepen_for(Git(Git(args.repo).toplevel()), args.spec, args.deepen, say=progress or (lambda _text: None))
+
+
+def _record_notes(report, args: argparse.Namespace) -> None:  # type: ignore[no-untyped-def]
+    """One git note per checked commit (a --staged check has none yet: its post-commit hook writes it)."""
+    if args.no_notes or args.staged:
+        return
+    from verifier import notes
+    from verifier.gitio import Git
+
+    git = Git(Git(args.repo).toplevel())
+    warning = notes.try_write_notes(git, report, notes.configured_ref(git, args.notes_ref))
+    if warning:
+        print(f"verifier: {warning}", file=sys.stderr)
 
 
 def _read_message(args: argparse.Namespace) -> str:
@@ -118,11 +156,10 @@ def _has_machine_trailer(message: str) -> bool:
 
 def _emit(report, args: argparse.Namespace) -> None:  # type: ignore[no-untyped-def]
     from verifier.report import render
+    from verifier.report.text import wants_colour
 
-    formats = args.format or ["text"]
-    if not args.quiet or report.verdict != "pass":
-        colour = sys.stdout.isatty() and "NO_COLOR" not in os.environ
-        print(render(report, "text", colour=colour), end="")
+    formats = _formats(args)
+    print(render(report, "text", colour=wants_colour(sys.stdout), quiet=args.quiet), end="")
     if args.output is None:
         if formats != ["text"]:
             for fmt in formats:
@@ -134,6 +171,11 @@ def _emit(report, args: argparse.Namespace) -> None:  # type: ignore[no-untyped-
         target.write_text(render(report, fmt), encoding="utf-8")
 
 
+def _formats(args: argparse.Namespace) -> list[str]:
+    chosen = args.format or ["text"]
+    return list(FORMAT_SUFFIX) if "all" in chosen else list(dict.fromkeys(chosen))
+
+
 def _targets(output: Path, formats: list[str]) -> list[tuple[str, Path]]:
     if len(formats) == 1:
         return [(formats[0], output)]
@@ -142,13 +184,13 @@ def _targets(output: Path, formats: list[str]) -> list[tuple[str, Path]]:
 
 def _write_error_report(args: argparse.Namespace, message: str, exit_code: int) -> None:
     """Even when the gate stops early, a CI step reading the JSON report finds the reason there."""
-    if getattr(args, "command", None) != "check" or args.output is None or "json" not in (args.format or []):
+    if getattr(args, "command", None) != "check" or args.output is None or "json" not in _formats(args):
         return
     import json
 
     from verifier.report.jsonfmt import error_dict
 
-    target = dict(_targets(args.output, args.format))["json"]
+    target = dict(_targets(args.output, _formats(args)))["json"]
     try:
         target.parent.mkdir(parents=True, exist_ok=True)
         target.write_text(json.dumps(error_dict(message, exit_code), indent=2) + "\n", encoding="utf-8")
@@ -179,6 +221,35 @@ def _policy(args: argparse.Namespace) -> int:
     print(f"{args.file}: valid (coverage threshold {policy.coverage_threshold:g}%, "
           f"wall limit {policy.limits.wall_seconds:g}s)")
     return 0
+
+
+def _hooks(args: argparse.Namespace) -> int:
+    from verifier import hooks
+    from verifier.gitio import Git
+
+    git = Git(args.repo)
+    git.toplevel()  # a clear message outside a repository
+    if args.action == "status":
+        print(f"hooks folder: {hooks.hooks_dir(git)}")
+        for state in hooks.status(git):
+            chained = " (runs the previous hook first)" if state.chained else ""
+            print(f"  {state.name:<12} {state.state}{chained}")
+        return 0
+    if args.action == "install":
+        names = [n for n in hooks.HOOK_NAMES if not (args.no_post_commit and n == "post-commit")]
+        lines = hooks.install(git, names)
+    else:
+        lines = hooks.uninstall(git)
+    print(f"hooks folder: {hooks.hooks_dir(git)}")
+    for line in lines:
+        print(f"  {line}")
+    return 0
+
+
+def _hook(args: argparse.Namespace) -> int:
+    from verifier.hooks import run_hook
+
+    return run_hook(args.repo, args.name, args.hook_args, sys.stdin if args.name == "pre-push" else ())
 
 
 def _audit(args: argparse.Namespace) -> int:

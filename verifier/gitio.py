@@ -22,11 +22,16 @@ _RECORD = "\x1e"
 class Git:
     """A repository reached through the ``git`` command."""
 
-    def __init__(self, repo: str | os.PathLike[str]) -> None:
+    def __init__(self, repo: str | os.PathLike[str], index_file: str | None = None) -> None:
+        """``index_file``: the index to read instead of the repository's own (a commit hook's
+        ``GIT_INDEX_FILE``, which ``git commit -a`` points at a temporary index)."""
         self.repo = Path(repo)
+        self.index_file = index_file
         self._env = {**os.environ, "GIT_OPTIONAL_LOCKS": "0", "GIT_TERMINAL_PROMPT": "0"}
         for leaking in ("GIT_DIR", "GIT_WORK_TREE", "GIT_INDEX_FILE", "GIT_DIFF_OPTS", "GIT_EXTERNAL_DIFF"):
             self._env.pop(leaking, None)
+        if index_file:
+            self._env["GIT_INDEX_FILE"] = index_file
 
     def run(self, args: Sequence[str], *, input: bytes | None = None, check: bool = True) -> bytes:
         """Run ``git args`` in the repository and return its standard output as bytes."""

@@ -45,7 +45,7 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
     base_sources, sources = _changed_sources(git, change)
     from verifier.rules import RuleContext, apply_rules
 
-    context = RuleContext(change, provenance, policy, sources, base_sources)
+    context = RuleContext(change, provenance, policy, sources, base_sources, read_base=_base_reader(git, change))
     findings = apply_rules("static", context)
     say(f"{provenance.machine_line_count} machine-written lines in {len(provenance.machine_lines)} files")
     run = _run_tests(git, change, policy, Selection(whole_suite=True), options, say)
@@ -73,6 +73,15 @@ def _changed_sources(git: Git, change: Change) -> tuple[dict[str, str], dict[str
     head = {f.path: blobs[s] for f in wanted if (s := f"{head_prefix}{f.path}") in blobs}
     base = {f.old_path: blobs[s] for f in wanted if f.old_path and (s := f"{change.base}:{f.old_path}") in blobs}
     return base, head
+
+
+def _base_reader(git: Git, change: Change) -> Callable[[str], str | None]:
+    """Read a file at the base revision on demand (for rules that consult files the change left alone)."""
+    def read(path: str) -> str | None:
+        data = git.show_file(change.base, path) if change.base else None
+        return None if data is None else data.decode("utf-8", "replace")
+
+    return read
 
 
 def _run_tests(

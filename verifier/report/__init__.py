@@ -5,6 +5,9 @@ from __future__ import annotations
 FORMATS = {
     "text": "verifier.report.text:render",
     "json": "verifier.report.jsonfmt:render",
+    "sarif": "verifier.report.sarif:render",
+    "markdown": "verifier.report.markdown:render",
+    "junit": "verifier.report.junit:render",
 }
 
 

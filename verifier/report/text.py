@@ -1,9 +1,19 @@
 """The terminal view: the verdict first, then what a reviewer needs to see at a glance.
 
-Colour only when asked for (the CLI asks when standard output is a terminal and ``NO_COLOR`` is unset).
+Colour only when asked for: :func:`wants_colour` says yes for a terminal when ``NO_COLOR`` is unset or empty
+(https://no-color.org). ``quiet`` (for hooks) keeps the verdict line, the uncovered lines and the findings.
+:class:`StageDisplay` shows progress while the gate works: the sandbox hands its results back only when the
+run ends, so it shows the current stage and the time spent in it (a spinner on a terminal, one line per
+stage otherwise), not per-test progress.
 """
 
 from __future__ import annotations
+
+import os
+import sys
+import threading
+import time
+from typing import TextIO
 
 from verifier.models import Finding, Report
 
@@ -16,12 +26,22 @@ _LABELS = {
 }
 
 
-def render(report: Report, colour: bool = False) -> str:
+def wants_colour(stream: TextIO) -> bool:
+    """Colour for a terminal, unless ``NO_COLOR`` is set to a non-empty value."""
+    return not os.environ.get("NO_COLOR") and hasattr(stream, "isatty") and stream.isatty()
+
+
+def render(report: Report, colour: bool = False, quiet: bool = False) -> str:
     paint = _painter(colour)
-    out = [paint(report.verdict, _LABELS[report.verdict]), _header(report)]
+    out = [paint(report.verdict, _LABELS[report.verdict])]
+    if quiet:
+        out += _coverage(report, paint) if report.verdict != "pass" else []
+        out += _findings(report.findings, paint) if report.findings else []
+        return "\n".join(out) + "\n"
+    out.append(_header(report))
     out += _machine_lines(report)
     out += _tests(report)
-    out += _coverage(report)
+    out += _coverage(report, paint)
     out += _findings(report.findings, paint)
     out += [f"note: {note}" for note in report.notes]
     return "\n".join(out) + "\n"
@@ -61,7 +81,7 @@ def _tests(report: Report) -> list[str]:
     return [f"tests: {counts} ({run.status}, {run.wall_seconds:.1f}s)"]
 
 
-def _coverage(report: Report) -> list[str]:
+def _coverage(report: Report, paint) -> list[str]:  # type: ignore[no-untyped-def]
     cov = report.coverage
     if cov is None:
         return []
@@ -72,7 +92,7 @@ def _coverage(report: Report) -> list[str]:
     for path, lines in cov.uncovered.items():
         source = report.sources.get(path, {})
         rows.append(f"  uncovered in {path}:")
-        rows += [f"    {line:>5} | {source.get(line, '').rstrip()}" for line in lines[:40]]
+        rows += [f"    {paint('block', f'{line:>5}')} | {source.get(line, '').rstrip()}" for line in lines[:40]]
         if len(lines) > 40:
             rows.append(f"    ... and {len(lines) - 40} more")
     return rows
@@ -101,3 +121,60 @@ def _spans(lines: tuple[int, ...]) -> str:
         else:
             spans.append([line, line])
     return ", ".join(f"{a}-{b}" if a != b else f"{a}" for a, b in spans)
+
+
+_SPINNER = "|/-\\"
+
+
+class StageDisplay:
+    """Progress while the gate works: a callable taking stage names, used as a context manager.
+
+    On a terminal one line is redrawn (spinner, stage, seconds in it); otherwise each stage is printed once.
+    """
+
+    def __init__(self, stream: TextIO | None = None, interval: float = 0.1) -> None:
+        self.stream = stream or sys.stderr
+        self.live = hasattr(self.stream, "isatty") and self.stream.isatty()
+        self.interval = interval
+        self._stage = ""
+        self._since = time.monotonic()
+        self._lock = threading.Lock()
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+
+    def __call__(self, stage: str) -> None:
+        with self._lock:
+            if self.live and self._stage:
+                self._draw(final=True)
+            self._stage, self._since = stage, time.monotonic()
+            if not self.live:
+                print(f"verifier: {stage}", file=self.stream, flush=True)
+
+    def __enter__(self) -> StageDisplay:
+        if self.live:
+            self._thread = threading.Thread(target=self._spin, name="verifier-progress", daemon=True)
+            self._thread.start()
+        return self
+
+    def __exit__(self, *_exc: object) -> None:
+        self._stop.set()
+        if self._thread is not None:
+            self._thread.join()
+            with self._lock:
+                if self._stage:
+                    self._draw(final=True)
+
+    def _spin(self) -> None:
+        turn = 0
+        while not self._stop.wait(self.interval):
+            with self._lock:
+                if self._stage:
+                    self._draw(final=False, turn=turn)
+            turn += 1
+
+    def _draw(self, final: bool, turn: int = 0) -> None:
+        elapsed = time.monotonic() - self._since
+        mark = "done" if final else _SPINNER[turn % len(_SPINNER)]
+        end = "\n" if final else ""
+        self.stream.write(f"\r\033[2Kverifier: {self._stage} ({elapsed:.1f}s) {mark}{end}")
+        self.stream.flush()

@@ -14,7 +14,11 @@ from typing import Any
 
 from verifier.models import Change, CoverageSummary, Finding, Policy, Provenance, RuleSetting, RunResult
 
-_FAMILIES = ("verifier.rules.tests", "verifier.rules.coverage", "verifier.rules.code")
+_FAMILIES = (
+    "verifier.rules.tests", "verifier.rules.coverage", "verifier.rules.code",
+    "verifier.rules.calls", "verifier.rules.paths", "verifier.rules.weakened", "verifier.rules.harness",
+    "verifier.rules.size", "verifier.rules.deps", "verifier.rules.secrets",
+)
 
 
 @dataclass(frozen=True)
@@ -28,6 +32,8 @@ class RuleContext:
     base_sources: Mapping[str, str] = field(default_factory=dict)  # base path -> base text, every changed text file
     run: RunResult | None = None
     coverage: CoverageSummary | None = None
+    # reads a file the change did not touch at the base revision (None when absent); None: not available
+    read_base: Callable[[str], str | None] | None = None
 
 
 @dataclass(frozen=True)
@@ -91,5 +97,13 @@ def apply_rules(stage: str, context: RuleContext) -> list[Finding]:
             continue
         for finding in registered.check(context):
             severity = finding.severity if finding.severity in ("error", "info") else setting
-            findings.append(replace(finding, severity=severity))
+            findings.append(_capped(replace(finding, severity=severity)))
     return findings
+
+
+def _capped(finding: Finding) -> Finding:
+    """A finding that says ``details["max_severity"] = "warn"`` never blocks (e.g. a changed expected value,
+    which may be a legitimate fix): the rule's setting applies up to that cap."""
+    if finding.severity == "block" and finding.details.get("max_severity") == "warn":
+        return replace(finding, severity="warn")
+    return finding

@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
-import ast
 from collections.abc import Iterator
 
+from verifier.astnames import parse_or_error
 from verifier.models import Finding
 from verifier.rules import RuleContext, rule
 
@@ -17,9 +17,8 @@ def syntax_errors(context: RuleContext) -> Iterator[Finding]:
         source = context.head_sources.get(path)
         if source is None or not path.endswith(".py"):
             continue
-        try:
-            ast.parse(source, filename=path)
-        except SyntaxError as error:
-            yield Finding("code.syntax", "block", f"syntax error: {error.msg}", path=path, line=error.lineno)
-        except ValueError as error:  # e.g. NUL bytes
-            yield Finding("code.syntax", "block", f"cannot be parsed: {error}", path=path)
+        parsed = parse_or_error(source, path)  # the parse the other static rules share
+        if isinstance(parsed, SyntaxError):
+            yield Finding("code.syntax", "block", f"syntax error: {parsed.msg}", path=path, line=parsed.lineno)
+        elif isinstance(parsed, ValueError):  # e.g. NUL bytes
+            yield Finding("code.syntax", "block", f"cannot be parsed: {parsed}", path=path)

@@ -1,0 +1,86 @@
+"""``secrets.literal``: credentials written into machine-written lines (never repeated in full in a finding)."""
+
+from __future__ import annotations
+
+import math
+import re
+from collections import Counter
+from collections.abc import Iterator
+
+from verifier.models import Finding
+from verifier.rules import RuleContext, rule
+from verifier.rules.machine import mask, option
+
+RULE_ID = "secrets.literal"
+
+# Token shapes published by their issuers (from memory of their documentation: AWS access key ids,
+# GitHub's token prefixes, Slack's token prefixes, RFC 7519's JWT compact form, PEM armour of RFC 7468).
+SHAPES: tuple[tuple[str, re.Pattern[str]], ...] = (
+    ("private key block", re.compile(r"-----BEGIN ((RSA|DSA|EC|OPENSSH|ENCRYPTED|PGP) )?PRIVATE KEY( BLOCK)?-----")),
+    ("AWS access key id", re.compile(r"\b((?:AKIA|ASIA)[A-Z0-9]{16})\b")),
+    ("GitHub token", re.compile(r"\b(gh[pousr]_[A-Za-z0-9]{36,251}|github_pat_[A-Za-z0-9_]{50,})\b")),
+    ("Slack token", re.compile(r"\b(xox[abposr]-[A-Za-z0-9-]{10,})")),
+    ("JSON Web Token", re.compile(r"\b(eyJ[A-Za-z0-9_-]{8,}\.eyJ[A-Za-z0-9_-]{8,}\.[A-Za-z0-9_-]{8,})")),
+)
+_SECRET_NAME = r"[A-Za-z0-9_.-]*(?:key|token|secret|passw(?:or)?d|passwd|pwd|credential|auth)[A-Za-z0-9_]*"
+ASSIGNED = re.compile(
+    r"(?i)\b(" + _SECRET_NAME + r")[\"']?\s*(?:=|:=|:|=>)\s*[rbuRBU]?([\"'])([^\"'\s]+)\2"
+)
+# Values that say they are not real: documentation examples (AWS's end in EXAMPLE), templates, stars.
+_PLACEHOLDERS = re.compile(r"(?i)example|dummy|changeme|placeholder|xxxx|your[_-]|redacted|\$\{|\{\{|<|\*\*\*")
+
+
+# Every shape and name above contains one of these; a line without any is skipped cheaply.
+_PREFILTER = re.compile(r"(?i)-----BEGIN|AKIA|ASIA|gh[pousr]_|github_pat_|xox|eyJ|key|token|secret|passw|pwd"
+                        r"|credential|auth")
+
+
+def entropy(text: str) -> float:
+    """Shannon entropy in bits per character of ``text``."""
+    counts = Counter(text)
+    return -sum(c / len(text) * math.log2(c / len(text)) for c in counts.values()) if text else 0.0
+
+
+def find_secrets(
+    line: str, min_length: int, min_entropy: float, allowed: list[re.Pattern[str]]
+) -> list[tuple[str, str]]:
+    """(kind, secret) for each credential-like literal in ``line``."""
+    found: list[tuple[str, str]] = []
+    if not _PREFILTER.search(line):
+        return found
+    for kind, shape in SHAPES:
+        for match in shape.finditer(line):
+            found.append((kind, match.group(1) if shape.groups and kind != "private key block" else match.group(0)))
+    for match in ASSIGNED.finditer(line):
+        value = match.group(3)
+        if len(value) >= min_length and entropy(value) >= min_entropy:
+            found.append((f"high-entropy string assigned to '{match.group(1)}'", value))
+    return [(kind, secret) for kind, secret in found
+            if not _PLACEHOLDERS.search(secret) and not any(a.search(secret) for a in allowed)]
+
+
+@rule(RULE_ID, default="block", summary="credential-like literals on machine-written lines", stage="static",
+      options={"allow": [], "min_length": 16, "min_entropy": 3.5},
+      sources=("CWE-798", "CWE-321", "RFC 7468 (PEM armour)", "RFC 7519 (JWT compact serialisation)",
+               "AWS documentation: access key id format", "GitHub documentation: token prefixes"))
+def literal_secrets(context: RuleContext) -> Iterator[Finding]:
+    """A credential in the source is a credential leaked to everyone who can read the repository, and
+    a model may copy one from its context. Machine-written lines are searched for private key blocks,
+    tokens of well-known shapes (AWS access key ids, GitHub and Slack tokens, JSON Web Tokens) and
+    high-entropy strings assigned to names like key, token, secret or password. Findings show only a
+    masked prefix. Remove the secret, revoke it (it is in git's history now), and read it from the
+    environment or a secret store. Option ``allow`` lists regexes of values that are known fakes."""
+    allowed = [re.compile(p) for p in option(context, RULE_ID, "allow")]
+    min_length = option(context, RULE_ID, "min_length")
+    min_entropy = option(context, RULE_ID, "min_entropy")
+    for path, lines in context.provenance.machine_lines.items():
+        source = context.head_sources.get(path)
+        if source is None or not _PREFILTER.search(source):
+            continue
+        rows = source.split("\n")
+        for number in lines:
+            text = rows[number - 1] if 0 < number <= len(rows) else ""
+            for kind, secret in find_secrets(text, min_length, min_entropy, allowed):
+                cwe = "CWE-321" if kind == "private key block" else "CWE-798"
+                yield Finding(RULE_ID, "block", f"{kind} in a machine-written line: {mask(secret)} ({cwe})",
+                              path=path, line=number, details={"kind": kind, "cwe": cwe, "masked": mask(secret)})
