@@ -195,3 +195,27 @@ def test_parse_patch_skips_content_that_looks_like_headers():
              'diff --git "a/sp ace\\t.py" "b/sp ace\\t.py"', "new file mode 100644", "index 0..1",
              "Binary files /dev/null and \"b/sp ace\\t.py\" differ"]
     assert parse_patch(lines) == [FilePatch("x.py", "x.py", [1, 2, 1, 3]), FilePatch(None, "sp ace\t.py", [])]
+
+
+def test_recheck_runs_the_gate_and_writes_the_note(tmp_path: Path):
+    from tests.conftest import test_sandbox
+
+    repo = ScratchRepo(tmp_path / "repo")
+    first_test = "from pk.calc import add\n\n\ndef test_add():\n    assert add(1, 2) == 3\n"
+    repo.commit("Start", {"pk/__init__.py": "", "pk/calc.py": "def add(a, b):\n    return a + b\n",
+                          "tests/test_calc.py": first_test}, date=_date("03-01"))
+    sha = repo.commit(machine("Add sub"), {
+        "pk/calc.py": "def add(a, b):\n    return a + b\n\n\ndef sub(a, b):\n    return a - b\n",
+        "tests/test_calc.py": "from pk.calc import add, sub\n\n\ndef test_add():\n    assert add(1, 2) == 3\n\n\n"
+                              "def test_sub():\n    assert sub(3, 2) == 1\n"}, date=_date("03-05"))
+    command = [sys.executable, "-m", "verifier", "-C", str(repo.path), "audit", "--since", "2024-03-04",
+               "--until", "2024-03-10", "--format", "json"]
+    env = {"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"}
+    before = json.loads(subprocess.run(command, capture_output=True, text=True, env=env, check=True).stdout)
+    assert before["totals"]["unverified"] == 1
+    after = subprocess.run([*command, "--recheck", "--sandbox", test_sandbox()], capture_output=True, text=True,
+                           env=env, check=True)
+    report = json.loads(after.stdout)
+    assert report["totals"]["unverified"] == 0 and report["commits"][0]["verdict"] == "pass"
+    note = json.loads(repo.git("notes", f"--ref={NOTES}", "show", sha))  # the note git holds now
+    assert note["format"] == 1 and note["verdict"] == "pass" and note["commit"] == sha
