@@ -162,18 +162,26 @@ def test_staged_without_trailer_returns_at_once(repo: ScratchRepo, tmp_path: Pat
 
 
 def test_policy_comes_from_the_base_not_the_change(repo: ScratchRepo) -> None:
-    start(repo, {"verifier.yaml": "version: 1\ncoverage:\n  threshold: 50\n"})
-    lax = "version: 1\ncoverage:\n  threshold: 0\n"
-    sha = repo.commit(machine("Zones, and relax the policy"),
-                      {"parcelkit/zones.py": demo.ZONES, "tests/test_zones.py": demo.TEST_ZONES, "verifier.yaml": lax})
-    out = run_check(repo, sha)
-    assert out.report["policy"].endswith(":verifier.yaml")
-    assert out.report["coverage"]["threshold"] == 50.0
-    assert out.code == 0  # 6 of 9 = 66.7% passes the base's 50%, and the change's 0% played no part
+    base = start(repo, {"verifier.yaml": "version: 1\ncoverage:\n  threshold: 70\n"})
+    repo.commit("Human: relax the policy", {"verifier.yaml": "version: 1\ncoverage:\n  threshold: 0\n"})
+    repo.commit(machine("Zones"), {"parcelkit/zones.py": demo.ZONES, "tests/test_zones.py": demo.TEST_ZONES})
+    out = run_check(repo, f"{base}..HEAD")
+    assert out.report["policy"] == f"{base[:12]}:verifier.yaml"
+    assert out.report["coverage"]["threshold"] == 70.0
+    # 6 of 9 = 66.7% fails the base's 70%; the 0% the change itself brings plays no part
+    assert out.code == 1 and {f["rule"] for f in out.report["findings"]} == {"coverage.new-lines"}
     strict = repo.commit("Human: strict", {"verifier.yaml": "version: 1\nextends: strict\n"})
     sha = repo.commit(machine("More zones"), {"parcelkit/zones.py": demo.ZONES + "\n\ndef z():\n    return 1\n"})
     out = run_check(repo, f"{strict}..{sha}")
     assert out.report["coverage"]["threshold"] == 100.0 and out.code == 1
+
+
+def test_a_machine_edit_of_the_policy_is_blocked(repo: ScratchRepo) -> None:
+    start(repo, {"verifier.yaml": "version: 1\ncoverage:\n  threshold: 50\n"})
+    sha = repo.commit(machine("Relax the policy"), {"verifier.yaml": "version: 1\ncoverage:\n  threshold: 0\n"})
+    out = run_check(repo, sha)
+    assert out.code == 1
+    assert [f["path"] for f in out.report["findings"] if f["rule"] == "paths.protected"] == ["verifier.yaml"]
 
 
 def test_broken_policy_is_exit_2_naming_file_line_and_key(repo: ScratchRepo) -> None:

@@ -111,6 +111,23 @@ class Git:
             by_sha[sha] = Commit(sha, tuple(parents.split()), author, committer, message)
         return [by_sha[sha] for sha in shas if sha in by_sha]
 
+    def touched_paths(self, shas: Sequence[str]) -> dict[str, list[str]]:
+        """The paths each commit of ``shas`` touched against its first parent (old and new names of a rename),
+        read in one ``git diff-tree --stdin`` call."""
+        if not shas:
+            return {}
+        out = self.run(["diff-tree", "--stdin", "-r", "-m", "--first-parent", "--root", "--no-renames",
+                        "--name-only", "-z"], input="\n".join(shas).encode() + b"\n")
+        touched: dict[str, list[str]] = {}
+        current = None
+        for field in out.decode("utf-8", "surrogateescape").split("\0"):
+            if field in shas:
+                current = field
+                touched.setdefault(current, [])
+            elif field and current is not None:
+                touched[current].append(field.lstrip("\n"))
+        return touched
+
     def first_parent(self, sha: str) -> str | None:
         out = self.run(["rev-parse", "--verify", "--quiet", f"{sha}^1"], check=False)
         return out.decode().strip() or None

@@ -76,6 +76,8 @@ class Provenance:
     machine_lines: Mapping[str, tuple[int, ...]]
     line_commits: Mapping[str, Mapping[int, str]]  # path -> head line -> introducing commit sha
     marks: Mapping[str, MachineMark]  # commit sha -> its mark, for the machine-written commits only
+    # paths (old and new names) that a machine-written commit of the change touched, within its scope
+    machine_touched: frozenset[str] = frozenset()
 
     @property
     def machine_line_count(self) -> int:

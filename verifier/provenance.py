@@ -33,7 +33,16 @@ def attribute(git: Git, change: Change) -> Provenance:
         for path, owners in line_commits.items()
         if (lines := tuple(sorted(n for n, sha in owners.items() if _is_machine(marks.get(sha), path))))
     }
-    return Provenance(machine_lines, line_commits, marks)
+    return Provenance(machine_lines, line_commits, marks, _machine_touched(git, change, marks, single))
+
+
+def _machine_touched(git: Git, change: Change, marks: dict[str, MachineMark], single: str | None) -> frozenset[str]:
+    """The paths a machine-written commit touched (within its scope): who may have removed or renamed what."""
+    if single is not None:
+        paths = {p for f in change.files for p in (f.path, f.old_path) if p}
+        return frozenset(p for p in paths if _is_machine(marks.get(single), p))
+    touched = git.touched_paths(list(marks))
+    return frozenset(p for sha, paths in touched.items() for p in paths if _is_machine(marks[sha], p))
 
 
 def _single_author(change: Change) -> str | None:

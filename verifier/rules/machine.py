@@ -2,8 +2,9 @@
 
 Added lines carry exact provenance (``Provenance.machine_lines``). Removed lines and whole-file events
 (a file added, deleted or renamed) have no blame: in a change of one commit they belong to that commit;
-in a range they count as machine-written when any machine commit of the range has the path in its scope.
-That over-approximates (a human removal in a mixed range counts), which is the safe direction for a gate.
+in a range they count as machine-written when a machine commit of the range touched the path (within its
+scope), which ``Provenance.machine_touched`` records. That still over-approximates when a human and a
+model both edited the file in the range, which is the safe direction for a gate.
 """
 
 from __future__ import annotations
@@ -15,7 +16,6 @@ from typing import Any
 
 from verifier.models import FileChange
 from verifier.rules import REGISTRY, RuleContext
-from verifier.trailers import path_in_scope
 
 TEXT_STATUSES_WITH_FILE_EVENT = ("added", "deleted", "renamed", "copied", "type-changed")
 
@@ -59,8 +59,8 @@ def machine_lines(context: RuleContext, path: str) -> frozenset[int]:
 
 
 def machine_may_have_touched(context: RuleContext, path: str) -> bool:
-    """True when a machine-written commit of the change could have touched ``path`` (its scope covers it)."""
-    return any(path_in_scope(path, mark.scope) for mark in context.provenance.marks.values())
+    """True when a machine-written commit of the change touched ``path`` (within its scope)."""
+    return path in context.provenance.machine_touched
 
 
 def machine_removed(context: RuleContext, file: FileChange) -> bool:
