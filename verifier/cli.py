@@ -39,6 +39,19 @@ def build_parser() -> argparse.ArgumentParser:
                        "refs/notes/verifier)")
     check.add_argument("--deepen", type=int, metavar="N", help="in a shallow clone, fetch N more commits at a "
                        "time (up to 10 times) until the change's base is present")
+    check.add_argument("--all-tests", action="store_true", help="run every test, not only those that can observe "
+                       "the change")
+    check.add_argument("--shard", type=_shard, metavar="K/N", help="run shard K of N of the selected tests (one "
+                       "CI machine each); join the JSON reports with 'verifier merge-reports'")
+
+    merge = commands.add_parser("merge-reports", help="join the JSON reports of 'check --shard K/N' into one verdict")
+    merge.add_argument("reports", nargs="+", type=Path, help="the JSON report of every shard")
+    merge.add_argument("--format", action="append", choices=(*FORMAT_SUFFIX, "all"), help="output format")
+    merge.add_argument("--output", type=Path, help="write the report here (a folder when several formats)")
+    merge.add_argument("--quiet", action="store_true", help="print only the verdict line and findings")
+    merge.add_argument("--no-notes", action="store_true", help="do not record the verdict as git notes")
+    merge.add_argument("--notes-ref", help="the notes ref (as for check)")
+    merge.set_defaults(staged=False, shard=None)
 
     rules = commands.add_parser("rules", help="list the rules, or explain one")
     rules.add_argument("rule", nargs="?", help="a rule id to explain")
@@ -86,7 +99,7 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 def _dispatch(args: argparse.Namespace) -> int:
     handlers = {"check": _check, "rules": _rules, "policy": _policy, "demo": _demo, "sandbox": _sandbox,
-                "hooks": _hooks, "hook": _hook}
+                "hooks": _hooks, "hook": _hook, "merge-reports": _merge_reports}
     return handlers[args.command](args)
 
 
@@ -108,11 +121,30 @@ def _check(args: argparse.Namespace) -> int:
         progress = None if args.quiet else display
         if args.deepen:
             _deepen(args, progress)
-        options = Options(sandbox=args.sandbox, progress=progress, index_file=index_file)
+        options = Options(sandbox=args.sandbox, progress=progress, index_file=index_file,
+                          all_tests=args.all_tests, shard=args.shard)
         report = verify(args.repo, spec, options)
     _record_notes(report, args)
     _emit(report, args)
     return EXIT_CODES[report.verdict]
+
+
+def _merge_reports(args: argparse.Namespace) -> int:
+    from verifier.shards import merge_reports
+    from verifier.verdict import EXIT_CODES
+
+    report = merge_reports(args.repo, args.reports)
+    _record_notes(report, args)
+    _emit(report, args)
+    return EXIT_CODES[report.verdict]
+
+
+def _shard(text: str) -> tuple[int, int]:
+    """``K/N`` -> (K, N), with 1 <= K <= N."""
+    index, _, total = text.partition("/")
+    if not (index.isdigit() and total.isdigit()) or not 1 <= int(index) <= int(total):
+        raise argparse.ArgumentTypeError(f"'{text}' is not K/N with 1 <= K <= N (for example 2/4)")
+    return int(index), int(total)
 
 
 def _deepen(args: argparse.Namespace, progress) -> None:  # type: ignore[no-untyped-def]
@@ -124,7 +156,7 @@ def _deepen(args: argparse.Namespace, progress) -> None:  # type: ignore[no-unty
 
 def _record_notes(report, args: argparse.Namespace) -> None:  # type: ignore[no-untyped-def]
     """One git note per checked commit (a --staged check has none yet: its post-commit hook writes it)."""
-    if args.no_notes or args.staged:
+    if args.no_notes or args.staged or getattr(args, "shard", None):  # a shard's verdict is partial
         return
     from verifier import notes
     from verifier.gitio import Git

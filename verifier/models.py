@@ -116,6 +116,7 @@ class Policy:
     allow_process_sandbox: bool = False
     rules: Mapping[str, RuleSetting] = field(default_factory=dict)
     rule_options: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)  # rule id -> option -> value
+    selection: SelectionSettings = field(default_factory=lambda: SelectionSettings())
 
     def setting(self, rule_id: str, default: RuleSetting) -> RuleSetting:
         return self.rules.get(rule_id, default)
@@ -128,6 +129,26 @@ class Selection:
     whole_suite: bool
     node_ids: tuple[str, ...] = ()
     reason: str = "all tests run"
+    files: tuple[str, ...] = ()  # test files run whole (tests the change adds or modifies, importers)
+    reasons: Mapping[str, tuple[str, ...]] = field(default_factory=dict)  # node id or file -> why it runs
+    known_tests: int = 0  # tests the who-tests-what map knows at base (0: no map)
+    left_out: int = 0  # of those, how many this selection does not run
+    map_status: str = "not used"  # cached | built | updated | absent | not used
+    shard: tuple[int, int] | None = None  # (K, N): this run is shard K of N of the selection
+
+
+@dataclass(frozen=True)
+class SelectionSettings:
+    """The policy's ``selection:`` section: how tests are chosen, re-run and spread over cores."""
+
+    mode: Literal["smart", "all"] = "all"
+    differential: bool = False  # also run the selected tests at base and classify each one
+    reruns: int = 2  # a failing test is run again up to this many times; passing on one makes it flaky
+    map_build: Literal["always", "if-cached", "never"] = "always"
+    without_map: Literal["all", "imports"] = "all"  # what runs when there is no map
+    workers: int = 0  # pytest-xdist workers; 0 = one per core, 1 = no xdist
+    whole_suite_paths: tuple[str, ...] = ()  # globs of files whose change runs everything
+    ignore_paths: tuple[str, ...] = ()  # globs of files no test reads (documentation)
 
 
 @dataclass(frozen=True)
@@ -164,9 +185,12 @@ class TestOutcome:
     """One test's result, keyed by its pytest node id."""
 
     node_id: str
-    outcome: Literal["passed", "failed", "error", "skipped"]
+    outcome: Literal["passed", "failed", "error", "skipped", "flaky"]  # flaky: failed, then passed on a re-run
     message: str = ""
     duration: float = 0.0
+    attempts: int = 1  # runs it took: 1 + the re-runs of a failing test
+    fixtures: tuple[str, ...] = ()  # the names of the fixtures it used (pytest's item.fixturenames)
+
 
 
 @dataclass(frozen=True)
@@ -197,6 +221,7 @@ class RunResult:
     output_tail: str = ""
     wall_seconds: float = 0.0
     limit_hit: str | None = None
+    baseline: Mapping[str, str] | None = None  # node id -> outcome at base (a differential run), else None
 
     def count(self, outcome: str) -> int:
         return sum(1 for t in self.tests if t.outcome == outcome)
@@ -241,6 +266,7 @@ class Report:
     findings: tuple[Finding, ...]
     sources: Mapping[str, Mapping[int, str]] = field(default_factory=dict)  # path -> line -> text, for display
     notes: tuple[str, ...] = ()  # plain facts the reader should see (e.g. "the process sandbox isolates nothing")
+    selection: Selection | None = None  # which tests ran and why (None when no tests ran)
 
 
 def to_plain(value: Any) -> Any:

@@ -2,14 +2,13 @@
 
 Reading this module top to bottom follows one change from git to the verdict:
 change -> provenance -> policy -> static rules -> selection -> sandbox -> dynamic rules -> verdict.
-Side effects stay at the edges: git is only read, and the only files written are in a temporary folder
-outside the repository, removed in every case.
+Side effects stay at the edges: git is only read; the files written are in a temporary folder outside
+the repository, removed in every case, and the caches under git's common dir (the who-tests-what maps
+and base results of :mod:`verifier.impactmap` and :mod:`verifier.differential`, safe to delete).
 """
 
 from __future__ import annotations
 
-import shutil
-import tempfile
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
@@ -30,13 +29,17 @@ class Options:
 
     sandbox: str = "auto"  # auto | docker | namespace | process
     progress: Progress | None = None
+    index_file: str | None = None  # for --staged: the index to read (a commit hook's GIT_INDEX_FILE)
+    all_tests: bool = False  # run every test, whatever the selection stage would choose
+    shard: tuple[int, int] | None = None  # (K, N): run only shard K of N of the selected tests
+    premade: tuple[Selection, RunResult] | None = None  # a run made elsewhere (joined shards): judge it as it is
 
 
 def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None) -> Report:
     """Judge the change ``spec`` of the repository at ``repo``."""
     options = options or Options()
     say = options.progress or (lambda _message: None)
-    git = Git(Git(repo).toplevel())
+    git = Git(Git(repo).toplevel(), index_file=options.index_file)
     change = read_change(git, spec)
     provenance = attribute(git, change)
     policy = load_policy(git, change.base)
@@ -48,7 +51,10 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
     context = RuleContext(change, provenance, policy, sources, base_sources, read_base=_base_reader(git, change))
     findings = apply_rules("static", context)
     say(f"{provenance.machine_line_count} machine-written lines in {len(provenance.machine_lines)} files")
-    run = _run_tests(git, change, policy, Selection(whole_suite=True), options, say)
+    if options.premade is not None:
+        selection, run = options.premade
+    else:
+        selection, run = _select_and_run(git, change, policy, options, base_sources, sources, say)
     from verifier.measure import summarise_coverage
 
     coverage = None
@@ -59,7 +65,8 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
     dynamic = RuleContext(change, provenance, policy, sources, base_sources, run, coverage)
     findings += apply_rules("dynamic", dynamic)
     notes = _sandbox_notes(run)
-    return _report(change, provenance, policy, run, findings, sources, coverage=coverage, notes=notes)
+    return _report(change, provenance, policy, run, findings, sources, coverage=coverage, notes=notes,
+                   selection=selection)
 
 
 def _changed_sources(git: Git, change: Change) -> tuple[dict[str, str], dict[str, str]]:
@@ -84,27 +91,43 @@ def _base_reader(git: Git, change: Change) -> Callable[[str], str | None]:
     return read
 
 
-def _run_tests(
-    git: Git, change: Change, policy: Policy, selection: Selection, options: Options, say: Progress
-) -> RunResult:
-    """Materialise the head tree outside the repository and run the tests there, in the sandbox."""
-    from verifier import sandbox, testrun
+def _select_and_run(
+    git: Git, change: Change, policy: Policy, options: Options, base_sources: dict[str, str],
+    sources: dict[str, str], say: Progress,
+) -> tuple[Selection, RunResult]:
+    """Choose the tests (building the base map when needed), run them at head, and at base when asked."""
+    from verifier.selection import select_tests
+
+    backend = _backend(git, change, policy, options)
+    selection, impact = select_tests(git, change, policy, backend, base_sources, sources,
+                                     all_tests=options.all_tests, shard=options.shard, say=say)
+    say(f"tests: {selection.reason} (map: {selection.map_status})")
+    run = _run_tests(git, change, policy, selection, backend, say)
+    if policy.selection.differential:
+        from verifier.differential import with_baseline
+
+        run = with_baseline(git, change, policy, selection, run, backend, impact, say)
+    return selection, run
+
+
+def _backend(git: Git, change: Change, policy: Policy, options: Options):  # type: ignore[no-untyped-def]
+    """The sandbox backend every run of this check uses (the map build at base, the run at head)."""
+    from verifier import sandbox
 
     backend = sandbox.choose(options.sandbox, policy.allow_process_sandbox or options.sandbox == "process")
     if backend.name == "docker":
         _pick_image(backend, git, change)
-    workdir = Path(tempfile.mkdtemp(prefix="verifier-tree-"))
-    try:
-        tree = workdir / "tree"
-        if change.head == INDEX:
-            git.export_index(tree)
-        else:
-            git.export_commit(change.head, tree)
-        request = testrun.prepare(tree, policy, selection)
-        say(f"running the tests in the {backend.name} sandbox")
-        return testrun.read_run(backend.run(request))
-    finally:
-        shutil.rmtree(workdir, ignore_errors=True)
+    return backend
+
+
+def _run_tests(
+    git: Git, change: Change, policy: Policy, selection: Selection, backend, say: Progress  # type: ignore[no-untyped-def]
+) -> RunResult:
+    """Materialise the head tree outside the repository and run the selected tests there, in the sandbox."""
+    from verifier import testrun
+
+    say(f"running the tests in the {backend.name} sandbox")
+    return testrun.read_run(testrun.run_revision(git, change.head, policy, selection, backend))
 
 
 def _pick_image(backend, git: Git, change: Change) -> None:  # type: ignore[no-untyped-def]
@@ -138,6 +161,7 @@ def _report(
     sources: dict[str, str],
     coverage: CoverageSummary | None = None,
     notes: tuple[str, ...] = (),
+    selection: Selection | None = None,
 ) -> Report:
     return Report(
         verdict=decide(findings),
@@ -149,4 +173,5 @@ def _report(
         findings=tuple(findings),
         sources={path: _lines(text, provenance.machine_lines.get(path, ())) for path, text in sources.items()},
         notes=notes,
+        selection=selection,
     )

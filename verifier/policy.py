@@ -18,7 +18,7 @@ import yaml
 
 from verifier.errors import PolicyError
 from verifier.gitio import Git
-from verifier.models import Limits, Policy
+from verifier.models import Limits, Policy, SelectionSettings
 
 POLICY_FILE = "verifier.yaml"
 RULE_SETTINGS = ("block", "warn", "off")
@@ -64,6 +64,10 @@ def _version(value: Any) -> str | None:
     return None if value == 1 else f"this verifier reads policy version 1, got {value!r}"
 
 
+def _one_of(value: Any, choices: tuple[str, ...]) -> str | None:
+    return None if value in choices else f"expected one of {', '.join(choices)}, got {value!r}"
+
+
 def _shipped_name(value: Any) -> str | None:
     names = shipped_policies()
     return None if value in names else f"expected the name of a shipped policy ({', '.join(names)}), got {value!r}"
@@ -85,6 +89,16 @@ SCHEMA: dict[str, Any] = {
         "tmp_mb": _number(1),
     },
     "sandbox": {"allow_process": _boolean},
+    "selection": {
+        "mode": lambda value: _one_of(value, ("smart", "all")),
+        "differential": _boolean,
+        "reruns": _number(0, 10),
+        "map_build": lambda value: _one_of(value, ("always", "if-cached", "never")),
+        "without_map": lambda value: _one_of(value, ("all", "imports")),
+        "workers": lambda value: None if value == "auto" else _number(1, 256)(value),
+        "whole_suite_paths": _string_list,
+        "ignore_paths": _string_list,
+    },
     "rules": _rule_setting,  # a mapping of rule id -> setting; ids are checked against the registry
 }
 
@@ -232,4 +246,19 @@ def build_policy(merged: Mapping[str, Any], source: str) -> Policy:
         ),
         allow_process_sandbox=bool(get("sandbox", "allow_process")),
         rules={rule: located.value for rule, located in merged.get("rules", {}).items()},
+        selection=_selection(merged.get("selection", {})),
     )
+
+
+def _selection(section: Mapping[str, Any]) -> SelectionSettings:
+    """The ``selection:`` section; a key no layer gives keeps the data model's default."""
+    values = {key: located.value for key, located in section.items() if not key.startswith("_")}
+    if values.get("workers") == "auto":
+        values["workers"] = 0
+    for key in ("reruns", "workers"):
+        if key in values:
+            values[key] = int(values[key])
+    for key in ("whole_suite_paths", "ignore_paths"):
+        if key in values:
+            values[key] = tuple(values[key])
+    return SelectionSettings(**values)

@@ -1,7 +1,9 @@
 """The JSON report: a versioned format that tools read; fields may be added, never change meaning.
 
 FORMAT_VERSION history (one line per version):
-  1: verdict, base, head, sandbox, machine_lines, tests, coverage, findings (plus commits, policy, notes).
+  1: verdict, base, head, sandbox, machine_lines, tests, coverage, findings (plus commits, policy, notes);
+     added since: selection (which tests ran and why), tests.flaky/flaky_ids/outcomes/differential, shard (a
+     --shard run's measurements, which verifier merge-reports joins).
 """
 
 from __future__ import annotations
@@ -9,7 +11,7 @@ from __future__ import annotations
 import json
 from typing import Any
 
-from verifier.models import Report, to_plain
+from verifier.models import Report, RunResult, to_plain
 
 FORMAT_VERSION = 1
 
@@ -31,6 +33,7 @@ def as_dict(report: Report) -> dict[str, Any]:
         ],
         "machine_lines": {path: list(lines) for path, lines in report.provenance.machine_lines.items()},
         "tests": _tests(report),
+        "selection": _selection(report),
         "coverage": {
             "executable": coverage.executable if coverage else 0,
             "covered": coverage.covered if coverage else 0,
@@ -46,6 +49,7 @@ def as_dict(report: Report) -> dict[str, Any]:
             for f in report.findings
         ],
         "notes": list(report.notes),
+        **({"shard": _shard(report)} if report.selection and report.selection.shard and run else {}),
     }
 
 
@@ -60,7 +64,58 @@ def _tests(report: Report) -> dict[str, Any]:
         "errors": run.count("error"),
         "skipped": run.count("skipped"),
         "failed_ids": [t.node_id for t in run.tests if t.outcome in ("failed", "error")],
+        "flaky": run.count("flaky"),
+        "flaky_ids": [t.node_id for t in run.tests if t.outcome == "flaky"],
+        "outcomes": [{"node_id": t.node_id, "outcome": t.outcome, "attempts": t.attempts} for t in run.tests],
+        "differential": _differential(run),
     }
+
+
+def _differential(run: RunResult) -> dict[str, list[str]] | None:
+    """Node ids by class (broken, fixed, still-failing, new, unchanged) when a differential run happened."""
+    if run.baseline is None:
+        return None
+    from verifier.differential import CLASSES, classify_run
+
+    classes = classify_run(run.tests, run.baseline)
+    return {name: sorted(test for test, found in classes.items() if found == name) for name in CLASSES}
+
+
+def _selection(report: Report) -> dict[str, Any] | None:
+    selection = report.selection
+    if selection is None:
+        return None
+    return {
+        "whole_suite": selection.whole_suite,
+        "reason": selection.reason,
+        "map": selection.map_status,
+        "known_tests": selection.known_tests,
+        "left_out": selection.left_out,
+        "shard": list(selection.shard) if selection.shard else None,
+        "selected": {key: list(reasons) for key, reasons in sorted(selection.reasons.items())},
+    }
+
+
+def _shard(report: Report) -> dict[str, Any]:
+    """What verifier merge-reports needs to judge the shards as one run: every test's full outcome and the
+    coverage measurements of the machine-written files."""
+    run = report.run
+    assert run is not None and report.selection is not None
+    measured = {path: run.coverage[path] for path in report.provenance.machine_lines if path in run.coverage}
+    return {
+        "index": report.selection.shard[0] if report.selection.shard else 1,
+        "total": report.selection.shard[1] if report.selection.shard else 1,
+        "status": run.status,
+        "tests": [to_plain(test) for test in run.tests],
+        "baseline": dict(run.baseline) if run.baseline is not None else None,
+        "coverage": {path: {"executed": sorted(c.executed), "missing": sorted(c.missing),
+                            "excluded": sorted(c.excluded)} for path, c in measured.items()},
+        "collection_errors": list(run.collection_errors),
+        "selection": {"whole_suite": report.selection.whole_suite, "node_ids": list(report.selection.node_ids),
+                      "files": list(report.selection.files), "reason": report.selection.reason},
+    }
+
+
 
 
 def error_dict(message: str, exit_code: int) -> dict[str, Any]:

@@ -78,7 +78,38 @@ def _tests(report: Report) -> list[str]:
         return []
     counts = f"{len(run.tests)} run, {run.count('passed')} passed, {run.count('failed')} failed, "
     counts += f"{run.count('error')} errors, {run.count('skipped')} skipped"
-    return [f"tests: {counts} ({run.status}, {run.wall_seconds:.1f}s)"]
+    if run.count("flaky"):
+        counts += f", {run.count('flaky')} flaky"
+    return [f"tests: {counts} ({run.status}, {run.wall_seconds:.1f}s)", *_selection(report), *_differential(run)]
+
+
+def _selection(report: Report) -> list[str]:
+    selection = report.selection
+    if selection is None:
+        return []
+    shard = f", shard {selection.shard[0]}/{selection.shard[1]}" if selection.shard else ""
+    if selection.whole_suite:
+        return [f"selection: every test ({selection.reason}; map: {selection.map_status}{shard})"]
+    rows = [f"selection: {selection.reason}; {selection.left_out} of {selection.known_tests} known tests left out "
+            f"(map: {selection.map_status}{shard})"]
+    for key, reasons in sorted(selection.reasons.items())[:40]:
+        rows.append(f"  {key}: {'; '.join(reasons)}")
+    if len(selection.reasons) > 40:
+        rows.append(f"  ... and {len(selection.reasons) - 40} more")
+    return rows
+
+
+def _differential(run) -> list[str]:  # type: ignore[no-untyped-def]
+    if run.baseline is None:
+        return []
+    from collections import Counter
+
+    from verifier.differential import CLASSES, classify_run
+
+    counts = Counter(classify_run(run.tests, run.baseline).values())
+    return ["against base: " + ", ".join(f"{counts[name]} {name}" for name in CLASSES)]
+
+
 
 
 def _coverage(report: Report, paint) -> list[str]:  # type: ignore[no-untyped-def]

@@ -17,7 +17,7 @@ from verifier.models import Change, CoverageSummary, Finding, Policy, Provenance
 _FAMILIES = (
     "verifier.rules.tests", "verifier.rules.coverage", "verifier.rules.code",
     "verifier.rules.calls", "verifier.rules.paths", "verifier.rules.weakened", "verifier.rules.harness",
-    "verifier.rules.size", "verifier.rules.deps", "verifier.rules.secrets",
+    "verifier.rules.size", "verifier.rules.deps", "verifier.rules.secrets", "verifier.rules.regressions",
 )
 
 
