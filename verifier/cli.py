@@ -75,6 +75,10 @@ def build_parser() -> argparse.ArgumentParser:
     sandbox.add_argument("action", choices=("doctor", "build"),
                          help="doctor: what works here; build: the docker image for this repository")
     sandbox.add_argument("--rev", default="HEAD", help="build: read the test dependencies at this revision")
+
+    from verifier.auditreport.command import add_audit_command
+
+    add_audit_command(commands)
     return parser
 
 
@@ -99,7 +103,7 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 def _dispatch(args: argparse.Namespace) -> int:
     handlers = {"check": _check, "rules": _rules, "policy": _policy, "demo": _demo, "sandbox": _sandbox,
-                "hooks": _hooks, "hook": _hook, "merge-reports": _merge_reports}
+                "hooks": _hooks, "hook": _hook, "audit": _audit, "merge-reports": _merge_reports}
     return handlers[args.command](args)
 
 
