@@ -81,7 +81,10 @@ def note_body(report: Report, commit: str, checked_at: str | None = None) -> dic
             {"rule": f.rule, "severity": f.severity, "path": f.path, "line": f.line, "message": f.message}
             for f in report.findings
         ],
-        "waivers": [],  # waivers are not part of the policy yet; the field is in the contract
+        "waivers": [  # the policy's waivers that turned a finding of this change into info
+            {"rule": w.rule, "path": w.path, "reason": w.reason, "owner": w.owner, "expires": w.expires}
+            for w in getattr(report, "waivers_used", ())
+        ],
         "sandbox": run.backend if run else None,
     }
 
