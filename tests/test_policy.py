@@ -1,14 +1,29 @@
-"""The policy stage: validation with file, line and key; layering; the shipped policies."""
+"""The policy stage: validation with file, line, column and key; layering; options; the shipped policies."""
 
 from __future__ import annotations
 
+from datetime import date
 from pathlib import Path
 
 import pytest
 
 from verifier.errors import PolicyError
 from verifier.gitio import Git
-from verifier.policy import load_policy, load_policy_file, parse_layer, shipped_dir, shipped_policies
+from verifier.models import Finding, PathOverride, Policy, Waiver
+from verifier.policy import (
+    Layer,
+    build_policy,
+    judge_finding,
+    load_policy,
+    load_policy_file,
+    parse_layer,
+    policy_for_path,
+    shipped_dir,
+    shipped_layer,
+    shipped_policies,
+    waivers_used,
+)
+from verifier.rules import REGISTRY, Rule, load_all
 from verifier.scratch import ScratchRepo
 
 
@@ -18,10 +33,52 @@ def error_of(text: str) -> PolicyError:
     return caught.value
 
 
-def test_unknown_key_names_file_line_and_key() -> None:
-    error = error_of("version: 1\ncoverage:\n  threshold: 80\n  treshold: 70\n")
-    assert (error.source, error.line, error.key) == ("verifier.yaml", 4, "coverage.treshold")
+def position(text: str, needle: str, occurrence: int = 1) -> tuple[int, int]:
+    """1-based line and column of ``needle`` in ``text``, counted from the text itself (not from YAML)."""
+    index = -1
+    for _ in range(occurrence):
+        index = text.index(needle, index + 1)
+    line = text.count("\n", 0, index) + 1
+    return line, index - (text.rfind("\n", 0, index) + 1) + 1
+
+
+@pytest.fixture
+def sample_rule(monkeypatch: pytest.MonkeyPatch) -> Rule:
+    """A rule with one option of each kind, registered for one test (stage 'none' never runs)."""
+    load_all()
+    options = {"limit": 400, "ratio": 0.5, "strict": False, "label": "x", "globs": ["a/**"], "entries": []}
+    sample = Rule("sample.options", "warn", "a sample", "explains", "none", lambda _c: [], False, options)
+    monkeypatch.setitem(REGISTRY, sample.id, sample)
+    return sample
+
+
+def test_unknown_key_names_file_line_column_and_key() -> None:
+    text = "version: 1\ncoverage:\n  threshold: 80\n  treshold: 70\n"
+    error = error_of(text)
+    assert (error.source, error.line, error.column, error.key) == ("verifier.yaml", 4, 3, "coverage.treshold")
+    assert (error.line, error.column) == position(text, "treshold")
     assert str(error).startswith("verifier.yaml:4: key 'coverage.treshold': unknown key")
+    assert "did you mean 'threshold'?" in str(error) and str(error).endswith("(column 3)")
+
+
+@pytest.mark.parametrize(
+    ("text", "needle", "key"),
+    [
+        ("coverage: {threshold: 80, treshold: 70}\n", "treshold", "coverage.treshold"),
+        ("overrides:\n  - paths: [legacy/**]\n    coverage: {thresold: 5}\n", "thresold",
+         "overrides[0].coverage.thresold"),
+        ("overrides:\n  - paths: [a]\n  - paths: [b]\n    ruels: {}\n", "ruels", "overrides[1].ruels"),
+        ("waivers:\n  - rule: code.syntax\n    path: a\n    reason: r\n    owner: o\n    expires: 2999-01-01\n"
+         "    ticket: 12\n", "ticket", "waivers[0].ticket"),
+        ("rules:\n  code.syntax: {severity: warn, level: 3}\n", "level", "rules.code.syntax.level"),
+        ("rules:\n  code.sintax: warn\n", "code.sintax", "rules.code.sintax"),
+        ("sandbox:\n  allow_process: false\n  network: true\n", "network", "sandbox.network"),
+    ],
+)
+def test_unknown_keys_anywhere_are_located(text: str, needle: str, key: str) -> None:
+    error = error_of(text)
+    assert error.key == key
+    assert (error.line, error.column) == position(text, needle)
 
 
 @pytest.mark.parametrize(
@@ -34,8 +91,23 @@ def test_unknown_key_names_file_line_and_key() -> None:
         ("sandbox:\n  allow_process: maybe\n", 2, "sandbox.allow_process"),
         ("rules:\n  tests.failing: loud\n", 2, "rules.tests.failing"),
         ("rules:\n  no.such-rule: warn\n", 2, "rules.no.such-rule"),
+        ("rules:\n  run.incomplete: warn\n", 2, "rules.run.incomplete"),  # a fixed rule always blocks
         ("extends: lenient\n", 1, "extends"),
         ("limits: 5\n", 1, "limits"),
+        ("overrides: {paths: [a]}\n", 1, "overrides"),
+        ("overrides:\n  - coverage: {threshold: 5}\n", 2, "overrides[0]"),  # paths is required
+        ("overrides:\n  - paths: []\n", 2, "overrides[0].paths"),
+        ("waivers:\n  - {rule: code.syntax, path: a}\n", 2, "waivers[0]"),  # reason, owner, expires missing
+        ("waivers:\n  - {rule: code.syntax, path: a, reason: r, owner: o, expires: 2999-02-30}\n", 2,
+         "waivers[0].expires"),
+        ("waivers:\n  - {rule: code.syntax, path: a, reason: r, owner: o, expires: next year}\n", 2,
+         "waivers[0].expires"),
+        ("waivers:\n  - {rule: code.syntax, path: a, reason: '  ', owner: o, expires: 2999-01-01}\n", 2,
+         "waivers[0].reason"),
+        ("waivers:\n  - {rule: run.incomplete, path: a, reason: r, owner: o, expires: 2999-01-01}\n", 2,
+         "waivers[0].rule"),  # the fail-closed rule cannot be waived
+        ("waivers:\n  - {rule: no.rule, path: a, reason: r, owner: o, expires: 2999-01-01}\n", 2, "waivers[0].rule"),
+        ("coverage:\n  threshold: 80\n  threshold: 70\n", 3, "coverage.threshold"),  # given twice
     ],
 )
 def test_bad_values_are_located(text: str, line: int, key: str) -> None:
@@ -43,16 +115,63 @@ def test_bad_values_are_located(text: str, line: int, key: str) -> None:
     assert (error.line, error.key) == (line, key)
 
 
-def test_broken_yaml_gives_its_line() -> None:
+def test_broken_yaml_gives_its_line_and_column() -> None:
     error = error_of("version: 1\ncoverage: [unclosed\n")
     assert error.line is not None and error.line >= 2 and "not valid YAML" in error.problem
+    assert error.column is not None
 
 
-def test_shipped_policies_are_valid() -> None:
+def test_bare_off_is_a_setting_not_false() -> None:
+    # YAML 1.1 reads a bare `off` as the boolean false (https://yaml.org/type/bool.html); a policy means the word.
+    layer = parse_layer("rules:\n  code.syntax: off\n", "v.yaml")
+    assert layer["rules"]["code.syntax"]["severity"].value == "off"
+
+
+def test_rule_options_are_typed_by_their_defaults(sample_rule: Rule) -> None:
+    text = ("rules:\n  sample.options:\n    severity: block\n    limit: 50\n    ratio: 1\n    strict: true\n"
+            "    label: y\n    globs: [b/**]\n    entries: [{call: os.system, when: {shell: true}}]\n")
+    policy = build_policy([shipped_layer("default"), Layer("v.yaml", parse_layer(text, "v.yaml"))])
+    assert policy.rules["sample.options"] == "block"
+    assert policy.rule_options["sample.options"] == {
+        "limit": 50, "ratio": 1.0, "strict": True, "label": "y", "globs": ["b/**"],
+        "entries": [{"call": "os.system", "when": {"shell": True}}],
+    }
+    assert sample_rule.option(policy, "limit") == 50
+    assert sample_rule.option(Policy(source="x"), "limit") == 400  # the rule's default
+
+
+@pytest.mark.parametrize(
+    ("option", "value"),
+    [("limit", "many"), ("limit", "2.5"), ("limit", "true"), ("ratio", "high"), ("strict", "1"), ("label", "[1]"),
+     ("globs", "b/**"), ("globs", "[1, 2]"), ("entries", "[[1]]"), ("entries", "[{call: 2020-01-01}]")],
+)
+def test_wrongly_typed_options_are_located(sample_rule: Rule, option: str, value: str) -> None:
+    text = f"rules:\n  sample.options:\n    {option}: {value}\n"
+    error = error_of(text)
+    assert error.key == f"rules.sample.options.{option}"
+    line, column = position(text, f"{option}: {value}")
+    assert (error.line, error.column) == (line, column + len(option) + 2)  # the value, after "option: "
+
+
+def test_banned_call_entries_are_checked_by_their_rule_at_their_line() -> None:
+    if "calls.banned" not in load_all():
+        pytest.skip("the calls.banned rule is not in this build")
+    good = ("      - call: acme.db.raw_sql\n        why: raw SQL built at run time\n"
+            "        when: {arg: 0, is: non-literal}\n")
+    bad = "      - {call: parcelkit.legacy.run, cwe: 78}\n"
+    text = "rules:\n  calls.banned:\n    entries:\n" + good + bad
+    error = error_of(text)
+    assert error.key == "rules.calls.banned.entries[1]" and (error.line, error.column) == position(text, "{call")
+    assert "'why'" in error.problem and "CWE-89" in error.problem  # the rule's own wording (docs/rules.md)
+
+
+def test_shipped_policies_are_valid_and_keep_their_settings() -> None:
     assert {"default", "strict"} <= set(shipped_policies())
     for name in shipped_policies():
         load_policy_file(shipped_dir() / f"{name}.yaml")
-    assert load_policy_file(shipped_dir() / "default.yaml").coverage_threshold == 90.0
+    default = load_policy_file(shipped_dir() / "default.yaml")
+    assert default.coverage_threshold == 90.0
+    assert default.rules == {"tests.failing": "block", "coverage.new-lines": "block", "code.syntax": "block"}
 
 
 def test_missing_policy_file_is_a_policy_error(tmp_path: Path) -> None:
@@ -68,5 +187,69 @@ def test_layers_read_from_the_base_revision(tmp_path: Path) -> None:
     assert policy.coverage_threshold == 100.0  # from strict
     assert policy.limits.memory_mb == 512  # from the repository, at base
     assert policy.limits.wall_seconds == 300  # strict overrides the default's 600
-    assert policy.source == f"{base[:12]}:verifier.yaml"
+    assert policy.source == f"shipped:strict.yaml + {base[:12]}:verifier.yaml"
     assert load_policy(Git(repo.path), None).source == "shipped default policy"
+
+
+def test_rule_settings_merge_key_by_key_across_layers(sample_rule: Rule) -> None:
+    lower = parse_layer("rules:\n  sample.options: {severity: block, limit: 10}\n", "org.yaml")
+    upper = parse_layer("rules:\n  sample.options: {ratio: 0.9}\n", "repo.yaml")
+    policy = build_policy([shipped_layer("default"), Layer("org.yaml", lower), Layer("repo.yaml", upper)])
+    assert policy.rules["sample.options"] == "block"  # the upper layer did not restate it
+    assert policy.rule_options["sample.options"] == {"limit": 10, "ratio": 0.9}
+
+
+# --- per-path settings and waivers on plain data --------------------------------------------------------
+
+LEGACY = PathOverride(paths=("legacy/**",), source="v.yaml:3", coverage_threshold=50.0,
+                      rules={"code.syntax": "warn"}, rule_options={"sample.options": {"limit": 5}})
+TOOLS = PathOverride(paths=("legacy/tools/**",), source="v.yaml:9", rules={"code.syntax": "off"})
+
+
+def test_policy_for_path_applies_matching_overrides_in_order() -> None:
+    policy = Policy(source="x", coverage_threshold=90.0, rules={"code.syntax": "block"}, overrides=(LEGACY, TOOLS))
+    assert policy_for_path(policy, "parcelkit/rates.py").coverage_threshold == 90.0
+    legacy = policy_for_path(policy, "legacy/old.py")
+    assert (legacy.coverage_threshold, legacy.setting("code.syntax", "block")) == (50.0, "warn")
+    assert legacy.option("sample.options", "limit", 400) == 5 and legacy.overrides == ("v.yaml:3",)
+    tools = policy_for_path(policy, "legacy/tools/gen.py")
+    assert tools.setting("code.syntax", "block") == "off" and tools.coverage_threshold == 50.0
+    assert policy_for_path(policy, None).setting("code.syntax", "warn") == "block"  # change-wide: no override
+
+
+def test_findings_take_the_severity_of_their_path() -> None:
+    policy = Policy(source="x", rules={"code.syntax": "block"}, overrides=(LEGACY, TOOLS))
+
+    def judged(path: str | None) -> str | None:
+        result = judge_finding(policy, "code.syntax", "block", False, Finding("code.syntax", "block", "m", path=path))
+        return None if result is None else result.severity
+
+    assert [judged(p) for p in ("a.py", "legacy/a.py", "legacy/tools/a.py", None)] == ["block", "warn", None, "block"]
+    fixed = judge_finding(policy, "code.syntax", "block", True, Finding("code.syntax", "warn", "m", path="legacy/a.py"))
+    assert fixed is not None and fixed.severity == "block"  # a fixed rule ignores overrides
+
+
+def test_a_matching_waiver_turns_a_finding_into_info() -> None:
+    waiver = Waiver("code.syntax", "legacy/**", "generated, rewritten in Q3", "ada.okafor", "2999-12-31", "v.yaml:12")
+    whole = Waiver("coverage.new-lines", "**", "release freeze", "ops", "2999-12-31", "v.yaml:18")
+    policy = Policy(source="x", waivers=(waiver, whole))
+    hit = judge_finding(policy, "code.syntax", "block", False, Finding("code.syntax", "block", "m", path="legacy/a.py"))
+    miss = judge_finding(policy, "code.syntax", "block", False, Finding("code.syntax", "block", "m", path="src/a.py"))
+    wide = judge_finding(policy, "coverage.new-lines", "block", False, Finding("coverage.new-lines", "block", "m"))
+    assert hit is not None and hit.severity == "info" and hit.details["waived_by"]["owner"] == "ada.okafor"
+    assert hit.details["waived_severity"] == "block"
+    assert miss is not None and miss.severity == "block"
+    assert wide is not None and wide.severity == "info"  # only "**" covers a finding without a path
+    assert waivers_used(policy, [hit, miss]) == (waiver,)
+
+
+def test_waiver_expiry_is_inclusive_and_a_lapsed_one_is_an_error() -> None:
+    text = ("version: 1\nwaivers:\n  - rule: code.syntax\n    path: legacy/**\n    reason: generated code\n"
+            "    owner: ada.okafor\n    expires: 2030-06-30\n")
+    layers = [shipped_layer("default"), Layer("v.yaml", parse_layer(text, "v.yaml"))]
+    assert build_policy(layers, today=date(2030, 6, 30)).waivers[0].expires == "2030-06-30"
+    with pytest.raises(PolicyError) as caught:
+        build_policy(layers, today=date(2030, 7, 1))
+    error = caught.value
+    assert (error.source, error.line, error.key) == ("v.yaml", 7, "waivers[0].expires")
+    assert "code.syntax" in str(error) and "legacy/**" in str(error) and "expired on 2030-06-30" in str(error)

@@ -43,6 +43,7 @@ def build_parser() -> argparse.ArgumentParser:
                        "the change")
     check.add_argument("--shard", type=_shard, metavar="K/N", help="run shard K of N of the selected tests (one "
                        "CI machine each); join the JSON reports with 'verifier merge-reports'")
+    _add_org_policy(check)
 
     merge = commands.add_parser("merge-reports", help="join the JSON reports of 'check --shard K/N' into one verdict")
     merge.add_argument("reports", nargs="+", type=Path, help="the JSON report of every shard")
@@ -56,9 +57,16 @@ def build_parser() -> argparse.ArgumentParser:
     rules = commands.add_parser("rules", help="list the rules, or explain one")
     rules.add_argument("rule", nargs="?", help="a rule id to explain")
 
-    policy = commands.add_parser("policy", help="check a policy file")
-    policy.add_argument("action", choices=("check",))
-    policy.add_argument("file", nargs="?", type=Path, default=Path("verifier.yaml"))
+    policy = commands.add_parser("policy", help="check, show and explain the policy")
+    actions = policy.add_subparsers(dest="action", required=True)
+    policy_check = actions.add_parser("check", help="validate a policy file (default: verifier.yaml)")
+    policy_check.add_argument("file", nargs="?", type=Path, default=None)
+    policy_show = actions.add_parser("show", help="the effective policy at HEAD, each value with its origin")
+    policy_show.add_argument("--format", choices=("text", "json"), default="text")
+    for action in (policy_check, policy_show):
+        _add_org_policy(action)
+    actions.add_parser("explain", help="what a rule catches, why, how to fix it").add_argument("rule")
+    actions.add_parser("rules", help="list the rules (as 'verifier rules')")
 
     hooks = commands.add_parser("hooks", help="install, uninstall or show the git hooks")
     hooks.add_argument("action", choices=("install", "uninstall", "status"))
@@ -80,6 +88,11 @@ def build_parser() -> argparse.ArgumentParser:
 
     add_audit_command(commands)
     return parser
+
+
+def _add_org_policy(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--org-policy", metavar="PATH",
+                        help="the organisation policy, layered under the repository's (default: $VERIFIER_ORG_POLICY)")
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -125,7 +138,7 @@ def _check(args: argparse.Namespace) -> int:
         progress = None if args.quiet else display
         if args.deepen:
             _deepen(args, progress)
-        options = Options(sandbox=args.sandbox, progress=progress, index_file=index_file,
+        options = Options(sandbox=args.sandbox, progress=progress, org_policy=args.org_policy, index_file=index_file,
                           all_tests=args.all_tests, shard=args.shard)
         report = verify(args.repo, spec, options)
     _record_notes(report, args)
@@ -235,27 +248,50 @@ def _write_error_report(args: argparse.Namespace, message: str, exit_code: int) 
 
 
 def _rules(args: argparse.Namespace) -> int:
-    from verifier.rules import load_all
+    from verifier.policyview import render_explain, render_rules
 
-    registry = load_all()
     if args.rule is None:
-        for rule in registry.values():
-            print(f"{rule.id:<22} {rule.default:<6} {rule.stage:<8} {rule.summary}")
+        print(render_rules(), end="")
         return 0
-    rule = registry.get(args.rule)
-    if rule is None:
+    text = render_explain(args.rule)
+    if text is None:
         raise UsageError(f"no rule '{args.rule}'", hint="'verifier rules' lists them")
-    fixed = " (cannot be switched off)" if rule.fixed else ""
-    print(f"{rule.id}: {rule.summary}\ndefault: {rule.default}{fixed}; stage: {rule.stage}\n\n{rule.explanation}")
+    print(text, end="")
     return 0
 
 
 def _policy(args: argparse.Namespace) -> int:
-    from verifier.policy import load_policy_file
+    if args.action in ("explain", "rules"):
+        return _rules(argparse.Namespace(rule=getattr(args, "rule", None)))
+    if args.action == "show":
+        return _policy_show(args)
+    from verifier.gitio import Git
+    from verifier.policy import build_policy, file_layers
 
-    policy = load_policy_file(args.file)
-    print(f"{args.file}: valid (coverage threshold {policy.coverage_threshold:g}%, "
-          f"wall limit {policy.limits.wall_seconds:g}s)")
+    root = Path(args.repo)
+    if Git(root).ok(["rev-parse", "--show-toplevel"]):
+        root = Git(root).toplevel()
+    target = args.file if args.file is not None else root / "verifier.yaml"
+    if not target.is_file():
+        raise UsageError(f"no policy file {target}", hint="name one: verifier policy check FILE")
+    policy = build_policy(file_layers(target, root, args.org_policy))
+    print(f"{target}: valid (coverage threshold {policy.coverage_threshold:g}%, "
+          f"wall limit {policy.limits.wall_seconds:g}s, {len(policy.overrides)} override(s), "
+          f"{len(policy.waivers)} waiver(s))")
+    return 0
+
+
+def _policy_show(args: argparse.Namespace) -> int:
+    """The policy a change on top of the current HEAD would be judged by (HEAD is its base)."""
+    from verifier.gitio import Git
+    from verifier.policy import build_policy, policy_layers
+    from verifier.policyview import render_show, render_show_json
+
+    git = Git(Git(args.repo).toplevel())
+    base = git.resolve("HEAD") if git.has_commits() else None
+    layers = policy_layers(git, base, args.org_policy)
+    build_policy(layers)  # the same checks as a real run (an expired waiver is an error here too)
+    print(render_show_json(layers) if args.format == "json" else render_show(layers), end="")
     return 0
 
 

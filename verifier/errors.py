@@ -36,14 +36,18 @@ class GitError(VerifierError):
 
 
 class PolicyError(VerifierError):
-    """A policy file is broken; knows the file (or revision:file), line and key."""
+    """A policy file is broken; knows the file (or revision:file), line, column and key."""
 
-    def __init__(self, source: str, line: int | None, key: str | None, problem: str) -> None:
+    def __init__(
+        self, source: str, line: int | None, key: str | None, problem: str, column: int | None = None
+    ) -> None:
         where = source if line is None else f"{source}:{line}"
         what = f"key '{key}': {problem}" if key else problem
-        super().__init__(f"{where}: {what}")
+        at_column = f" (column {column})" if column is not None and line is not None else ""
+        super().__init__(f"{where}: {what}{at_column}")
         self.source = source
         self.line = line
+        self.column = column
         self.key = key
         self.problem = problem
 

@@ -8,9 +8,9 @@ mapping of continuation lines to their statement's first line comes from coverag
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 
-from verifier.models import CoverageSummary, FileCoverage
+from verifier.models import CoverageSummary, CoverageTarget, FileCoverage
 from verifier.pathglob import matches_any
 
 
@@ -20,10 +20,17 @@ def summarise_coverage(
     sources: Mapping[str, str],
     threshold: float,
     exclude: tuple[str, ...] = (),
+    threshold_for: Callable[[str], float] | None = None,
 ) -> CoverageSummary:
-    """Count executable and covered machine-written statements per file."""
+    """Count executable and covered machine-written statements per file.
+
+    ``threshold_for`` gives a file's own threshold (a per-path policy override); a file whose threshold
+    differs from ``threshold`` is judged on its own and kept out of the change-wide counts, so that
+    neither can hide the other's shortfall.
+    """
     executable = covered = 0
     uncovered: dict[str, tuple[int, ...]] = {}
+    separate: list[CoverageTarget] = []
     for path, lines in sorted(machine_lines.items()):
         if not path.endswith(".py") or matches_any(path, exclude) or path not in sources:
             continue
@@ -31,11 +38,15 @@ def summarise_coverage(
         firsts = first_lines(sources[path])
         touched = {firsts.get(line, line) for line in lines} & statements
         hit = touched & executed
+        own = threshold if threshold_for is None else threshold_for(path)
+        if own != threshold:
+            separate.append(CoverageTarget(path, own, len(touched), len(hit), tuple(sorted(touched - hit))))
+            continue
         executable += len(touched)
         covered += len(hit)
         if touched - hit:
             uncovered[path] = tuple(sorted(touched - hit))
-    return CoverageSummary(executable, covered, uncovered, threshold)
+    return CoverageSummary(executable, covered, uncovered, threshold, tuple(separate))
 
 
 def _statements(path: str, measured: FileCoverage | None, source: str) -> tuple[set[int], set[int]]:

@@ -103,6 +103,29 @@ class Limits:
 
 
 @dataclass(frozen=True)
+class PathOverride:
+    """Policy settings for the paths matching ``paths`` (globs); None or absent means "as the policy says"."""
+
+    paths: tuple[str, ...]
+    source: str  # file:line of the override in its policy file
+    coverage_threshold: float | None = None
+    rules: Mapping[str, RuleSetting] = field(default_factory=dict)
+    rule_options: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class Waiver:
+    """A trusted, owned, dated exception: findings of ``rule`` on paths matching ``path`` become info."""
+
+    rule: str
+    path: str  # a glob; "**" also matches the change-wide findings that have no path
+    reason: str
+    owner: str
+    expires: str  # YYYY-MM-DD, the last day the waiver applies
+    source: str = ""  # file:line of the waiver in its policy file
+
+
+@dataclass(frozen=True)
 class Policy:
     """The trusted policy that judges a change (read from the base revision, or the shipped default)."""
 
@@ -116,6 +139,8 @@ class Policy:
     allow_process_sandbox: bool = False
     rules: Mapping[str, RuleSetting] = field(default_factory=dict)
     rule_options: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)  # rule id -> option -> value
+    overrides: tuple[PathOverride, ...] = ()  # in order; a later one wins (see verifier.policy.policy_for_path)
+    waivers: tuple[Waiver, ...] = ()
     selection: SelectionSettings = field(default_factory=lambda: SelectionSettings())
 
     def setting(self, rule_id: str, default: RuleSetting) -> RuleSetting:
@@ -192,7 +217,6 @@ class TestOutcome:
     fixtures: tuple[str, ...] = ()  # the names of the fixtures it used (pytest's item.fixturenames)
 
 
-
 @dataclass(frozen=True)
 class FileCoverage:
     """coverage.py's measurement of one file: executed and missing statements (first lines)."""
@@ -247,6 +271,23 @@ class CoverageSummary:
     covered: int
     uncovered: Mapping[str, tuple[int, ...]]
     threshold: float
+    # files a per-path override gives their own threshold: judged one by one, not counted above
+    separate: tuple[CoverageTarget, ...] = ()
+
+    @property
+    def percent(self) -> float | None:
+        return None if self.executable == 0 else round(100.0 * self.covered / self.executable, 2)
+
+
+@dataclass(frozen=True)
+class CoverageTarget:
+    """One file judged against its own coverage threshold (set by a per-path policy override)."""
+
+    path: str
+    threshold: float
+    executable: int
+    covered: int
+    uncovered: tuple[int, ...] = ()
 
     @property
     def percent(self) -> float | None:
@@ -266,6 +307,7 @@ class Report:
     findings: tuple[Finding, ...]
     sources: Mapping[str, Mapping[int, str]] = field(default_factory=dict)  # path -> line -> text, for display
     notes: tuple[str, ...] = ()  # plain facts the reader should see (e.g. "the process sandbox isolates nothing")
+    waivers_used: tuple[Waiver, ...] = ()  # the policy's waivers that turned at least one finding into info
     selection: Selection | None = None  # which tests ran and why (None when no tests ran)
 
 

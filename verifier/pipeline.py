@@ -16,7 +16,7 @@ from pathlib import Path
 from verifier.change import RevisionSpec, read_change
 from verifier.gitio import Git
 from verifier.models import INDEX, Change, CoverageSummary, Finding, Policy, Provenance, Report, RunResult, Selection
-from verifier.policy import load_policy
+from verifier.policy import load_policy, policy_for_path, waivers_used
 from verifier.provenance import attribute
 from verifier.verdict import decide
 
@@ -29,6 +29,7 @@ class Options:
 
     sandbox: str = "auto"  # auto | docker | namespace | process
     progress: Progress | None = None
+    org_policy: str | None = None  # the organisation policy's path; None: $VERIFIER_ORG_POLICY, if set
     index_file: str | None = None  # for --staged: the index to read (a commit hook's GIT_INDEX_FILE)
     all_tests: bool = False  # run every test, whatever the selection stage would choose
     shard: tuple[int, int] | None = None  # (K, N): run only shard K of N of the selected tests
@@ -42,7 +43,7 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
     git = Git(Git(repo).toplevel(), index_file=options.index_file)
     change = read_change(git, spec)
     provenance = attribute(git, change)
-    policy = load_policy(git, change.base)
+    policy = load_policy(git, change.base, options.org_policy)
     if not provenance.machine_lines:
         return _report(change, provenance, policy, None, [], {}, notes=("no machine-written lines to verify",))
     base_sources, sources = _changed_sources(git, change)
@@ -60,7 +61,8 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
     coverage = None
     if run.status == "completed":  # a partial run's coverage would blame the code for what never ran
         coverage = summarise_coverage(
-            provenance.machine_lines, run.coverage, sources, policy.coverage_threshold, policy.coverage_exclude
+            provenance.machine_lines, run.coverage, sources, policy.coverage_threshold, policy.coverage_exclude,
+            threshold_for=lambda path: policy_for_path(policy, path).coverage_threshold,
         )
     dynamic = RuleContext(change, provenance, policy, sources, base_sources, run, coverage)
     findings += apply_rules("dynamic", dynamic)
@@ -89,7 +91,6 @@ def _base_reader(git: Git, change: Change) -> Callable[[str], str | None]:
         return None if data is None else data.decode("utf-8", "replace")
 
     return read
-
 
 def _select_and_run(
     git: Git, change: Change, policy: Policy, options: Options, base_sources: dict[str, str],
@@ -173,5 +174,6 @@ def _report(
         findings=tuple(findings),
         sources={path: _lines(text, provenance.machine_lines.get(path, ())) for path, text in sources.items()},
         notes=notes,
+        waivers_used=waivers_used(policy, findings),
         selection=selection,
     )

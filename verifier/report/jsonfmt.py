@@ -2,8 +2,9 @@
 
 FORMAT_VERSION history (one line per version):
   1: verdict, base, head, sandbox, machine_lines, tests, coverage, findings (plus commits, policy, notes);
-     added since: selection (which tests ran and why), tests.flaky/flaky_ids/outcomes/differential, shard (a
-     --shard run's measurements, which verifier merge-reports joins).
+     added since: waivers_used, coverage.separate (files a per-path override judges on their own);
+     selection (which tests ran and why), tests.flaky/flaky_ids/outcomes/differential, shard (a --shard
+     run's measurements, which verifier merge-reports joins).
 """
 
 from __future__ import annotations
@@ -40,6 +41,11 @@ def as_dict(report: Report) -> dict[str, Any]:
             "percent": coverage.percent if coverage else None,
             "threshold": coverage.threshold if coverage else None,
             "uncovered": {p: list(lines) for p, lines in coverage.uncovered.items()} if coverage else {},
+            "separate": [
+                {"path": t.path, "threshold": t.threshold, "executable": t.executable, "covered": t.covered,
+                 "percent": t.percent, "uncovered": list(t.uncovered)}
+                for t in (coverage.separate if coverage else ())
+            ],
         },
         "run": {"status": run.status, "pytest_exit": run.pytest_exit, "wall_seconds": round(run.wall_seconds, 3),
                 "limit_hit": run.limit_hit} if run else None,
@@ -49,6 +55,11 @@ def as_dict(report: Report) -> dict[str, Any]:
             for f in report.findings
         ],
         "notes": list(report.notes),
+        "waivers_used": [
+            {"rule": w.rule, "path": w.path, "reason": w.reason, "owner": w.owner, "expires": w.expires,
+             "source": w.source}
+            for w in report.waivers_used
+        ],
         **({"shard": _shard(report)} if report.selection and report.selection.shard and run else {}),
     }
 
@@ -114,8 +125,6 @@ def _shard(report: Report) -> dict[str, Any]:
         "selection": {"whole_suite": report.selection.whole_suite, "node_ids": list(report.selection.node_ids),
                       "files": list(report.selection.files), "reason": report.selection.reason},
     }
-
-
 
 
 def error_dict(message: str, exit_code: int) -> dict[str, Any]:

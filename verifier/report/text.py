@@ -43,6 +43,7 @@ def render(report: Report, colour: bool = False, quiet: bool = False) -> str:
     out += _tests(report)
     out += _coverage(report, paint)
     out += _findings(report.findings, paint)
+    out += _waivers(report)
     out += [f"note: {note}" for note in report.notes]
     return "\n".join(out) + "\n"
 
@@ -110,17 +111,19 @@ def _differential(run) -> list[str]:  # type: ignore[no-untyped-def]
     return ["against base: " + ", ".join(f"{counts[name]} {name}" for name in CLASSES)]
 
 
-
-
 def _coverage(report: Report, paint) -> list[str]:  # type: ignore[no-untyped-def]
     cov = report.coverage
     if cov is None:
         return []
-    if cov.percent is None:
+    if cov.percent is None and not cov.separate:
         return ["coverage of machine-written lines: no executable machine-written lines"]
     rows = [f"coverage of machine-written lines: {cov.covered}/{cov.executable} = {cov.percent:.1f}% "
-            f"(threshold {cov.threshold:g}%)"]
-    for path, lines in cov.uncovered.items():
+            f"(threshold {cov.threshold:g}%)" if cov.percent is not None else
+            "coverage of machine-written lines: none outside the files with their own threshold"]
+    rows += [f"  {t.path}: {t.covered}/{t.executable} = {t.percent:.1f}% (its own threshold {t.threshold:g}%)"
+             for t in cov.separate if t.percent is not None]
+    uncovered = {**cov.uncovered, **{t.path: t.uncovered for t in cov.separate if t.uncovered}}
+    for path, lines in uncovered.items():
         source = report.sources.get(path, {})
         rows.append(f"  uncovered in {path}:")
         rows += [f"    {paint('block', f'{line:>5}')} | {source.get(line, '').rstrip()}" for line in lines[:40]]
@@ -140,6 +143,15 @@ def _findings(findings: tuple[Finding, ...], paint) -> list[str]:  # type: ignor
         tail = finding.details.get("output_tail") if finding.details else None
         if tail:
             rows += [f"      {line}" for line in str(tail).strip().splitlines()[-15:]]
+    return rows
+
+
+def _waivers(report: Report) -> list[str]:
+    if not report.waivers_used:
+        return []
+    rows = [f"waivers used: {len(report.waivers_used)}"]
+    rows += [f"  {w.rule} on {w.path} (owner {w.owner}, until {w.expires}, {w.source}): {w.reason}"
+             for w in report.waivers_used]
     return rows
 
 

@@ -50,9 +50,14 @@ class Rule:
     options: Mapping[str, Any] = field(default_factory=dict)  # option name -> default value
     sources: tuple[str, ...] = ()  # where the rule's facts come from (CWE ids, Python's documentation, ...)
 
-    def option(self, policy: Policy, name: str) -> Any:
-        """The policy's value of one of this rule's options, else the rule's default."""
-        return policy.rule_options.get(self.id, {}).get(name, self.options[name])
+    def option(self, policy: Policy, name: str, path: str | None = None) -> Any:
+        """The policy's value of one of this rule's options (at ``path``, after the per-path overrides
+        that match it, when given), else the rule's default."""
+        if path is None or not policy.overrides:
+            return policy.rule_options.get(self.id, {}).get(name, self.options[name])
+        from verifier.policy import policy_for_path
+
+        return policy_for_path(policy, path).option(self.id, name, self.options[name])
 
 
 REGISTRY: dict[str, Rule] = {}
@@ -87,17 +92,21 @@ def load_all() -> Mapping[str, Rule]:
 
 
 def apply_rules(stage: str, context: RuleContext) -> list[Finding]:
-    """Run every enabled rule of ``stage`` and give each finding the severity the policy sets."""
+    """Run every enabled rule of ``stage`` and give each finding the severity the policy sets for its
+    path (per-path overrides included); a finding a waiver covers becomes ``info``."""
+    from verifier.policy import enabled_anywhere, judge_finding
+
     findings: list[Finding] = []
+    policy = context.policy
     for registered in load_all().values():
         if registered.stage != stage:
             continue
-        setting = "block" if registered.fixed else context.policy.setting(registered.id, registered.default)
-        if setting == "off":
+        if not registered.fixed and not enabled_anywhere(policy, registered.id, registered.default):
             continue
         for finding in registered.check(context):
-            severity = finding.severity if finding.severity in ("error", "info") else setting
-            findings.append(_capped(replace(finding, severity=severity)))
+            judged = judge_finding(policy, registered.id, registered.default, registered.fixed, finding)
+            if judged is not None:
+                findings.append(_capped(judged))
     return findings
 
 
