@@ -128,7 +128,8 @@ def _run_tests(
     from verifier import testrun
 
     say(f"running the tests in the {backend.name} sandbox")
-    return testrun.read_run(testrun.run_revision(git, change.head, policy, selection, backend))
+    judged = tuple(f.path for f in change.files if f.path.endswith(".py") and f.added_lines)
+    return testrun.read_run(testrun.run_revision(git, change.head, policy, selection, backend, judged))
 
 
 def _pick_image(backend, git: Git, change: Change) -> None:  # type: ignore[no-untyped-def]

@@ -59,9 +59,6 @@ relative_files = True
 data_file = {COVERAGE_DATA}
 source = .
 omit = {HARNESS_DIR}/*
-
-[json]
-show_contexts = True
 """
 # With pytest-xdist the tests run in worker processes: coverage.py (7.10+) measures them with
 # ``patch = subprocess``, which also makes the data files parallel ones, joined by ``coverage combine``.
@@ -92,8 +89,14 @@ pytest_rc = subprocess.call(
      *settings["args"]], env=env)
 if spread:
     subprocess.call([sys.executable, "-m", "coverage", "combine", "--rcfile=" + rc, "-q"], env=env)
-json_rc = subprocess.call(
-    [sys.executable, "-m", "coverage", "json", "--rcfile=" + rc, "-q", "-o", {COVERAGE_JSON!r}], env=env)
+# coverage.py's own analysis (statements, missing, excluded) only of the files the gate judges: a report of
+# every measured file costs seconds on a large suite. Which test ran what is read from the data file.
+report_files = settings.get("report_files") or []
+json_rc = None
+if report_files:
+    json_rc = subprocess.call(
+        [sys.executable, "-m", "coverage", "json", "--rcfile=" + rc, "-q", "--include=" + ",".join(report_files),
+         "-o", {COVERAGE_JSON!r}], env=env)
 
 def failing(path, attempt):
     found = set()
@@ -225,8 +228,9 @@ def pytest_runtest_logreport(report):
 ENV_BASE = {"LANG": "C.UTF-8", "LC_ALL": "C.UTF-8", "PYTHONDONTWRITEBYTECODE": "1", "PYTHONHASHSEED": "0"}
 
 
-def prepare(tree: Path, policy: Policy, selection: Selection) -> SandboxRequest:
-    """Write the harness into the materialised ``tree`` and describe the sandboxed run."""
+def prepare(tree: Path, policy: Policy, selection: Selection, report_files: tuple[str, ...] = ()) -> SandboxRequest:
+    """Write the harness into the materialised ``tree`` and describe the sandboxed run; coverage.py's
+    statement analysis is reported for ``report_files`` (the files the gate judges)."""
     harness = tree / HARNESS_DIR
     if harness.exists():
         shutil.rmtree(harness)
@@ -243,6 +247,7 @@ def prepare(tree: Path, policy: Policy, selection: Selection) -> SandboxRequest:
         "policy_args": list(policy.pytest_args),
         "workers": workers_for(policy, selection),
         "reruns": policy.selection.reruns,
+        "report_files": list(report_files),
     }
     env = {**ENV_BASE, "PYTHONPATH": ":".join(policy.python_path)}
     return SandboxRequest(
@@ -285,7 +290,9 @@ def _test_files(tree: Path, selection: Selection) -> list[str]:
     return sorted(path for path in paths if (tree / path).is_file())
 
 
-def run_revision(git: Git, revision: str, policy: Policy, selection: Selection, backend: Backend) -> SandboxResult:
+def run_revision(
+    git: Git, revision: str, policy: Policy, selection: Selection, backend: Backend, report_files: tuple[str, ...] = ()
+) -> SandboxResult:
     """Materialise ``revision`` (a commit, or INDEX) outside the repository and run its tests in ``backend``."""
     workdir = Path(tempfile.mkdtemp(prefix="verifier-tree-"))
     try:
@@ -294,7 +301,7 @@ def run_revision(git: Git, revision: str, policy: Policy, selection: Selection, 
             git.export_index(tree)
         else:
             git.export_commit(revision, tree)
-        return backend.run(prepare(tree, policy, selection))
+        return backend.run(prepare(tree, policy, selection, report_files))
     finally:
         shutil.rmtree(workdir, ignore_errors=True)
 
@@ -305,7 +312,7 @@ def read_run(result: SandboxResult) -> RunResult:
     tests = _apply_reruns(tests, result.files.get(RERUNS, b""))
     status_file = _json(result.files.get(STATUS))
     pytest_exit = status_file.get("pytest_exit") if status_file else None
-    coverage = _read_coverage(_json(result.files.get(COVERAGE_JSON)) or {})
+    coverage = _read_coverage(_json(result.files.get(COVERAGE_JSON)) or {}, result.files.get(COVERAGE_DATA))
     common = {
         "backend": result.backend,
         "isolation": result.isolation,
@@ -413,15 +420,40 @@ def _last_line(message: str) -> str:
     return lines[-1].strip() if lines else "no message"
 
 
-def _read_coverage(report: Mapping) -> dict[str, FileCoverage]:
-    files: dict[str, FileCoverage] = {}
+def _read_coverage(report: Mapping, data_file: bytes | None) -> dict[str, FileCoverage]:
+    """Executed lines and per-test contexts of every measured file (from coverage.py's data file), with
+    statements, missing and excluded lines where coverage.py's JSON report analysed the file."""
+    files = _read_coverage_data(data_file) if data_file else {}
     for path, data in (report.get("files") or {}).items():
-        contexts = {int(line): tuple(names) for line, names in (data.get("contexts") or {}).items()}
+        measured = files.get(path)
         files[path] = FileCoverage(
             path=path,
             executed=frozenset(data.get("executed_lines", ())),
             missing=frozenset(data.get("missing_lines", ())),
             excluded=frozenset(data.get("excluded_lines", ())),
-            contexts=contexts,
+            contexts=measured.contexts if measured else {},
         )
     return files
+
+
+def _read_coverage_data(data_file: bytes) -> dict[str, FileCoverage]:
+    from coverage import CoverageData
+
+    with tempfile.TemporaryDirectory(prefix="verifier-coverage-") as folder:
+        path = Path(folder) / "coverage.sqlite"
+        path.write_bytes(data_file)
+        data = CoverageData(basename=str(path))
+        try:
+            data.read()
+            named = bool(data.measured_contexts() - {""})
+            return {
+                name: FileCoverage(
+                    path=name,
+                    executed=frozenset(data.lines(name) or ()),
+                    missing=frozenset(),
+                    contexts={line: tuple(c) for line, c in data.contexts_by_lineno(name).items()} if named else {},
+                )
+                for name in data.measured_files()
+            }
+        except Exception:  # a data file the tests damaged: the coverage rule then sees nothing executed
+            return {}

@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 import importlib
+from typing import TYPE_CHECKING
 
-from verifier.audit import Audit
+if TYPE_CHECKING:  # the CLI imports this package for the subcommand's arguments; the audit itself is lazy
+    from verifier.audit import Audit
 
 FORMATS = {
     "markdown": "verifier.auditreport.markdown:render",
