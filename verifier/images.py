@@ -47,7 +47,7 @@ DEBIAN_PACKAGES = ("python3", "python3-venv")
 DEFAULT_MIRROR = "http://deb.debian.org/debian"
 MIRROR_ENV = "VERIFIER_DEBIAN_MIRROR"
 BUILD_DIR_ENV = "VERIFIER_BUILD_DIR"
-# Keep in step with pyproject.toml and sandbox_images/*/Dockerfile (a test checks the Dockerfiles).
+# Keep in step with pyproject.toml and sandbox_images/Dockerfile (a test checks the Dockerfiles).
 TOOL_REQUIREMENTS = ("pytest>=7.3,<10", "coverage>=7.2,<8")
 VENV = "/opt/verifier-python"
 SYSTEM_PATH = "/usr/local/sbin:/usr/local/bin:/usr/sbin:/usr/bin:/sbin:/bin"
@@ -107,7 +107,7 @@ def _require_debootstrap() -> None:
     if shutil.which("debootstrap") is None:
         raise _unavailable(
             "the offline image builder needs debootstrap",
-            hint="apt-get install -y debootstrap (or build from sandbox_images/<python>/Dockerfile with a registry)",
+            hint="apt-get install -y debootstrap (or build from sandbox_images/Dockerfile with a registry)",
         )
     if os.geteuid() != 0:
         raise _unavailable("debootstrap must run as root", hint="run the build as root (for example in CI)")
