@@ -7,7 +7,7 @@ import subprocess
 import sys
 from pathlib import Path
 
-from conftest import machine, run_check, snapshot
+from conftest import machine, run_check, snapshot, test_sandbox
 
 from verifier import demo
 from verifier.scratch import ScratchRepo
@@ -279,3 +279,19 @@ def test_unavailable_sandbox_is_exit_3(repo: ScratchRepo) -> None:
     sha = repo.commit(machine("Volume"), {"parcelkit/volume.py": demo.VOLUME, "tests/test_volume.py": demo.TEST_VOLUME})
     out = run_check(repo, sha, sandbox="docker", env={"DOCKER_HOST": "unix:///nonexistent/docker.sock"})
     assert out.code == 3 and "docker" in out.stderr
+
+
+def test_a_credential_is_never_quoted_in_any_report(repo: ScratchRepo, tmp_path: Path) -> None:
+    start(repo)
+    secret = "AKIA" + "Q7XW3MZP5RT2KV8N"  # the shape of an AWS access key id, made up here
+    sha = repo.commit(machine("Carrier client"), {"parcelkit/carrier.py": f'def client():\n    return "{secret}"\n'})
+    out_dir = tmp_path / "reports"
+    done = subprocess.run([sys.executable, "-m", "verifier", "-C", str(repo.path), "check", sha, "--sandbox",
+                           test_sandbox(), "--format", "all", "--output", str(out_dir)], capture_output=True, text=True)
+    assert done.returncode == 1
+    assert "secrets.literal" in done.stdout
+    assert secret not in done.stdout + done.stderr
+    written = {path.name: path.read_text() for path in out_dir.iterdir()}
+    assert written and all(secret not in text for text in written.values())
+    notes = repo.git("notes", "--ref=refs/notes/verifier", "show", sha)
+    assert "secrets.literal" in notes and secret not in notes

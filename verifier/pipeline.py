@@ -143,6 +143,16 @@ def _pick_image(backend, git: Git, change: Change) -> None:  # type: ignore[no-u
         backend.image = image_for(str(git.repo), change.base) or backend.image
 
 
+def _shown_sources(sources: dict[str, str], provenance: Provenance, findings: list[Finding]) -> dict:
+    """The machine-written lines a report may quote; a line holding a credential-like literal is never quoted."""
+    hidden = {(f.path, f.line) for f in findings if f.rule == "secrets.literal"}
+    shown = {path: _lines(text, provenance.machine_lines.get(path, ())) for path, text in sources.items()}
+    for path, line in hidden:
+        if path in shown and line in shown[path]:
+            shown[path][line] = "<not shown: a credential-like literal (secrets.literal)>"
+    return shown
+
+
 def _lines(text: str, numbers: tuple[int, ...]) -> dict[int, str]:
     rows = text.split("\n")
     return {n: rows[n - 1] for n in numbers if 0 < n <= len(rows)}
@@ -173,7 +183,7 @@ def _report(
         run=run,
         coverage=coverage,
         findings=tuple(findings),
-        sources={path: _lines(text, provenance.machine_lines.get(path, ())) for path, text in sources.items()},
+        sources=_shown_sources(sources, provenance, findings),
         notes=notes,
         waivers_used=waivers_used(policy, findings),
         selection=selection,

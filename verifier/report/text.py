@@ -139,6 +139,8 @@ def _findings(findings: tuple[Finding, ...], paint) -> list[str]:  # type: ignor
     rows = [f"findings: {len(shown)}"]
     for finding in shown:
         where = f" {finding.path}" + (f":{finding.line}" if finding.line else "") if finding.path else ""
+        if finding.path and finding.message.startswith(f"{finding.path}::"):
+            where = ""  # the message starts with the test's node id, which names the file already
         rows.append(f"  {paint(finding.severity, finding.severity.upper())} [{finding.rule}]{where} {finding.message}")
         tail = finding.details.get("output_tail") if finding.details else None
         if tail:
