@@ -295,3 +295,9 @@ def test_a_credential_is_never_quoted_in_any_report(repo: ScratchRepo, tmp_path:
     assert written and all(secret not in text for text in written.values())
     notes = repo.git("notes", "--ref=refs/notes/verifier", "show", sha)
     assert "secrets.literal" in notes and secret not in notes
+
+
+def test_a_missing_folder_is_a_usage_error(tmp_path: Path) -> None:
+    done = subprocess.run([sys.executable, "-m", "verifier", "-C", str(tmp_path / "nowhere"), "check"],
+                          capture_output=True, text=True)
+    assert done.returncode == 2 and "is not a folder" in done.stderr and "Traceback" not in done.stderr

@@ -33,14 +33,19 @@ class Git:
         if index_file:
             self._env["GIT_INDEX_FILE"] = index_file
 
-    def run(self, args: Sequence[str], *, input: bytes | None = None, check: bool = True) -> bytes:
-        """Run ``git args`` in the repository and return its standard output as bytes."""
+    def _spawn(self, args: Sequence[str], input: bytes | None = None) -> subprocess.CompletedProcess[bytes]:
         try:
-            done = subprocess.run(
+            return subprocess.run(
                 ["git", *args], cwd=self.repo, input=input, capture_output=True, env=self._env, check=False
             )
         except FileNotFoundError as error:
+            if not self.repo.is_dir():
+                raise UsageError(f"{self.repo} is not a folder", hint="give the repository's folder with -C") from error
             raise UsageError("git is not installed", hint="install git and run again") from error
+
+    def run(self, args: Sequence[str], *, input: bytes | None = None, check: bool = True) -> bytes:
+        """Run ``git args`` in the repository and return its standard output as bytes."""
+        done = self._spawn(args, input)
         if check and done.returncode != 0:
             raise GitError(list(args), done.stderr.decode("utf-8", "replace"))
         return done.stdout
@@ -49,7 +54,7 @@ class Git:
         return self.run(args).decode("utf-8", "surrogateescape").strip()
 
     def ok(self, args: Sequence[str]) -> bool:
-        return subprocess.run(["git", *args], cwd=self.repo, capture_output=True, env=self._env).returncode == 0
+        return self._spawn(args).returncode == 0
 
     # -- locating -----------------------------------------------------------------------------
     def toplevel(self) -> Path:
@@ -136,9 +141,7 @@ class Git:
     def show_file(self, rev: str | None, path: str) -> bytes | None:
         """The bytes of ``path`` at ``rev`` (None = the index), or None when it is not there."""
         spec = f":{path}" if rev is None else f"{rev}:{path}"
-        done = subprocess.run(
-            ["git", "cat-file", "blob", spec], cwd=self.repo, capture_output=True, env=self._env, check=False
-        )
+        done = self._spawn(["cat-file", "blob", spec])
         return done.stdout if done.returncode == 0 else None
 
     def read_blobs(self, specs: Sequence[str]) -> dict[str, bytes]:
