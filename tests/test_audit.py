@@ -155,6 +155,38 @@ def test_cache_gives_the_same_audit(history):
     assert first == again == fresh
 
 
+def test_cache_sees_a_new_note_and_survives_damage(tmp_path: Path):
+    repo = ScratchRepo(tmp_path / "repo")
+    repo.commit("Start", {"parcelkit/rates.py": _lines("rate", 2)}, date=_date("03-01"))
+    sha = repo.commit(machine("Add zones"), {"parcelkit/zones.py": _lines("zone", 3)}, date=_date("03-05"))
+    window = AuditRequest(since="2024-03-04", until="2024-03-10", weeks=1)
+    assert [run_audit(repo.path, window).window.unverified for _ in range(3)] == [1, 1, 1]  # cold, warm, warm
+    _note(repo, sha, "pass")  # the notes ref moves on: the cached span must not hide the new note
+    assert run_audit(repo.path, window).window.unverified == 0
+    cache = Path(repo.git("rev-parse", "--git-common-dir").strip())
+    cache = (cache if cache.is_absolute() else repo.path / cache) / "verifier" / "audit-cache"
+    files = [f for f in cache.iterdir() if f.suffix == ".bin"]
+    assert {f.name.split("-")[0] for f in files} >= {"span", "notes"}
+    for damaged in files:
+        damaged.write_bytes(damaged.read_bytes()[:-3] + b"xyz")  # the checksum no longer matches
+    fresh = run_audit(repo.path, AuditRequest(**{**window.__dict__, "use_cache": False}))
+    assert run_audit(repo.path, window) == fresh and fresh.window.verified == 1
+
+
+def test_json_text_is_what_the_json_module_writes(history):
+    from verifier.auditreport import render
+    from verifier.auditreport.jsonfmt import as_dict
+
+    audit = run_audit(repo_path(history), WINDOW)
+    assert audit.commits and any(c.findings for c in audit.commits)
+    # the reference layout is Python's own json.dumps with indent=2 (docs.python.org, json.dumps)
+    assert render(audit, "json") == json.dumps(as_dict(audit), indent=2) + "\n"
+
+
+def repo_path(history: tuple[ScratchRepo, dict[str, str]]) -> Path:
+    return history[0].path
+
+
 def test_cli_formats(history, tmp_path: Path):
     repo, c = history
     before = repo.git("for-each-ref") + repo.git("status", "--porcelain")

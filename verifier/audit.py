@@ -21,15 +21,19 @@ an unreadable note or no note at all leaves the commit *unverified* (fail closed
 
 from __future__ import annotations
 
+import bisect
 import codecs
 import contextlib
+import gc
 import hashlib
 import json
+import marshal
 import os
 import re
-import tempfile
+import sys
+import time
 from collections import Counter, defaultdict
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from datetime import date, datetime, timedelta, timezone
 from pathlib import Path
@@ -54,9 +58,10 @@ _LOG_FORMAT = "%x1e%H%x1f%P%x1f%an%x1f%ae%x1f%cn%x1f%ce%x1f%ct%x1f%N%x1f%B"
 _REVERT = re.compile(r"This reverts commit ([0-9a-f]{7,40})")
 _HUNK = re.compile(r"@@ -(\d+)(?:,(\d+))? \+(\d+)(?:,(\d+))? @@")
 _SHA_LINE = re.compile(r"[0-9a-f]{40}")
-_CACHE_VERSION = 1
-_CACHE_NAME = f"patches-v{_CACHE_VERSION}.json"
+_CACHE_VERSION = 2
+_CACHE_NAME = f"patches-v{_CACHE_VERSION}.bin"
 _LINES_KEPT = 8
+_KEYS_PER_WORKER = 500  # fewer patches than this per core: one diff-tree is quicker than starting more
 _HEADER_FIELDS = ("rename from ", "rename to ", "new file mode ", "deleted file mode ", "--- ", "+++ ")
 
 
@@ -76,10 +81,10 @@ class FilePatch(NamedTuple):
         return sum(self.hunks[3::4])
 
 
-@dataclass(frozen=True)
-class LogCommit:
+class LogCommit(NamedTuple):
     """A commit of the span as ``git log`` gave it; ``patches`` holds one list per parent
-    (one for a root or ordinary commit, none for a merge whose patches were not read)."""
+    (one for a root or ordinary commit, none for a merge whose patches were not read). A tuple:
+    the audit makes ten thousand of them."""
 
     sha: str
     parents: tuple[str, ...]
@@ -136,7 +141,7 @@ class CommitLines(NamedTuple):
     marked: bool = False
     machine_lines: int = 0
     alive: int = 0  # machine lines alive at the window's end
-    lifetimes: Sequence[int] = ()  # seconds each machine line lived, for those dead at the window's end
+    lifetimes: Sequence[int] = ()  # seconds each machine line lived (dead at the window's end), ascending
 
 
 @dataclass(frozen=True)
@@ -299,7 +304,7 @@ def window_bounds(since: str | None, until: str | None, now: float | None = None
 
 
 def iso(seconds: int) -> str:
-    return datetime.fromtimestamp(seconds, timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+    return time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(seconds))  # datetime's own took twice as long
 
 
 # --- reading git (the edge) -----------------------------------------------------------------------------
@@ -309,35 +314,103 @@ def read_history(
     git: Git, ref: str | None, since: int, until: int, *, weeks: int = 4, notes_ref: str = DEFAULT_NOTES_REF,
     agent_emails: Sequence[str] = (), use_cache: bool = True,
 ) -> History:
-    """Read the window and the ``weeks`` weeks before it from ``git``, in a few bulk calls."""
+    """Read the window and the ``weeks`` weeks before it from ``git``, in a few bulk calls; with the
+    cache, a span already audited (same window-end revision, span and agent identities: commits never
+    change) is read from it, and only the notes are read again (by their ref's tip)."""
     ref_name = ref or _current_branch(git)
-    tip = git.resolve(ref_name)
     span_since = since - 7 * DAY * max(weeks, 0)
-    end = git.run(["rev-list", "-1", "--first-parent", f"--until=@{until - 1}", tip]).decode().strip() or None
-    waivers, identities, problems = _policy_facts(git, end, until)
+    end = _window_end(git, ref_name, until)
+    waivers, identities, problems = _policy_facts(git, end, until, use_cache)
     emails = tuple(sorted({e.lower() for e in (*agent_emails, *identities)}))
+    key = hashlib.sha1(f"{_CACHE_VERSION}\n{end}\n{span_since}\n{until}\n{chr(10).join(emails)}".encode()).hexdigest()
+    cached = _load_span(git, key) if use_cache and end is not None else None
+    if cached is not None:
+        commits, facts, outside = cached
+        notes = _read_notes(git, notes_ref, [c.sha for c in commits], use_cache)
+        return History(ref_name, since, until, span_since, end, commits, notes, outside, waivers, emails,
+                       tuple(problems), facts, key)
     records = _log_records(git, end, span_since, until, notes_ref) if end is not None else []
-    key = hashlib.sha1("\n".join([str(_CACHE_VERSION), *emails, *(r[0] for r in records)]).encode()).hexdigest()
-    lines = _load_json(_cache_dir(git) / f"lines-{key}.json") if use_cache else None
-    facts = {sha: CommitLines(*entry) for sha, entry in lines.items()} if isinstance(lines, dict) else None
-    if facts is not None and any(r[0] not in facts for r in records):
-        facts = None  # a damaged cache file: replay the patches
-    patches = None if facts is not None else _patches(git, records, use_cache)
-    commits = [_log_commit(fields, patches) for fields in records]
-    notes = {c.sha: note_body(c.note) for c in commits if c.note is not None}
-    outside = _outside_reverts(git, commits)
-    return History(ref_name, since, until, span_since, end, tuple(commits), notes, outside, waivers, emails,
-                   tuple(problems), facts, key)
+    patches = _patches(git, records, use_cache)
+    commits_list = [_log_commit(fields, patches) for fields in records]
+    notes = {c.sha: note_body(c.note) for c in commits_list if c.note is not None}
+    outside = _outside_reverts(git, commits_list)
+    return History(ref_name, since, until, span_since, end, tuple(commits_list), notes, outside, waivers, emails,
+                   tuple(problems), None, key)
 
 
 def save_lines(git: Git, history: History, lines: Mapping[str, CommitLines]) -> None:
-    """Keep the replay's results for this span of commits (a re-run, or one after ``--recheck``, which
-    changes only notes, then reads no patch at all); the newest few are kept."""
+    """Keep the span's commits and the replay's results (a re-run, or one after ``--recheck``, which
+    changes only notes, then reads no commit and no patch at all); the newest few spans are kept."""
+    commits = [_commit_row(c) for c in history.commits]
+    facts = [[*lines[c.sha][:2], list(lines[c.sha].scope), *lines[c.sha][3:6], list(lines[c.sha].lifetimes)]
+             for c in history.commits]
+    outside = [_commit_row(c) for c in history.outside.values()]
     folder = _cache_dir(git)
-    _save_json(folder / f"lines-{history.lines_key}.json", {sha: list(entry) for sha, entry in lines.items()})
-    kept = sorted(folder.glob("lines-*.json"), key=lambda p: p.stat().st_mtime, reverse=True)
+    _save_marshal(folder / f"span-{history.lines_key}.bin", [commits, facts, outside])
+    kept = sorted(folder.glob("span-*.bin"), key=lambda p: p.stat().st_mtime, reverse=True)
     for old in kept[_LINES_KEPT:]:
         old.unlink(missing_ok=True)
+
+
+def _commit_row(commit: LogCommit) -> list[Any]:
+    """A commit as the span cache keeps it; names and emails interned, so marshal writes each once."""
+    names = [sys.intern(name) for name in (commit.author, commit.author_email, commit.committer,
+                                           commit.committer_email)]
+    return [commit.sha, " ".join(commit.parents), *names, commit.time, commit.message]
+
+
+def _load_span(git: Git, key: str) -> tuple[tuple[LogCommit, ...], dict[str, CommitLines], dict[str, LogCommit]] | None:
+    """The span's commits, line facts and outside reverted commits from the cache; None when absent or damaged."""
+    data = _load_marshal(_cache_dir(git) / f"span-{key}.bin")
+    try:
+        rows, facts, outside = data  # type: ignore[misc]
+        commits = tuple(LogCommit(s, tuple(p.split()), an, ae, cn, ce, t, m) for s, p, an, ae, cn, ce, t, m in rows)
+        lines = {c.sha: CommitLines(*entry) for c, entry in zip(commits, facts, strict=True)}
+        older = {row[0]: LogCommit(row[0], tuple(row[1].split()), *row[2:]) for row in outside}
+    except (TypeError, ValueError):
+        return None
+    return commits, lines, older
+
+
+def _read_notes(git: Git, notes_ref: str, shas: Sequence[str], use_cache: bool) -> dict[str, Mapping[str, Any]]:
+    """The span's notes, in bulk: ``git notes list`` and one ``cat-file --batch`` of their blobs, or the
+    cache of what this same notes ref tip (a commit: its notes never change) gave for this span."""
+    full = notes_ref if notes_ref.startswith("refs/") else f"refs/{notes_ref}" if notes_ref.startswith(
+        "notes/") else f"refs/notes/{notes_ref}"  # how git expands --notes=<ref>
+    notes_tip = git.run(["rev-parse", "-q", "--verify", f"{full}^{{commit}}"], check=False).decode().strip()
+    if not notes_tip:
+        return {}
+    span = hashlib.sha1("\n".join(shas).encode()).hexdigest()
+    cache_file = _cache_dir(git) / f"notes-{notes_tip}-{span}.bin"
+    cached = _load_marshal(cache_file) if use_cache else None
+    if isinstance(cached, dict):
+        return cached
+    wanted = set(shas)
+    listing = git.run(["notes", "--ref", full, "list"]).decode().split()
+    blob_of = {commit: blob for blob, commit in zip(listing[::2], listing[1::2], strict=True) if commit in wanted}
+    blobs = git.read_blobs(sorted(set(blob_of.values())))
+    notes = {}
+    for sha in shas:
+        if sha in blob_of and (text := blobs.get(blob_of[sha], b"").decode("utf-8", "surrogateescape").rstrip("\n")):
+            notes[sha] = note_body(text)
+    if use_cache:
+        _save_marshal(cache_file, notes)
+        kept = sorted(cache_file.parent.glob("notes-*.bin"), key=lambda p: p.stat().st_mtime, reverse=True)
+        for old in kept[_LINES_KEPT:]:
+            old.unlink(missing_ok=True)
+    return notes
+
+
+def _window_end(git: Git, ref_name: str, until: int) -> str | None:
+    """The newest first-parent ancestor of ``ref_name`` committed before ``until`` (one git call; a ref
+    that is not a commit is then reported as git.resolve reports it)."""
+    ask = ["rev-list", "-1", "--first-parent", f"--until=@{until - 1}", "--end-of-options", f"{ref_name}^{{commit}}",
+           "--"]
+    out = git.run(ask, check=False)
+    if not out.strip():
+        tip = git.resolve(ref_name)  # raises the usage error when it is not a commit
+        out = git.run(["rev-list", "-1", "--first-parent", f"--until=@{until - 1}", tip])
+    return out.decode().strip() or None
 
 
 def _current_branch(git: Git) -> str:
@@ -361,13 +434,13 @@ def _log_records(git: Git, end: str, since: int, until: int, notes_ref: str) -> 
 def _patches(git: Git, records: Sequence[list[str]], use_cache: bool) -> dict[str, list[Any]]:
     """The records' patches by ``diff-tree`` key: from the cache, the rest in one ``diff-tree`` call."""
     cache_file = _cache_dir(git) / _CACHE_NAME
-    loaded = _load_json(cache_file) if use_cache else None
+    loaded = _load_marshal(cache_file) if use_cache else None
     cache = loaded if isinstance(loaded, dict) else {}
     wanted = [key for fields in records for key in _patch_keys(fields[0], fields[1]) if key not in cache]
     if wanted:
-        cache.update(_diff_tree(git, wanted))
+        cache.update(_diff_trees(git, wanted))
         if use_cache:
-            _save_json(cache_file, cache)
+            _save_marshal(cache_file, cache)
     return cache
 
 
@@ -387,6 +460,24 @@ def _patch_keys(sha: str, parents: str) -> list[str]:
     if len(parent_list) <= 1:
         return [sha]
     return [f"{sha} {parent}" for parent in parent_list]
+
+
+def _diff_trees(git: Git, keys: list[str]) -> dict[str, list[Any]]:
+    """Read the patches of ``keys``: git's diffs are most of a first audit's time and each ``diff-tree``
+    uses one core, so a long list is split into one ``diff-tree`` per core, run side by side (their
+    output is parsed as each finishes, while the others still run)."""
+    workers = min(os.cpu_count() or 1, 4, len(keys) // _KEYS_PER_WORKER)
+    if workers <= 1:
+        return _diff_tree(git, keys)
+    from concurrent.futures import ThreadPoolExecutor
+
+    size = -(-len(keys) // workers)
+    chunks = [keys[start : start + size] for start in range(0, len(keys), size)]
+    patches: dict[str, list[Any]] = {}
+    with ThreadPoolExecutor(max_workers=len(chunks)) as pool:
+        for found in pool.map(lambda chunk: _diff_tree(git, chunk), chunks):
+            patches.update(found)
+    return patches
 
 
 def _diff_tree(git: Git, keys: list[str]) -> dict[str, list[Any]]:
@@ -483,29 +574,45 @@ def _unquote(text: str) -> str:
 
 
 def _encode_patches(files: list[FilePatch]) -> list[Any]:
-    return [[f.old_path, f.new_path, list(f.hunks)] for f in files]
+    """Plain lists for the cache; paths interned, so marshal writes each path once."""
+    return [[f.old_path and sys.intern(f.old_path), f.new_path and sys.intern(f.new_path), list(f.hunks)]
+            for f in files]
 
 
 def _cache_dir(git: Git) -> Path:
     """The audit's cache, under the git dir (safe to delete): patches by commit, which never change (a
-    sha names its content), and the replay's results by window-end revision and span."""
-    return git.common_dir() / "verifier" / "audit-cache"
+    sha names its content), the spans' commits and replay results, notes by their ref's tip."""
+    known = getattr(git, "_audit_cache_dir", None)
+    if known is None:
+        known = git.common_dir() / "verifier" / "audit-cache"
+        git._audit_cache_dir = known  # type: ignore[attr-defined]  # one rev-parse per audit, not per file
+    return known
 
 
-def _load_json(path: Path) -> Any:
-    """A cache file's content; None when it is missing or damaged (the audit then reads git again)."""
+def _load_marshal(path: Path) -> Any:
+    """A cache file of plain values (marshal: the fastest to read), checked by the sha-1 of its body
+    written before it; None when missing or damaged (the audit then reads git again)."""
     try:
-        return json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, ValueError):
+        raw = path.read_bytes()
+    except OSError:
+        return None
+    if len(raw) < 20 or hashlib.sha1(raw[20:]).digest() != raw[:20]:
+        return None
+    try:
+        return marshal.loads(raw[20:])
+    except (EOFError, ValueError, TypeError):
         return None
 
 
-def _save_json(path: Path, data: Any) -> None:
+def _save_marshal(path: Path, data: Any) -> None:
+    import tempfile  # only when writing: its imports cost a warm audit's start-up
+
+    body = marshal.dumps(data)
     with contextlib.suppress(OSError):  # the cache only saves time; a read-only git dir is fine
         path.parent.mkdir(parents=True, exist_ok=True)
         handle, temp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-")
-        with os.fdopen(handle, "w", encoding="utf-8") as out:
-            json.dump(data, out, separators=(",", ":"))
+        with os.fdopen(handle, "wb") as out:
+            out.write(hashlib.sha1(body).digest() + body)
         os.replace(temp, path)
 
 
@@ -519,12 +626,19 @@ def note_body(text: str) -> Mapping[str, Any]:
     return body if isinstance(body, dict) else {"format": None, "invalid": "not a JSON object"}
 
 
-def _policy_facts(git: Git, end: str | None, until: int) -> tuple[tuple[WaiverInfo, ...], tuple[str, ...], list[str]]:
+def _policy_facts(git: Git, end: str | None, until: int,
+                  use_cache: bool = True) -> tuple[tuple[WaiverInfo, ...], tuple[str, ...], list[str]]:
     """Waivers and agent identities of the trusted policy at the window's end (a broken policy is a fact
-    to report, not a reason to stop the audit)."""
+    to report, not a reason to stop the audit). Without an organisation policy (a file on disk, which may
+    change) the policy depends only on the window-end revision, its last day, the shipped default and the
+    policy code, so a policy read once is kept in the cache: no YAML is parsed (or imported) again."""
+    day = datetime.fromtimestamp(until - 1, timezone.utc).date()
+    cache_file = _policy_cache_file(git, end, day) if use_cache else None
+    cached = _load_marshal(cache_file) if cache_file is not None else None
+    if isinstance(cached, list) and len(cached) == 2:
+        return tuple(WaiverInfo(*w) for w in cached[0]), tuple(cached[1]), []
     from verifier.policy import load_policy
 
-    day = datetime.fromtimestamp(until - 1, timezone.utc).date()
     try:
         policy = load_policy(git, end, today=day)
     except VerifierError as error:
@@ -534,7 +648,27 @@ def _policy_facts(git: Git, end: str | None, until: int) -> tuple[tuple[WaiverIn
     waivers = tuple(
         WaiverInfo(w.rule, w.path, w.reason, w.owner, str(w.expires)) for w in getattr(policy, "waivers", ())
     )
-    return waivers, tuple(getattr(policy, "agent_identities", ())), []
+    identities = tuple(getattr(policy, "agent_identities", ()))
+    if cache_file is not None:
+        _save_marshal(cache_file, [[[w.rule, w.path, w.reason, w.owner, w.expires] for w in waivers],
+                                   list(identities)])
+    return waivers, identities, []
+
+
+def _policy_cache_file(git: Git, end: str | None, day: date) -> Path | None:
+    """Where the policy facts of (window-end revision, day, shipped default, policy code) are kept; None
+    when an organisation policy is named (verifier.policy.ORG_POLICY_ENV) or the sources cannot be read."""
+    if os.environ.get("VERIFIER_ORG_POLICY"):
+        return None
+    code = Path(__file__).with_name("policy.py")
+    installed = code.with_name("_policies")  # as verifier.policy.shipped_dir finds the shipped policies
+    shipped = (installed if installed.is_dir() else code.parent.parent / "policies") / "default.yaml"
+    try:
+        sources = [code.read_bytes(), shipped.read_bytes()]
+    except OSError:
+        return None
+    key = hashlib.sha1(b"\n".join([f"{_CACHE_VERSION}\n{end}\n{day.isoformat()}".encode(), *sources]))
+    return _cache_dir(git) / f"policy-{key.hexdigest()}.bin"
 
 
 def _outside_reverts(git: Git, commits: Sequence[LogCommit]) -> dict[str, LogCommit]:
@@ -807,10 +941,11 @@ def compute_audit(history: History, settings: Settings | None = None) -> Audit:
     window_rows = [rows[c.sha] for c in in_window if c.sha in rows]
     ordered = sorted(window_rows, key=lambda r: r.date, reverse=True)
     ordered.sort(key=lambda r: {"unverified": 0, "blocked-merged": 1}.get(r.status, 2))
+    window = _period(history.since, history.until, in_window, rows, facts)
     return Audit(
         ref=history.ref,
         end=history.end,
-        window=_period(history.since, history.until, in_window, rows, facts),
+        window=window,
         churn_days=settings.churn_days,
         commits=tuple(ordered),
         agents=_groups(window_rows, lambda r: r.agent),
@@ -819,7 +954,7 @@ def compute_audit(history: History, settings: Settings | None = None) -> Audit:
         waivers_by_rule=tuple(Counter(str(w.get("rule")) for r in window_rows for w in r.waivers).most_common()),
         expiring_waivers=_expiring(history.waivers, history.until, settings.expiry_days),
         reverts=tuple(r for r in reverts if parse_iso(r.date) >= history.since),
-        trend=_trend(history, rows, facts, settings.weeks),
+        trend=_trend(history, rows, facts, settings.weeks, window),
         problems=history.problems,
     )
 
@@ -868,7 +1003,7 @@ def _row(commit: LogCommit, lines: CommitLines, note: Mapping[str, Any] | None, 
         lines_added=lines.lines_added,
         machine_lines=lines.machine_lines,
         lines_alive=lines.alive,
-        lines_churned=sum(1 for seconds in lines.lifetimes if seconds <= churn_days * DAY),
+        lines_churned=bisect.bisect_right(lines.lifetimes, churn_days * DAY),
         verified=verified,
         status=status,
         verdict=verdict,
@@ -899,13 +1034,12 @@ def _period(since: int, until: int, commits: Sequence[LogCommit], rows: Mapping[
 
 
 def _trend(history: History, rows: Mapping[str, AuditCommit], facts: Mapping[str, CommitLines],
-           weeks: int) -> tuple[Period, ...]:
+           weeks: int, window: Period) -> tuple[Period, ...]:
     periods = []
     for week in range(weeks, 0, -1):
         start, stop = history.since - 7 * DAY * week, history.since - 7 * DAY * (week - 1)
         periods.append(_period(start, stop, [c for c in history.commits if start <= c.time < stop], rows, facts))
-    window = [c for c in history.commits if c.time >= history.since]
-    periods.append(_period(history.since, history.until, window, rows, facts))
+    periods.append(window)
     return tuple(periods)
 
 
@@ -962,6 +1096,24 @@ def run_audit(repo: str | os.PathLike[str], request: AuditRequest, now: float | 
     """Audit the repository at ``repo``."""
     if request.weeks < 0 or request.churn_days < 0 or request.expiry_days < 0:
         raise UsageError("--weeks, --churn-days and --expiry-days must not be negative")
+    with _no_cycle_collection():
+        return _run_audit(repo, request, now)
+
+
+@contextlib.contextmanager
+def _no_cycle_collection() -> Iterator[None]:
+    """The audit makes tens of thousands of small objects and no reference cycles: the cycle collector,
+    which runs after every few hundred allocations, would only walk them again and again."""
+    enabled = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if enabled:
+            gc.enable()
+
+
+def _run_audit(repo: str | os.PathLike[str], request: AuditRequest, now: float | None) -> Audit:
     git = Git(Git(repo).toplevel())
     since, until = window_bounds(request.since, request.until, now)
     history = read_history(git, request.ref, since, until, weeks=request.weeks, notes_ref=request.notes_ref,

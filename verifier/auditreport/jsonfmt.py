@@ -95,4 +95,47 @@ def group_dict(group: Group) -> dict[str, Any]:
 
 
 def render(audit: Audit) -> str:
-    return json.dumps(as_dict(audit), indent=2) + "\n"
+    return indented(as_dict(audit)) + "\n"
+
+
+def indented(value: Any, margin: str = "\n") -> str:
+    """The text of ``json.dumps(value, indent=2)``, made faster: with an indent the json module drops its
+    C encoder for a pure-Python one, which costs a lot on a large window; here each string is encoded by
+    the json module's own C function, each key once, and only the layout is Python. tests/test_audit.py
+    checks the two texts are the same."""
+    kind = type(value)
+    if kind is dict:
+        if not value:
+            return "{}"
+        inner = margin + "  "
+        keys = _KEYS
+        parts = [(keys.get(k) or _key(k)) + (_LEAVES[type(v)](v) if type(v) in _LEAVES else indented(v, inner))
+                 for k, v in value.items()]
+        return "{" + inner + ("," + inner).join(parts) + margin + "}"
+    if kind is list or kind is tuple:
+        if not value:
+            return "[]"
+        inner = margin + "  "
+        parts = [_LEAVES[type(v)](v) if type(v) in _LEAVES else indented(v, inner) for v in value]
+        return "[" + inner + ("," + inner).join(parts) + margin + "]"
+    if kind in _LEAVES:
+        return _LEAVES[kind](value)
+    return json.dumps(value)  # floats (NaN and the infinities as json writes them), anything else as json would
+
+
+_string = json.encoder.encode_basestring_ascii  # type: ignore[attr-defined]
+_LEAVES = {  # the exact types json.dumps writes without a choice to make
+    str: _string,
+    int: int.__repr__,
+    bool: lambda flag: "true" if flag else "false",
+    type(None): lambda _none: "null",
+}
+_KEYS: dict[Any, str] = {}
+
+
+def _key(key: Any) -> str:
+    """A dict key and its separator; json writes a key that is not a string as the text of its value."""
+    text = _string(key if isinstance(key, str) else json.dumps(key)) + ": "
+    if type(key) is str and len(_KEYS) < 4096:  # the report's own keys, and a few from notes
+        _KEYS[key] = text
+    return text
