@@ -173,6 +173,19 @@ def test_cache_sees_a_new_note_and_survives_damage(tmp_path: Path):
     assert run_audit(repo.path, window) == fresh and fresh.window.verified == 1
 
 
+def test_policy_waivers_are_read_again_when_the_policy_changes(tmp_path: Path):
+    repo = ScratchRepo(tmp_path / "repo")
+    waiver = "waivers:\n  - {rule: code.syntax, path: parcelkit/**, reason: draft, owner: ada, expires: 2024-03-15}\n"
+    repo.commit("Start", {"verifier.yaml": waiver, "parcelkit/rates.py": _lines("rate", 2)}, date=_date("03-01"))
+    window = AuditRequest(since="2024-03-04", until="2024-03-10", weeks=0)
+    runs = [run_audit(repo.path, window) for _ in range(2)]  # the second reads the policy from the cache
+    runs.append(run_audit(repo.path, AuditRequest(**{**window.__dict__, "use_cache": False})))
+    assert runs[0] == runs[1] == runs[2] and not runs[0].problems
+    assert [(e.waiver.rule, e.days_left) for e in runs[0].expiring_waivers] == [("code.syntax", 5)]  # 03-10 to 03-15
+    repo.commit("No more waivers", {"verifier.yaml": "waivers: []\n"}, date=_date("03-06"))
+    assert run_audit(repo.path, window).expiring_waivers == ()
+
+
 def test_json_text_is_what_the_json_module_writes(history):
     from verifier.auditreport import render
     from verifier.auditreport.jsonfmt import as_dict

@@ -347,9 +347,7 @@ def save_lines(git: Git, history: History, lines: Mapping[str, CommitLines]) -> 
     outside = [_commit_row(c) for c in history.outside.values()]
     folder = _cache_dir(git)
     _save_marshal(folder / f"span-{history.lines_key}.bin", [commits, facts, outside])
-    kept = sorted(folder.glob("span-*.bin"), key=lambda p: p.stat().st_mtime, reverse=True)
-    for old in kept[_LINES_KEPT:]:
-        old.unlink(missing_ok=True)
+    _keep_newest(folder, "span-*.bin")
 
 
 def _commit_row(commit: LogCommit) -> list[Any]:
@@ -389,15 +387,12 @@ def _read_notes(git: Git, notes_ref: str, shas: Sequence[str], use_cache: bool) 
     listing = git.run(["notes", "--ref", full, "list"]).decode().split()
     blob_of = {commit: blob for blob, commit in zip(listing[::2], listing[1::2], strict=True) if commit in wanted}
     blobs = git.read_blobs(sorted(set(blob_of.values())))
-    notes = {}
-    for sha in shas:
-        if sha in blob_of and (text := blobs.get(blob_of[sha], b"").decode("utf-8", "surrogateescape").rstrip("\n")):
-            notes[sha] = note_body(text)
+    bodies = {blob: note_body(text) for blob, raw in blobs.items()  # a note written twice is read once
+              if (text := raw.decode("utf-8", "surrogateescape").rstrip("\n"))}
+    notes = {sha: bodies[blob_of[sha]] for sha in shas if blob_of.get(sha) in bodies}
     if use_cache:
         _save_marshal(cache_file, notes)
-        kept = sorted(cache_file.parent.glob("notes-*.bin"), key=lambda p: p.stat().st_mtime, reverse=True)
-        for old in kept[_LINES_KEPT:]:
-            old.unlink(missing_ok=True)
+        _keep_newest(cache_file.parent, "notes-*.bin")
     return notes
 
 
@@ -589,6 +584,14 @@ def _cache_dir(git: Git) -> Path:
     return known
 
 
+def _keep_newest(folder: Path, pattern: str) -> None:
+    """Let the cache hold only the newest few files of one kind."""
+    with contextlib.suppress(OSError):
+        kept = sorted(folder.glob(pattern), key=lambda p: p.stat().st_mtime, reverse=True)
+        for old in kept[_LINES_KEPT:]:
+            old.unlink(missing_ok=True)
+
+
 def _load_marshal(path: Path) -> Any:
     """A cache file of plain values (marshal: the fastest to read), checked by the sha-1 of its body
     written before it; None when missing or damaged (the audit then reads git again)."""
@@ -652,6 +655,7 @@ def _policy_facts(git: Git, end: str | None, until: int,
     if cache_file is not None:
         _save_marshal(cache_file, [[[w.rule, w.path, w.reason, w.owner, w.expires] for w in waivers],
                                    list(identities)])
+        _keep_newest(cache_file.parent, "policy-*.bin")
     return waivers, identities, []
 
 
