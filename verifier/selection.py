@@ -24,6 +24,8 @@ everything too: the gate never passes a change because nothing looked at it.
 from __future__ import annotations
 
 import ast
+import contextlib
+import json
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
@@ -359,10 +361,30 @@ def _importers(git: Git, change: Change, policy: Policy) -> Importers:
     def importers(side: str, path: str) -> set[str]:
         if side not in graphs:
             revision = change.base if side == "base" else change.head
-            graphs[side] = build_graph(python_sources(git, revision))
+            graphs[side] = _cached_graph(git, revision, lambda: build_graph(python_sources(git, revision)))
         return graphs[side].importers([path])  # type: ignore[attr-defined]
 
     return importers
+
+
+def _cached_graph(git: Git, revision: str | None, build):  # type: ignore[no-untyped-def]
+    """The import graph of a commit's tree, kept beside the who-tests-what maps (keyed by the tree hash,
+    safe to delete); the index and the empty tree are read every time."""
+    from verifier.impactmap import cache_dir, tree_of
+    from verifier.imports import ImportGraph
+
+    if revision is None or revision == INDEX:
+        return build()
+    path = cache_dir(git).parent / "imports" / f"{tree_of(git, revision)}.json"
+    try:
+        stored = json.loads(path.read_text())
+        return ImportGraph({name: frozenset(targets) for name, targets in stored.items()})
+    except (OSError, ValueError, AttributeError):
+        graph = build()
+    with contextlib.suppress(OSError):
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_text(json.dumps({name: sorted(targets) for name, targets in graph.imports.items()}))
+    return graph
 
 
 def python_sources(git: Git, revision: str | None) -> dict[str, str]:

@@ -112,6 +112,7 @@ def engine_endpoint() -> Endpoint:
 
 def connect(timeout: int = 60) -> DockerClient:
     """A client of the engine that answers, or SandboxUnavailable saying what to do."""
+    _refuse_missing_socket(engine_endpoint())
     try:
         import docker
         from docker.tls import TLSConfig
@@ -136,6 +137,16 @@ def connect(timeout: int = 60) -> DockerClient:
             hint="start the engine, or point DOCKER_HOST (or a Docker context) at one that runs",
         ) from error
     return client
+
+
+def _refuse_missing_socket(endpoint: Endpoint) -> None:
+    """A unix socket that does not exist answers nothing: say so before paying for the SDK's import."""
+    host = endpoint.host or "unix:///var/run/docker.sock"
+    if host.startswith("unix://") and not Path(host.removeprefix("unix://")).exists():
+        raise SandboxUnavailable(
+            [(NAME, f"no Docker engine answers at {host} ({endpoint.source}): the socket does not exist")],
+            hint="start the engine, or point DOCKER_HOST (or a Docker context) at one that runs",
+        )
 
 
 def _context_tls(tls_config: Any, folder: str) -> Any:

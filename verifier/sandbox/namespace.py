@@ -12,6 +12,7 @@ from __future__ import annotations
 import contextlib
 import dataclasses
 import functools
+import hashlib
 import json
 import os
 import signal
@@ -137,6 +138,32 @@ def _merge(outcome: common.Outcome, status: dict[str, Any]) -> common.Outcome:
 
 @functools.lru_cache(maxsize=1)
 def _probe() -> str | None:
+    """None when the namespace sandbox works here, else why not. A success is remembered in the user's
+    cache for this boot, interpreter, user and sandbox code (a probe costs a real sandbox start); a failure
+    is probed again every time. A stale success only costs a SandboxUnavailable at the real run."""
+    marker = _probe_marker()
+    if marker is not None and marker.is_file():
+        return None
+    problem = _probe_now()
+    if problem is None and marker is not None:
+        with contextlib.suppress(OSError):
+            marker.parent.mkdir(parents=True, exist_ok=True)
+            marker.write_text("the namespace sandbox worked\n")
+    return problem
+
+
+def _probe_marker() -> Path | None:
+    try:
+        boot = Path("/proc/sys/kernel/random/boot_id").read_text().strip()
+        code = (Path(__file__).parent / "_nsinit.py").stat().st_mtime_ns
+    except OSError:
+        return None
+    key = hashlib.sha256(f"{boot}|{sys.executable}|{os.getuid()}|{code}".encode()).hexdigest()[:24]
+    cache = Path(os.environ.get("XDG_CACHE_HOME") or Path.home() / ".cache")
+    return cache / "verifier" / f"namespace-ok-{key}"
+
+
+def _probe_now() -> str | None:
     """Run one tiny command in a real namespace sandbox; None when that worked, else why not."""
     if not sys.platform.startswith("linux"):
         return f"needs Linux (this is {sys.platform}); use --sandbox docker"
