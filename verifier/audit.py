@@ -1104,6 +1104,18 @@ def run_audit(repo: str | os.PathLike[str], request: AuditRequest, now: float | 
         return _run_audit(repo, request, now)
 
 
+def _open(repo: str | os.PathLike[str]) -> Git:
+    """The repository's top level and its common git dir in one git call (a repository that is not
+    one, or has no working tree, is reported by Git.toplevel)."""
+    out = Git(repo).run(["rev-parse", "--show-toplevel", "--git-common-dir"], check=False)
+    found = out.decode("utf-8", "surrogateescape").splitlines()
+    if len(found) != 2 or not found[0]:
+        return Git(Git(repo).toplevel())
+    git = Git(found[0])
+    git._audit_cache_dir = (Path(repo) / found[1]).resolve() / "verifier" / "audit-cache"  # type: ignore[attr-defined]
+    return git
+
+
 @contextlib.contextmanager
 def _no_cycle_collection() -> Iterator[None]:
     """The audit makes tens of thousands of small objects and no reference cycles: the cycle collector,
@@ -1118,7 +1130,7 @@ def _no_cycle_collection() -> Iterator[None]:
 
 
 def _run_audit(repo: str | os.PathLike[str], request: AuditRequest, now: float | None) -> Audit:
-    git = Git(Git(repo).toplevel())
+    git = _open(repo)
     since, until = window_bounds(request.since, request.until, now)
     history = read_history(git, request.ref, since, until, weeks=request.weeks, notes_ref=request.notes_ref,
                            agent_emails=request.agent_emails, use_cache=request.use_cache)
