@@ -5,9 +5,11 @@ The history (made with ``git fast-import``): parcelkit modules edited by people 
 40% machine commits, 80% of those with a note), lines inserted and rewritten, side branches merged.
 Printed: the first audit (no cache: every patch read and replayed), the audit again (the cache in the git
 dir holds the span's commits and the replay, the policy, and the notes by their ref's tip), the audit with
-only the notes read again (as after a ``--recheck`` or a new note), and the whole command line again
-(interpreter start and JSON output included; the package is byte-compiled first, as an installed one is,
-so that a ``PYTHONDONTWRITEBYTECODE`` environment does not measure the compiler).
+only the notes read again (as after a ``--recheck`` or a new note), the audit of a span not seen before
+with its patches cached (as next week's audit: ``git log`` and the replay run, no ``diff-tree``), and the
+whole command line again (interpreter start and JSON output included; the package is byte-compiled
+first, as an installed one is, so that a ``PYTHONDONTWRITEBYTECODE`` environment does not measure the
+compiler).
 
 Run: python benchmarks/bench_audit.py [--commits N]
 """
@@ -132,17 +134,24 @@ def main() -> int:
                 cached.unlink()
             run_audit(repo, request)
 
+        def new_span() -> None:
+            for cached in (repo / ".git" / "verifier" / "audit-cache").glob("span-*"):
+                cached.unlink()
+            run_audit(repo, request)
+
         subprocess.run([sys.executable, "-m", "compileall", "-q", str(ROOT / "verifier")], check=True)
         baseline()  # warm git's own caches (pack files in the page cache) before measuring anything
         first = _seconds(lambda: run_audit(repo, request))
         audit = run_audit(repo, request)
-        git_times, audit_times, notes_times, cli_times = [], [], [], []
+        git_times, audit_times, notes_times, span_times, cli_times = [], [], [], [], []
         for _ in range(args.rounds):
             git_times.append(_seconds(baseline))
             audit_times.append(_seconds(lambda: run_audit(repo, request)))
             notes_times.append(_seconds(notes_again))
+            span_times.append(_seconds(new_span))
             cli_times.append(_seconds(command_line))
-        git_log, warm, notes, whole = (statistics.median(t) for t in (git_times, audit_times, notes_times, cli_times))
+        git_log, warm, notes, span, whole = (
+            statistics.median(t) for t in (git_times, audit_times, notes_times, span_times, cli_times))
         w = audit.window
         print(f"history: {w.commits} commits, {w.machine_commits} machine-written, {w.machine_lines_added} machine "
               f"lines ({w.machine_lines_alive} alive), {w.unverified} unverified, {w.blocked_merged} blocked-merged")
@@ -150,6 +159,7 @@ def main() -> int:
         print(f"first audit, no cache:           {first * 1000:.0f} ms  ratio {first / git_log:.2f}x")
         print(f"audit again (cache):             {warm * 1000:.0f} ms  ratio {warm / git_log:.2f}x  (bar: 2x)")
         print(f"audit, notes read again:         {notes * 1000:.0f} ms  ratio {notes / git_log:.2f}x")
+        print(f"new span, patches cached:        {span * 1000:.0f} ms  ratio {span / git_log:.2f}x")
         print(f"command line again (cache):      {whole * 1000:.0f} ms  ratio {whole / git_log:.2f}x")
     return 0
 

@@ -1,9 +1,17 @@
 """The weekly audit: what the assistants committed in a window, what the gate verified, what got through.
 
 Two halves. :func:`read_history` is the edge: a few bulk git calls (one ``git log`` of the window and
-the trend weeks before it, one ``git diff-tree --stdin`` for the patches not yet cached, the notes in
-one ``cat-file --batch``, the trusted policy at the window's end). :func:`compute_audit` is plain data
-in, plain data out.
+the trend weeks before it with their notes, ``git diff-tree --stdin`` for the patches not yet cached,
+the trusted policy at the window's end). :func:`compute_audit` is plain data in, plain data out.
+
+The cache (``<git common dir>/verifier/audit-cache``, safe to delete; marshal files of plain lists,
+each checked by the sha-1 of its body) holds only what a sha fixes: patches by commit; a span's commits
+and the replay's results by window-end revision, span and agent identities; the policy's waivers by
+window-end revision, day and the shipped default (not with an organisation policy); the span's notes
+by the notes ref's tip commit. A second audit of the same window therefore runs no ``git log`` and
+reads no patch: a few ``rev-parse`` calls, and the notes again (``git notes list`` and one
+``cat-file --batch``) only when their ref has moved. Every key also holds a hash of this module and the
+trailer parser, so a changed verifier computes afresh.
 
 Survival is found by replaying the window's patches (``-U0`` hunks) commit by commit in topological
 order, each machine-written line carrying its own id: the lines alive in the window-end revision are
@@ -24,6 +32,7 @@ from __future__ import annotations
 import bisect
 import codecs
 import contextlib
+import functools
 import gc
 import hashlib
 import json
@@ -59,7 +68,6 @@ _REVERT = re.compile(r"This reverts commit ([0-9a-f]{7,40})")
 _HUNK = re.compile(r"@@ -(\d+)(?:,(\d+))? \+(\d+)(?:,(\d+))? @@")
 _SHA_LINE = re.compile(r"[0-9a-f]{40}")
 _CACHE_VERSION = 2
-_CACHE_NAME = f"patches-v{_CACHE_VERSION}.bin"
 _LINES_KEPT = 8
 _KEYS_PER_WORKER = 500  # fewer patches than this per core: one diff-tree is quicker than starting more
 _HEADER_FIELDS = ("rename from ", "rename to ", "new file mode ", "deleted file mode ", "--- ", "+++ ")
@@ -322,7 +330,7 @@ def read_history(
     end = _window_end(git, ref_name, until)
     waivers, identities, problems = _policy_facts(git, end, until, use_cache)
     emails = tuple(sorted({e.lower() for e in (*agent_emails, *identities)}))
-    key = hashlib.sha1(f"{_CACHE_VERSION}\n{end}\n{span_since}\n{until}\n{chr(10).join(emails)}".encode()).hexdigest()
+    key = hashlib.sha1(f"{_code_stamp()}\n{end}\n{span_since}\n{until}\n{chr(10).join(emails)}".encode()).hexdigest()
     cached = _load_span(git, key) if use_cache and end is not None else None
     if cached is not None:
         commits, facts, outside = cached
@@ -378,7 +386,7 @@ def _read_notes(git: Git, notes_ref: str, shas: Sequence[str], use_cache: bool) 
     notes_tip = git.run(["rev-parse", "-q", "--verify", f"{full}^{{commit}}"], check=False).decode().strip()
     if not notes_tip:
         return {}
-    span = hashlib.sha1("\n".join(shas).encode()).hexdigest()
+    span = hashlib.sha1("\n".join([_code_stamp(), *shas]).encode()).hexdigest()
     cache_file = _cache_dir(git) / f"notes-{notes_tip}-{span}.bin"
     cached = _load_marshal(cache_file) if use_cache else None
     if isinstance(cached, dict):
@@ -428,7 +436,7 @@ def _log_records(git: Git, end: str, since: int, until: int, notes_ref: str) -> 
 
 def _patches(git: Git, records: Sequence[list[str]], use_cache: bool) -> dict[str, list[Any]]:
     """The records' patches by ``diff-tree`` key: from the cache, the rest in one ``diff-tree`` call."""
-    cache_file = _cache_dir(git) / _CACHE_NAME
+    cache_file = _cache_dir(git) / f"patches-{_code_stamp()[:16]}.bin"
     loaded = _load_marshal(cache_file) if use_cache else None
     cache = loaded if isinstance(loaded, dict) else {}
     wanted = [key for fields in records for key in _patch_keys(fields[0], fields[1]) if key not in cache]
@@ -436,6 +444,7 @@ def _patches(git: Git, records: Sequence[list[str]], use_cache: bool) -> dict[st
         cache.update(_diff_trees(git, wanted))
         if use_cache:
             _save_marshal(cache_file, cache)
+            _keep_newest(cache_file.parent, "patches-*.bin")
     return cache
 
 
@@ -584,6 +593,18 @@ def _cache_dir(git: Git) -> Path:
     return known
 
 
+@functools.cache
+def _code_stamp() -> str:
+    """What the cached facts were computed by: this module and the trailer parser (an upgraded verifier
+    computes them afresh)."""
+    here = Path(__file__).parent
+    code = hashlib.sha1(str(_CACHE_VERSION).encode())
+    for name in ("audit.py", "trailers.py"):
+        with contextlib.suppress(OSError):
+            code.update((here / name).read_bytes())
+    return code.hexdigest()
+
+
 def _keep_newest(folder: Path, pattern: str) -> None:
     """Let the cache hold only the newest few files of one kind."""
     with contextlib.suppress(OSError):
@@ -671,7 +692,7 @@ def _policy_cache_file(git: Git, end: str | None, day: date) -> Path | None:
         sources = [code.read_bytes(), shipped.read_bytes()]
     except OSError:
         return None
-    key = hashlib.sha1(b"\n".join([f"{_CACHE_VERSION}\n{end}\n{day.isoformat()}".encode(), *sources]))
+    key = hashlib.sha1(b"\n".join([f"{_code_stamp()}\n{end}\n{day.isoformat()}".encode(), *sources]))
     return _cache_dir(git) / f"policy-{key.hexdigest()}.bin"
 
 
