@@ -79,8 +79,7 @@ def main() -> None:
               f"(and {sum(1 for p in context.base_sources if p.endswith('.py'))} base versions)")
 
         def rules() -> None:
-            astnames.parse_or_error.cache_clear()
-            astnames.module_index.cache_clear()
+            astnames.clear_caches()
             apply_rules("static", context)
 
         def parse() -> None:

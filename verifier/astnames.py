@@ -13,6 +13,7 @@ import ast
 import builtins
 import functools
 import gc
+import symtable
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass, field
 
@@ -21,10 +22,17 @@ LOCAL = "<local>"  # the prefix of names this module binds itself (def, class, a
 _BUILTIN_NAMES = frozenset(dir(builtins))
 
 
-@functools.lru_cache(maxsize=2048)
+_CACHE_SIZE = 2048
+
+
+@functools.lru_cache(maxsize=_CACHE_SIZE)
 def parse_or_error(source: str, filename: str = "<unknown>") -> ast.Module | SyntaxError | ValueError:
     """The module's AST, or the error that stopped the parse; cached so that every static rule shares one
     parse per file (the trees are shared: do not mutate them)."""
+    return _parse_or_error(source, filename)
+
+
+def _parse_or_error(source: str, filename: str) -> ast.Module | SyntaxError | ValueError:
     paused = gc.isenabled()
     gc.disable()  # the cached trees are many objects and no cycles: a collection here would only rescan them
     try:
@@ -36,34 +44,69 @@ def parse_or_error(source: str, filename: str = "<unknown>") -> ast.Module | Syn
             gc.enable()
 
 
+def syntax_error(source: str, filename: str = "<unknown>") -> SyntaxError | ValueError | None:
+    """The error that stops ``ast.parse`` of ``source``, or None when it parses.
+
+    The symbol table module runs Python's own parser without building the tree as Python objects,
+    which is most of a parse's cost when no rule needs the tree. It also rejects some code the parser
+    accepts (a repeated argument name, ``nonlocal`` at module level), so when it fails, the real parse
+    (shared with the other rules) decides."""
+    try:
+        symtable.symtable(source, filename, "exec")
+    except Exception:  # whatever the check raised, the parse below gives the answer
+        result = parse_or_error(source, filename)
+        return None if isinstance(result, ast.Module) else result
+    return None
+
+
 def parse(source: str, filename: str = "<unknown>") -> ast.Module | None:
     """The module's AST, or None when it does not parse (``code.syntax`` reports that)."""
     result = parse_or_error(source, filename)
     return result if isinstance(result, ast.Module) else None
 
 
-@dataclass
 class ModuleIndex:
-    """One pass over a module: its names, and its calls and assignments in source order."""
+    """A module's tree, its names and assignments (from its statements alone), and, read on first use
+    (only ``calls.banned`` needs them, and only for a file that may hold a banned call), its calls in
+    source order."""
 
-    tree: ast.Module
-    names: Names
-    calls: list[ast.Call]
-    assignments: list[ast.Assign | ast.AnnAssign]
+    def __init__(self, tree: ast.Module) -> None:
+        self.tree = tree
+        self.assignments: list[ast.Assign | ast.AnnAssign] = []
+        self.names = _collect_names(_statements(tree), self.assignments)
+        self.assignments.sort(key=lambda node: (node.lineno, node.col_offset))
+
+    @functools.cached_property
+    def calls(self) -> list[ast.Call]:
+        found = [node for node in _walk(self.tree) if isinstance(node, ast.Call)]
+        found.sort(key=lambda node: (node.lineno, node.col_offset))  # stable: ties keep the walk's order
+        return found
 
 
-@functools.lru_cache(maxsize=2048)
-def module_index(source: str, filename: str = "<unknown>") -> ModuleIndex | None:
-    """The module's :class:`ModuleIndex` (None when it does not parse), built in a single walk and cached."""
-    tree = parse(source, filename)
-    if tree is None:
-        return None
-    calls: list[ast.Call] = []
-    assignments: list[ast.Assign | ast.AnnAssign] = []
-    names = _collect_names(_walk(tree), calls, assignments)
-    calls.sort(key=lambda node: (node.lineno, node.col_offset))
-    assignments.sort(key=lambda node: (node.lineno, node.col_offset))
-    return ModuleIndex(tree, names, calls, assignments)
+_indexes: dict[tuple[str, str], ModuleIndex | None] = {}
+
+
+def module_index(source: str, filename: str = "<unknown>", keep: bool = True) -> ModuleIndex | None:
+    """The module's :class:`ModuleIndex` (None when it does not parse), cached for the other rules.
+
+    ``keep=False`` for a module no other rule is likely to read: an index kept already is used, else
+    one is built and not kept (many kept trees cost every later garbage collection a scan of them)."""
+    key = (filename, source)
+    if key in _indexes:
+        return _indexes[key]
+    parsed = parse_or_error(source, filename) if keep else _parse_or_error(source, filename)
+    index = ModuleIndex(parsed) if isinstance(parsed, ast.Module) else None
+    if keep:
+        if len(_indexes) >= _CACHE_SIZE:
+            del _indexes[next(iter(_indexes))]  # the oldest
+        _indexes[key] = index
+    return index
+
+
+def clear_caches() -> None:
+    """Forget every kept parse and index (the benchmarks start each run from nothing)."""
+    parse_or_error.cache_clear()
+    _indexes.clear()
 
 
 def _walk(tree: ast.AST) -> Iterator[ast.AST]:
@@ -81,6 +124,26 @@ def _walk(tree: ast.AST) -> Iterator[ast.AST]:
                 stack.extend(item for item in value if isinstance(item, node_type))
 
 
+_BLOCK_ITEMS = (ast.stmt, ast.excepthandler, ast.match_case)
+
+
+def _statements(tree: ast.AST) -> Iterator[ast.AST]:
+    """The statements under ``tree`` (with the ``except`` and ``case`` clauses that hold some), in the
+    order :func:`_walk` meets them. Imports, definitions and assignments are statements, and no
+    expression holds a statement (a lambda's body is an expression), so skipping the expressions loses
+    none of them; it is most of the tree."""
+    stack = [tree]
+    block_items = _BLOCK_ITEMS
+    while stack:
+        node = stack.pop()
+        yield node
+        for name in node._fields:
+            value = getattr(node, name, None)
+            # a list field holds one kind of node: statements, clauses, or something else entirely
+            if isinstance(value, list) and value and isinstance(value[0], block_items):
+                stack.extend(value)
+
+
 @dataclass
 class Names:
     """The bindings of one module that give names a dotted meaning."""
@@ -95,17 +158,13 @@ class Names:
 
 def module_names(tree: ast.Module) -> Names:
     """Collect every import and simple alias assignment of the module, at any depth."""
-    return _collect_names(_walk(tree), [], [])
+    return _collect_names(_statements(tree), [])
 
 
-def _collect_names(nodes: Iterable[ast.AST], calls: list[ast.Call],
-                   assigns: list[ast.Assign | ast.AnnAssign]) -> Names:
+def _collect_names(nodes: Iterable[ast.AST], assigns: list[ast.Assign | ast.AnnAssign]) -> Names:
     names = Names()
     assignments: list[tuple[str, ast.expr]] = []
     for node in nodes:
-        if isinstance(node, ast.Call):
-            calls.append(node)
-            continue
         if isinstance(node, ast.AnnAssign) and node.value is not None:
             assigns.append(node)
         if isinstance(node, ast.Import):

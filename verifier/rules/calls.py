@@ -255,13 +255,48 @@ def banned_calls(context: RuleContext) -> Iterator[Finding]:
         yield Finding(RULE_ID, "error", problem + " (see docs/rules.md, calls.banned entries)")
     calls = _EntryTable([e for e in entries if e.kind == "call"])
     assigns = _EntryTable([e for e in entries if e.kind == "assign"])
+    needs = list(dict.fromkeys(required_text(e) for e in entries))
     for path, lines in context.provenance.machine_lines.items():
         source = context.head_sources.get(path)
-        if not path.endswith(".py") or source is None:
+        if not path.endswith(".py") or source is None or not lines or not _may_match(source, needs):
             continue
         module = module_index(source, path)
         if module is not None and lines:
             yield from _check_module(module, path, frozenset(lines), calls, assigns)
+
+
+def required_text(entry: Entry) -> tuple[tuple[str, ...], ...]:
+    """Texts a module's source must hold for ``entry`` to match anything in it: all of the groups, one
+    text of each group (empty: no such text is known, the module is always checked).
+
+    A dotted name the analysis gives a call or target is made of identifiers written in the module
+    (imports, assignments, attribute names; see :mod:`verifier.astnames`), so each part of the entry's
+    target without wildcards must appear in the text. A keyword the entry's conditions need is written
+    in the call, or hidden in ``**kwargs`` (unless the test holds for a missing argument). This holds
+    only where identifiers are written as they are read, which :func:`_may_match` checks."""
+    # a part between dots (or the ends) matches one whole part of the name; a '[...]' set may hold dots
+    parts = [] if "[" in entry.target else entry.target.split(".")
+    groups = [(part,) for part in parts if part.isidentifier()]
+    for condition in entry.when:
+        if condition.keyword is not None and condition.arg is None and condition.test not in ("missing", "not-in"):
+            groups.append((condition.keyword, "**"))
+    return tuple(sorted(groups, key=lambda group: -min(map(len, group))))  # longer texts are rarer: first
+
+
+def _may_match(source: str, needs: Sequence[tuple[tuple[str, ...], ...]]) -> bool:
+    """False only when no entry can match in ``source`` (by the texts of :func:`required_text`).
+
+    Outside ASCII the parser normalises identifiers (NFKC), so a name may be spelled otherwise in the
+    text; ``getattr(obj, "na" "me")`` builds an attribute from a string; both are always checked."""
+    if not source.isascii() or "getattr" in source:
+        return True
+    for groups in needs:  # plain loops: this runs for every entry and file, and most fail on the first text
+        for group in groups:
+            if not any(text in source for text in group) if len(group) > 1 else group[0] not in source:
+                break
+        else:
+            return True
+    return False
 
 
 class _EntryTable:

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
-from verifier.astnames import parse_or_error
+from verifier.astnames import syntax_error
 from verifier.models import Finding
 from verifier.rules import RuleContext, rule
 
@@ -17,7 +17,7 @@ def syntax_errors(context: RuleContext) -> Iterator[Finding]:
         source = context.head_sources.get(path)
         if source is None or not path.endswith(".py"):
             continue
-        parsed = parse_or_error(source, path)  # the parse the other static rules share
+        parsed = syntax_error(source, path)
         if isinstance(parsed, SyntaxError):
             yield Finding("code.syntax", "block", f"syntax error: {parsed.msg}", path=path, line=parsed.lineno)
         elif isinstance(parsed, ValueError):  # e.g. NUL bytes

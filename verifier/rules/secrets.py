@@ -33,6 +33,19 @@ _PLACEHOLDERS = re.compile(r"(?i)example|dummy|changeme|placeholder|xxxx|your[_-
 # Every shape and name above contains one of these; a line without any is skipped cheaply.
 _PREFILTER = re.compile(r"(?i)-----BEGIN|AKIA|ASIA|gh[pousr]_|github_pat_|xox|eyJ|key|token|secret|passw|pwd"
                         r"|credential|auth")
+# The same alternatives as plain lower-case texts: for ASCII text, ``text.lower()`` holding one of them
+# is what the case-insensitive search finds, at a fraction of its cost (a regex alternation ignoring case
+# tries every branch at every character).
+_PREFILTER_TEXTS = ("-----begin", "akia", "asia", "ghp_", "gho_", "ghu_", "ghs_", "ghr_", "github_pat_", "xox",
+                    "eyj", "key", "token", "secret", "passw", "pwd", "credential", "auth")
+
+
+def might_hold_secret(text: str) -> bool:
+    """False when ``text`` cannot hold anything :func:`find_secrets` reports (the pre-filter)."""
+    if not text.isascii():  # case folding outside ASCII is the regex's business (e.g. the Kelvin sign is k)
+        return _PREFILTER.search(text) is not None
+    lowered = text.lower()
+    return any(part in lowered for part in _PREFILTER_TEXTS)
 
 
 def entropy(text: str) -> float:
@@ -46,7 +59,7 @@ def find_secrets(
 ) -> list[tuple[str, str]]:
     """(kind, secret) for each credential-like literal in ``line``."""
     found: list[tuple[str, str]] = []
-    if not _PREFILTER.search(line):
+    if not might_hold_secret(line):
         return found
     for kind, shape in SHAPES:
         for match in shape.finditer(line):
@@ -75,7 +88,7 @@ def literal_secrets(context: RuleContext) -> Iterator[Finding]:
     min_entropy = option(context, RULE_ID, "min_entropy")
     for path, lines in context.provenance.machine_lines.items():
         source = context.head_sources.get(path)
-        if source is None or not _PREFILTER.search(source):
+        if source is None or not might_hold_secret(source):
             continue
         rows = source.split("\n")
         for number in lines:
