@@ -171,6 +171,9 @@ def test_cache_sees_a_new_note_and_survives_damage(tmp_path: Path):
         damaged.write_bytes(damaged.read_bytes()[:-3] + b"xyz")  # the checksum no longer matches
     fresh = run_audit(repo.path, AuditRequest(**{**window.__dict__, "use_cache": False}))
     assert run_audit(repo.path, window) == fresh and fresh.window.verified == 1
+    short = AuditRequest(**{**window.__dict__, "notes_ref": "verifier"})  # a short name, as git log --notes takes
+    by_git = run_audit(repo.path, AuditRequest(**{**short.__dict__, "use_cache": False}))  # git log expands it
+    assert run_audit(repo.path, short) == by_git and by_git.window.verified == 1  # the cached span: we expand it
 
 
 def test_policy_waivers_are_read_again_when_the_policy_changes(tmp_path: Path):

@@ -381,8 +381,8 @@ def _load_span(git: Git, key: str) -> tuple[tuple[LogCommit, ...], dict[str, Com
 def _read_notes(git: Git, notes_ref: str, shas: Sequence[str], use_cache: bool) -> dict[str, Mapping[str, Any]]:
     """The span's notes, in bulk: ``git notes list`` and one ``cat-file --batch`` of their blobs, or the
     cache of what this same notes ref tip (a commit: its notes never change) gave for this span."""
-    full = notes_ref if notes_ref.startswith("refs/") else f"refs/{notes_ref}" if notes_ref.startswith(
-        "notes/") else f"refs/notes/{notes_ref}"  # how git expands --notes=<ref>
+    full = notes_ref if notes_ref.startswith("refs/notes/") else f"refs/{notes_ref}" if notes_ref.startswith(
+        "notes/") else f"refs/notes/{notes_ref}"  # as git expands --notes=<ref> (from memory of notes.c)
     notes_tip = git.run(["rev-parse", "-q", "--verify", f"{full}^{{commit}}"], check=False).decode().strip()
     if not notes_tip:
         return {}
