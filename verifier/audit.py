@@ -490,7 +490,9 @@ def _diff_tree(git: Git, keys: list[str]) -> dict[str, list[Any]]:
                   input="".join(f"{key}\n" for key in keys).encode())
     sections: list[list[str]] = []
     for line in out.decode("utf-8", "surrogateescape").split("\n"):
-        if _SHA_LINE.fullmatch(line):  # never a patch line: those start with a header word, @, +, - or space
+        # a sha line starts a commit's patch; it is never a patch line (those start with a header word, @,
+        # +, - or space); the length test spares the regex on almost every line
+        if len(line) == 40 and _SHA_LINE.fullmatch(line):
             sections.append([])
         elif sections:
             sections[-1].append(line)
