@@ -1123,7 +1123,7 @@ def run_audit(repo: str | os.PathLike[str], request: AuditRequest, now: float | 
     """Audit the repository at ``repo``."""
     if request.weeks < 0 or request.churn_days < 0 or request.expiry_days < 0:
         raise UsageError("--weeks, --churn-days and --expiry-days must not be negative")
-    with _no_cycle_collection():
+    with no_cycle_collection():
         return _run_audit(repo, request, now)
 
 
@@ -1140,7 +1140,7 @@ def _open(repo: str | os.PathLike[str]) -> Git:
 
 
 @contextlib.contextmanager
-def _no_cycle_collection() -> Iterator[None]:
+def no_cycle_collection() -> Iterator[None]:
     """The audit makes tens of thousands of small objects and no reference cycles: the cycle collector,
     which runs after every few hundred allocations, would only walk them again and again."""
     enabled = gc.isenabled()

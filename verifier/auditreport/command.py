@@ -6,6 +6,10 @@ import argparse
 import sys
 from dataclasses import replace
 from pathlib import Path
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from verifier.audit import Audit
 
 FORMATS = ("markdown", "json", "csv", "html")
 
@@ -34,8 +38,7 @@ def add_audit_command(commands: argparse._SubParsersAction) -> None:  # type: ig
 
 
 def run_audit_command(args: argparse.Namespace) -> int:
-    from verifier.audit import AuditRequest, recheck, run_audit
-    from verifier.auditreport import SUFFIX, render
+    from verifier.audit import AuditRequest, no_cycle_collection, recheck, run_audit
 
     request = AuditRequest(
         since=args.since, until=args.until, ref=args.ref, weeks=args.weeks, churn_days=args.churn_days,
@@ -50,18 +53,25 @@ def run_audit_command(args: argparse.Namespace) -> int:
         audit = replace(audit, problems=(*audit.problems, *(f"recheck: {p}" for p in problems)))
     chosen = args.format or ["markdown"]
     formats = list(FORMATS) if "all" in chosen else list(dict.fromkeys(chosen))
-    if args.output is None:
+    with no_cycle_collection():  # a report is built of many small objects, none in a cycle
+        _write_reports(audit, formats, args.output)
+    return 0
+
+
+def _write_reports(audit: Audit, formats: list[str], output: Path | None) -> None:
+    from verifier.auditreport import SUFFIX, render
+
+    if output is None:
         for fmt in formats:
             print(render(audit, fmt), end="")
-        return 0
-    targets = [(formats[0], args.output)] if len(formats) == 1 else [
-        (fmt, args.output / f"audit.{SUFFIX[fmt]}") for fmt in formats
+        return
+    targets = [(formats[0], output)] if len(formats) == 1 else [
+        (fmt, output / f"audit.{SUFFIX[fmt]}") for fmt in formats
     ]
     for fmt, target in targets:
         target.parent.mkdir(parents=True, exist_ok=True)
         target.write_text(render(audit, fmt), encoding="utf-8")
         print(f"verifier: wrote {target}", file=sys.stderr)
-    return 0
 
 
 def _notes_ref(args: argparse.Namespace) -> str:
