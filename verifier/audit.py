@@ -444,7 +444,7 @@ def _patches(git: Git, records: Sequence[list[str]], use_cache: bool) -> dict[st
         cache.update(_diff_trees(git, wanted))
         if use_cache:
             _save_marshal(cache_file, cache)
-            _keep_newest(cache_file.parent, "patches-*.bin")
+            _keep_newest(cache_file.parent, "patches-*.bin", count=2)  # older ones were made by other code
     return cache
 
 
@@ -607,11 +607,12 @@ def _code_stamp() -> str:
     return code.hexdigest()
 
 
-def _keep_newest(folder: Path, pattern: str) -> None:
-    """Let the cache hold only the newest few files of one kind."""
+def _keep_newest(folder: Path, pattern: str, count: int = _LINES_KEPT) -> None:
+    """Let the cache hold only the newest ``count`` files of one kind (and none of the first cache's
+    JSON files, which nothing reads any more)."""
     with contextlib.suppress(OSError):
         kept = sorted(folder.glob(pattern), key=lambda p: p.stat().st_mtime, reverse=True)
-        for old in kept[_LINES_KEPT:]:
+        for old in [*kept[count:], *folder.glob("lines-*.json"), *folder.glob("patches-v1.json")]:
             old.unlink(missing_ok=True)
 
 
