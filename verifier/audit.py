@@ -623,10 +623,13 @@ def _load_marshal(path: Path) -> Any:
         raw = path.read_bytes()
     except OSError:
         return None
-    if len(raw) < 20 or hashlib.sha1(raw[20:]).digest() != raw[:20]:
+    body = memoryview(raw)[20:]
+    if len(raw) < 20 or hashlib.sha1(body).digest() != raw[:20]:
         return None
+    with contextlib.suppress(OSError):  # a file in use stays among the newest kept
+        os.utime(path)
     try:
-        return marshal.loads(raw[20:])
+        return marshal.loads(body)
     except (EOFError, ValueError, TypeError):
         return None
 
