@@ -853,7 +853,7 @@ class _Replay:
             removed: list[int] = []
             lines = _apply(old, patch.hunks, fresh, removed)
             self.lines.bury(removed, position)
-            if max(lines, default=0) > 0:
+            if any(lines):  # a tracked line left (ids are positive; only a merge's views hold PLACEHOLDER)
                 state[patch.new_path] = lines
         return state
 
