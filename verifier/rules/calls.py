@@ -255,10 +255,10 @@ def banned_calls(context: RuleContext) -> Iterator[Finding]:
         yield Finding(RULE_ID, "error", problem + " (see docs/rules.md, calls.banned entries)")
     calls = _EntryTable([e for e in entries if e.kind == "call"])
     assigns = _EntryTable([e for e in entries if e.kind == "assign"])
-    needs = list(dict.fromkeys(required_text(e) for e in entries))
+    needs = _Needs([required_text(e) for e in entries])
     for path, lines in context.provenance.machine_lines.items():
         source = context.head_sources.get(path)
-        if not path.endswith(".py") or source is None or not lines or not _may_match(source, needs):
+        if not path.endswith(".py") or source is None or not lines or not needs.may_match(source):
             continue
         module = module_index(source, path)
         if module is not None and lines:
@@ -273,7 +273,7 @@ def required_text(entry: Entry) -> tuple[tuple[str, ...], ...]:
     (imports, assignments, attribute names; see :mod:`verifier.astnames`), so each part of the entry's
     target without wildcards must appear in the text. A keyword the entry's conditions need is written
     in the call, or hidden in ``**kwargs`` (unless the test holds for a missing argument). This holds
-    only where identifiers are written as they are read, which :func:`_may_match` checks."""
+    only where identifiers are written as they are read, which :meth:`_Needs.may_match` checks."""
     # a part between dots (or the ends) matches one whole part of the name; a '[...]' set may hold dots
     parts = [] if "[" in entry.target else entry.target.split(".")
     groups = [(part,) for part in parts if part.isidentifier()]
@@ -283,20 +283,32 @@ def required_text(entry: Entry) -> tuple[tuple[str, ...], ...]:
     return tuple(sorted(groups, key=lambda group: -min(map(len, group))))  # longer texts are rarer: first
 
 
-def _may_match(source: str, needs: Sequence[tuple[tuple[str, ...], ...]]) -> bool:
-    """False only when no entry can match in ``source`` (by the texts of :func:`required_text`).
+class _Needs:
+    """The entries' :func:`required_text`, for a quick look at each source: first which of all the texts
+    it holds (one pass over a few dozen texts), then only the entries whose first text is among them."""
 
-    Outside ASCII the parser normalises identifiers (NFKC), so a name may be spelled otherwise in the
-    text; ``getattr(obj, "na" "me")`` builds an attribute from a string; both are always checked."""
-    if not source.isascii() or "getattr" in source:
-        return True
-    for groups in needs:  # plain loops: this runs for every entry and file, and most fail on the first text
-        for group in groups:
-            if not any(text in source for text in group) if len(group) > 1 else group[0] not in source:
-                break
-        else:
+    def __init__(self, needs: Sequence[tuple[tuple[str, ...], ...]]) -> None:
+        unique = list(dict.fromkeys(needs))
+        self.always = any(not groups for groups in unique)
+        self.texts = tuple(dict.fromkeys(text for groups in unique for group in groups for text in group))
+        self.by_first: dict[str, list[tuple[tuple[str, ...], ...]]] = {}
+        for groups in unique:
+            for text in groups[0] if groups else ():
+                self.by_first.setdefault(text, []).append(groups)
+
+    def may_match(self, source: str) -> bool:
+        """False only when no entry can match in ``source``.
+
+        Outside ASCII the parser normalises identifiers (NFKC), so a name may be spelled otherwise in
+        the text; ``getattr(obj, "na" "me")`` builds an attribute from a string; both are always checked."""
+        if self.always or not source.isascii() or "getattr" in source:
             return True
-    return False
+        present = {text for text in self.texts if text in source}
+        for first in present.intersection(self.by_first):
+            for groups in self.by_first[first]:
+                if all(not present.isdisjoint(group) for group in groups[1:]):
+                    return True
+        return False
 
 
 class _EntryTable:

@@ -52,19 +52,35 @@ def fingerprint(node: object, mask_constants: bool = False) -> str:
     return repr(node)
 
 
-def _walk_breadth_first(node: ast.AST) -> Iterator[ast.AST]:
-    """``ast.walk(node)``, the same nodes in the same order, in a cheaper loop."""
+# Fields that never hold a node that can hold an assertion or a call: names, flags, operators, contexts.
+_LEAF_FIELDS = frozenset({"ctx", "id", "attr", "arg", "name", "names", "asname", "module", "level", "kind",
+                          "type_comment", "op", "ops", "is_async", "conversion", "tag"})
+
+
+@functools.cache
+def _branch_fields(node_type: type) -> tuple[str, ...]:
+    if issubclass(node_type, ast.Constant):
+        return ()  # its value is data, never a node
+    return tuple(name for name in node_type._fields if name not in _LEAF_FIELDS)  # type: ignore[attr-defined]
+
+
+def _checks_in(node: ast.AST) -> list[ast.AST]:
+    """The assertions and calls of ``ast.walk(node)``, in the same order, in a cheaper loop that skips
+    the fields that can hold neither."""
+    found: list[ast.AST] = []
     queue = deque([node])
-    node_type = ast.AST
+    node_type, wanted = ast.AST, (ast.Assert, ast.Call)
     while queue:
         node = queue.popleft()
-        yield node
-        for name in node._fields:
+        if isinstance(node, wanted):
+            found.append(node)
+        for name in _branch_fields(type(node)):
             value = getattr(node, name, None)
             if isinstance(value, node_type):
                 queue.append(value)
             elif isinstance(value, list):
                 queue.extend([item for item in value if isinstance(item, node_type)])
+    return found
 
 
 @dataclass
@@ -146,7 +162,7 @@ def load(function: TestFunction, names: Names) -> TestFunction:
     for decorator in node.decorator_list:
         if isinstance(decorator, ast.Call) and "pytest.mark.parametrize" in _names_of(decorator, names):
             _read_parametrize(decorator, function)
-    for child in _walk_breadth_first(node):
+    for child in _checks_in(node):
         if isinstance(child, ast.Assert):
             function.asserts.append(child)
         elif isinstance(child, ast.Call):
@@ -368,14 +384,19 @@ def _is_trivial(node: ast.AST) -> bool:
         if isinstance(test, ast.Constant):
             return bool(test.value)
         return (isinstance(test, ast.Compare) and len(test.ops) == 1 and isinstance(test.ops[0], _SAME_VALUE_OPS)
-                and fingerprint(test.left) == fingerprint(test.comparators[0]))
+                and _same_shape(test.left, test.comparators[0]))
     if isinstance(node, ast.Call) and isinstance(node.func, ast.Attribute):
         args = node.args
         if node.func.attr == "assertTrue" and args and isinstance(args[0], ast.Constant):
             return bool(args[0].value)
         if node.func.attr == "assertEqual" and len(args) >= 2:
-            return fingerprint(args[0]) == fingerprint(args[1])
+            return _same_shape(args[0], args[1])
     return False
+
+
+def _same_shape(one: ast.AST, other: ast.AST) -> bool:
+    """``fingerprint(one) == fingerprint(other)``; nodes of different types never have the same one."""
+    return type(one) is type(other) and fingerprint(one) == fingerprint(other)
 
 
 def _expected(call: ast.Call) -> ast.expr | None:
