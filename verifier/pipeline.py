@@ -85,10 +85,24 @@ def _changed_sources(git: Git, change: Change) -> tuple[dict[str, str], dict[str
 
 
 def _base_reader(git: Git, change: Change) -> Callable[[str], str | None]:
-    """Read a file at the base revision on demand (for rules that consult files the change left alone)."""
+    """Read a file at the base revision on demand (for rules that consult files the change left alone).
+    The first read also fetches the coverage configuration files ``config.harness`` reads, in the same
+    ``git cat-file --batch`` (one git process instead of one per file); every answer is kept."""
+    known: dict[str, str | None] = {}
+
     def read(path: str) -> str | None:
-        data = git.show_file(change.base, path) if change.base else None
-        return None if data is None else data.decode("utf-8", "replace")
+        if not change.base:
+            return None
+        if path not in known:
+            # imported here, by then the rules are registered (in their order: it is the findings' order)
+            from verifier.rules.harness import COVERAGE_CONFIGS
+
+            wanted = list(dict.fromkeys([path, *(p for p in COVERAGE_CONFIGS if p not in known)]))
+            blobs = git.read_blobs([f"{change.base}:{p}" for p in wanted])
+            for name in wanted:
+                data = blobs.get(f"{change.base}:{name}")
+                known[name] = None if data is None else data.decode("utf-8", "replace")
+        return known[path]
 
     return read
 
