@@ -8,7 +8,7 @@ from typing import Any
 
 from verifier.models import FileChange, Finding
 from verifier.rules import RuleContext, rule
-from verifier.rules.machine import base_text, head_text, machine_changed, machine_lines, matches, option
+from verifier.rules.machine import base_text, glob_matcher, head_text, machine_changed, machine_lines, option
 from verifier.tomlfile import load_toml
 
 RULE_ID = "deps.added"
@@ -87,11 +87,11 @@ def added_dependencies(context: RuleContext) -> Iterator[Finding]:
     ([project] dependencies, optional dependencies, dependency groups, Poetry's tables) are listed, one
     finding each. Check that the project exists, is the one meant, and is worth depending on; then have
     a human add it."""
-    globs = option(context, RULE_ID, "requirement_files")
+    is_requirements = glob_matcher(tuple(option(context, RULE_ID, "requirement_files")))
     for file in context.change.files:
         if file.status == "deleted":
             continue
-        if matches(file.path, globs):
+        if is_requirements(file.path):
             yield from _new_requirements(context, file)
         elif file.path.rsplit("/", 1)[-1] == "pyproject.toml":
             yield from _new_pyproject_dependencies(context, file)

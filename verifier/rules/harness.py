@@ -10,11 +10,11 @@ from verifier.models import FileChange, Finding
 from verifier.rules import RuleContext, rule
 from verifier.rules.machine import (
     base_text,
+    glob_matcher,
     head_text,
     machine_changed,
     machine_lines,
     machine_removed,
-    matches,
     option,
 )
 from verifier.tomlfile import load_toml
@@ -119,10 +119,10 @@ def harness_changes(context: RuleContext) -> Iterator[Finding]:
     the project's own exclusion patterns) added on machine-written lines. Have a human make such
     changes, or remove the exclusion and test the line. Teams add file globs (option ``files``) and
     exclusion regexes (option ``exclusion_patterns``)."""
-    files = option(context, RULE_ID, "files")
+    is_harness = glob_matcher(tuple(option(context, RULE_ID, "files")))
     for file in context.change.files:
         names = [p for p in (file.path, file.old_path) if p]
-        if any(matches(p, files) for p in names) and machine_changed(context, file):
+        if any(is_harness(p) for p in names) and machine_changed(context, file):
             yield Finding(RULE_ID, "block", f"harness file {_verb(file)} by machine-written change",
                           path=file.path, line=min(machine_lines(context, file.path), default=None))
             continue

@@ -6,7 +6,7 @@ from collections.abc import Iterator
 
 from verifier.models import Finding
 from verifier.rules import RuleContext, rule
-from verifier.rules.machine import machine_lines, machine_removed, matches, option
+from verifier.rules.machine import glob_matcher, machine_lines, machine_removed, option
 
 RULE_ID = "paths.protected"
 
@@ -39,10 +39,10 @@ def protected_paths(context: RuleContext) -> Iterator[Finding]:
     machine-written line added or removed there, or a machine commit adding, deleting or renaming such a
     file, is reported. Have a human make (or re-make) the change in a commit of their own. Teams list
     more globs in option ``extra`` (or replace the defaults with option ``paths``)."""
-    globs = [*option(context, RULE_ID, "paths"), *option(context, RULE_ID, "extra")]
+    is_protected = glob_matcher((*option(context, RULE_ID, "paths"), *option(context, RULE_ID, "extra")))
     for file in context.change.files:
         names = [p for p in dict.fromkeys((file.path, file.old_path)) if p]
-        protected = next((p for p in names if matches(p, globs)), None)
+        protected = next((p for p in names if is_protected(p)), None)
         if protected is None:
             continue
         added = sorted(machine_lines(context, file.path))

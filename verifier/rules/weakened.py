@@ -17,7 +17,7 @@ from dataclasses import dataclass, field
 from verifier.astnames import Names, canonical, module_index, module_names, resolve, span
 from verifier.models import FileChange, Finding
 from verifier.rules import RuleContext, rule
-from verifier.rules.machine import base_text, head_text, machine_lines, machine_removed, matches, option
+from verifier.rules.machine import base_text, glob_matcher, head_text, machine_lines, machine_removed, option
 
 RULE_ID = "tests.weakened"
 DEFAULT_TEST_GLOBS = ["tests/**/*.py", "test/**/*.py", "**/test_*.py", "**/*_test.py"]
@@ -205,10 +205,10 @@ def weakened_tests(context: RuleContext) -> Iterator[Finding]:
     broader exception (by the builtin exception hierarchy) or with its ``match`` dropped, and fewer
     parametrize cases block; a changed expected literal in an existing assertion is a warning (it may be
     a legitimate fix). Restore the test, or have a human review and make the change."""
-    globs = option(context, RULE_ID, "test_paths")
+    is_test = glob_matcher(tuple(option(context, RULE_ID, "test_paths")))
     for file in context.change.files:
-        at_base = file.old_path is not None and matches(file.old_path, globs)
-        at_head = file.status != "deleted" and matches(file.path, globs)
+        at_base = file.old_path is not None and is_test(file.old_path)
+        at_head = file.status != "deleted" and is_test(file.path)
         if (at_base or at_head) and file.path.endswith(".py"):
             yield from _compare_file(context, file, at_base, at_head)
 
