@@ -86,3 +86,19 @@ def snapshot(path: Path) -> dict[str, str]:
             continue
         state[str(file.relative_to(path))] = hashlib.sha256(file.read_bytes()).hexdigest()
     return state
+
+
+def processes_carrying(marker: str) -> list[int]:
+    """Host processes (any PID namespace) whose command line or environment holds ``marker``."""
+    found = []
+    for name in os.listdir("/proc"):
+        if not name.isdigit() or int(name) == os.getpid():
+            continue
+        for part in ("cmdline", "environ"):
+            try:
+                if marker.encode() in Path(f"/proc/{name}/{part}").read_bytes():
+                    found.append(int(name))
+                    break
+            except OSError:
+                continue
+    return found

@@ -11,7 +11,7 @@ import time
 import uuid
 from pathlib import Path
 
-from conftest import ROOT, machine, run_check, snapshot, test_sandbox
+from conftest import ROOT, machine, processes_carrying, run_check, snapshot, test_sandbox
 
 from verifier import demo
 from verifier.scratch import ScratchRepo
@@ -49,21 +49,6 @@ def test_a_full_run_changes_nothing(repo: ScratchRepo) -> None:
     assert snapshot(repo.path) == before
 
 
-def _leftovers(marker: str) -> list[str]:
-    """Processes whose command line or environment mentions ``marker`` (our private TMPDIR)."""
-    found = []
-    for proc in Path("/proc").iterdir():
-        if not proc.name.isdigit() or int(proc.name) == os.getpid():
-            continue
-        try:
-            blob = (proc / "cmdline").read_bytes() + (proc / "environ").read_bytes()
-        except OSError:
-            continue
-        if marker.encode() in blob:
-            found.append(proc.name)
-    return found
-
-
 def test_sigint_mid_run_changes_nothing_and_leaves_nothing(repo: ScratchRepo, tmp_path: Path) -> None:
     marker = busy_repo(repo)
     before = snapshot(repo.path)
@@ -83,5 +68,5 @@ def test_sigint_mid_run_changes_nothing_and_leaves_nothing(repo: ScratchRepo, tm
     assert snapshot(repo.path) == before
     assert list(private_tmp.iterdir()) == []
     time.sleep(0.5)
-    assert _leftovers(str(private_tmp)) == []
-    assert _leftovers(marker) == []
+    assert processes_carrying(str(private_tmp)) == []
+    assert processes_carrying(marker) == []

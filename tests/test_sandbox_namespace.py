@@ -20,6 +20,7 @@ from collections.abc import Callable
 from pathlib import Path
 
 import pytest
+from conftest import processes_carrying
 
 from verifier.models import Limits, SandboxRequest, SandboxResult
 from verifier.sandbox.namespace import NamespaceBackend, interpreter_paths
@@ -28,22 +29,6 @@ from verifier.sandbox.process import ProcessBackend
 pytestmark = pytest.mark.namespace
 ROOT = Path(__file__).resolve().parent.parent
 Runner = Callable[..., SandboxResult]
-
-
-def processes_carrying(marker: str) -> list[int]:
-    """Host processes (any PID namespace) whose command line or environment holds ``marker``."""
-    found = []
-    for name in os.listdir("/proc"):
-        if not name.isdigit() or int(name) == os.getpid():
-            continue
-        for part in ("cmdline", "environ"):
-            try:
-                if marker.encode() in Path(f"/proc/{name}/{part}").read_bytes():
-                    found.append(int(name))
-                    break
-            except OSError:
-                continue
-    return found
 
 
 @pytest.fixture(scope="module")

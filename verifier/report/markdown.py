@@ -8,6 +8,7 @@ from __future__ import annotations
 import re
 
 from verifier.models import Finding, Report
+from verifier.report.text import line_spans
 
 _HEADLINES = {
     "pass": "PASS: the machine-written change is verified",
@@ -60,7 +61,7 @@ def _file_table(report: Report) -> str:
 
 
 def _line_list(lines: tuple[int, ...]) -> str:
-    spans = _spans(lines)
+    spans = line_spans(lines)
     if len(spans) <= _SHORT_LIST:
         return f"{len(lines)}: {', '.join(spans)}"
     return f"{len(lines)}: {', '.join(spans[:_SHORT_LIST])}, …"
@@ -163,12 +164,3 @@ def _cell(text: str) -> str:
 def _html(text: str) -> str:
     return text.replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
 
-
-def _spans(lines: tuple[int, ...]) -> list[str]:
-    spans: list[list[int]] = []
-    for line in lines:
-        if spans and line == spans[-1][1] + 1:
-            spans[-1][1] = line
-        else:
-            spans.append([line, line])
-    return [f"{a}-{b}" if a != b else f"{a}" for a, b in spans]

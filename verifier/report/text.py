@@ -69,7 +69,7 @@ def _machine_lines(report: Report) -> list[str]:
     if not machine:
         return ["machine-written lines: none"]
     rows = [f"machine-written lines: {report.provenance.machine_line_count} in {len(machine)} file(s)"]
-    rows += [f"  {path}: {len(lines)} ({_spans(lines)})" for path, lines in machine.items()]
+    rows += [f"  {path}: {len(lines)} ({', '.join(line_spans(lines))})" for path, lines in machine.items()]
     return rows
 
 
@@ -157,15 +157,15 @@ def _waivers(report: Report) -> list[str]:
     return rows
 
 
-def _spans(lines: tuple[int, ...]) -> str:
-    """Render sorted line numbers compactly: 3-7, 10, 12-13."""
+def line_spans(lines: tuple[int, ...]) -> list[str]:
+    """Sorted line numbers as compact spans: (3, 4, 5, 10) -> ["3-5", "10"]."""
     spans: list[list[int]] = []
     for line in lines:
         if spans and line == spans[-1][1] + 1:
             spans[-1][1] = line
         else:
             spans.append([line, line])
-    return ", ".join(f"{a}-{b}" if a != b else f"{a}" for a, b in spans)
+    return [f"{a}-{b}" if a != b else f"{a}" for a, b in spans]
 
 
 _SPINNER = "|/-\\"
