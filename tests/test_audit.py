@@ -189,6 +189,18 @@ def test_policy_waivers_are_read_again_when_the_policy_changes(tmp_path: Path):
     assert run_audit(repo.path, window).expiring_waivers == ()
 
 
+def test_agent_identities_come_from_the_trusted_policy(tmp_path: Path):
+    repo = ScratchRepo(tmp_path / "repo")
+    policy = f"version: 1\naudit:\n  agent_identities: [{AGENT_IDENTITY[1]}]\n"
+    repo.commit("Start", {"verifier.yaml": policy, "parcelkit/rates.py": _lines("rate", 2)}, date=_date("03-01"))
+    unmarked = repo.commit("Helpers", {"parcelkit/util.py": _lines("util", 3)}, date=_date("03-05"),
+                           author=AGENT_IDENTITY)
+    repo.commit("Human edit", {"parcelkit/rates.py": _lines("rate", 3)}, date=_date("03-06"))
+    audit = run_audit(repo.path, AuditRequest(since="2024-03-04", until="2024-03-10", weeks=0))
+    assert [(r.sha, r.agent, r.marked) for r in audit.commits] == [(unmarked, AGENT_IDENTITY[1], False)]
+    assert audit.window.machine_lines_added == 3
+
+
 def test_json_text_is_what_the_json_module_writes(history):
     from verifier.auditreport import render
     from verifier.auditreport.jsonfmt import as_dict

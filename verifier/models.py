@@ -141,6 +141,7 @@ class Policy:
     rule_options: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)  # rule id -> option -> value
     overrides: tuple[PathOverride, ...] = ()  # in order; a later one wins (see verifier.policy.policy_for_path)
     waivers: tuple[Waiver, ...] = ()
+    agent_identities: tuple[str, ...] = ()  # emails of assistants whose unmarked commits the audit counts
     selection: SelectionSettings = field(default_factory=lambda: SelectionSettings())
 
     def setting(self, rule_id: str, default: RuleSetting) -> RuleSetting:

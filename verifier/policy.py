@@ -192,6 +192,7 @@ SCHEMA: dict[str, Any] = {
         "whole_suite_paths": _string_list,
         "ignore_paths": _string_list,
     },
+    "audit": {"agent_identities": _string_list},
     "rules": RULES,
     "overrides": Items(OVERRIDE_SCHEMA, required=("paths",)),
     "waivers": Items(WAIVER_SCHEMA, required=tuple(WAIVER_SCHEMA)),
@@ -632,6 +633,7 @@ def build_policy(layers: list[Layer], today: date | None = None) -> Policy:
         overrides=tuple(_override(entry) for entry in merged.get("overrides", [])),
         waivers=waivers,
         selection=_selection(merged.get("selection", {})),
+        agent_identities=tuple(getattr(merged.get("audit", {}).get("agent_identities"), "value", ())),
     )
 
 
