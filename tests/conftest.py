@@ -66,6 +66,15 @@ def repo(tmp_path: Path) -> ScratchRepo:
     return ScratchRepo(tmp_path / "repo")
 
 
+@pytest.fixture
+def tree(tmp_path: Path) -> Path:
+    """A small materialised tree for the sandbox backends' tests."""
+    folder = tmp_path / "tree"
+    folder.mkdir()
+    (folder / "given.txt").write_text("from the tree\n")
+    return folder
+
+
 def snapshot(path: Path) -> dict[str, str]:
     """Everything a run must leave byte-identical: HEAD, refs, index, stash, working tree, untracked files."""
     def git(*args: str) -> str:

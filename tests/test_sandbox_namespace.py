@@ -43,14 +43,6 @@ def backend() -> NamespaceBackend:
 
 
 @pytest.fixture
-def tree(tmp_path: Path) -> Path:
-    folder = tmp_path / "tree"
-    folder.mkdir()
-    (folder / "given.txt").write_text("from the tree\n")
-    return folder
-
-
-@pytest.fixture
 def run(backend: NamespaceBackend, tree: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Runner:
     """Run Python code in the sandbox; then check that no process and no temp folder of it is left."""
     private_temp = tmp_path / "temp"

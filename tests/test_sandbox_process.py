@@ -25,14 +25,6 @@ Runner = Callable[..., SandboxResult]
 
 
 @pytest.fixture
-def tree(tmp_path: Path) -> Path:
-    folder = tmp_path / "tree"
-    folder.mkdir()
-    (folder / "given.txt").write_text("from the tree\n")
-    return folder
-
-
-@pytest.fixture
 def run(tree: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Runner:
     """Run Python code in the process sandbox; then check that nothing of it is left."""
     private_temp = tmp_path / "temp"

@@ -673,12 +673,8 @@ def _policy_facts(git: Git, end: str | None, until: int,
         policy = load_policy(git, end, today=day)
     except VerifierError as error:
         return (), (), [f"the trusted policy at the window's end could not be read: {error.message}"]
-    except TypeError:  # a policy module without the ``today`` argument
-        policy = load_policy(git, end)
-    waivers = tuple(
-        WaiverInfo(w.rule, w.path, w.reason, w.owner, str(w.expires)) for w in getattr(policy, "waivers", ())
-    )
-    identities = tuple(getattr(policy, "agent_identities", ()))
+    waivers = tuple(WaiverInfo(w.rule, w.path, w.reason, w.owner, str(w.expires)) for w in policy.waivers)
+    identities = policy.agent_identities
     if cache_file is not None:
         _save_marshal(cache_file, [[[w.rule, w.path, w.reason, w.owner, w.expires] for w in waivers],
                                    list(identities)])
@@ -1173,6 +1169,7 @@ def _run_audit(repo: str | os.PathLike[str], request: AuditRequest, now: float |
 def recheck(repo: str | os.PathLike[str], audit: Audit, sandbox: str = "auto", progress: Any = None) -> list[str]:
     """Run the gate on each unverified machine commit of ``audit`` and write its note; return the problems."""
     from verifier.change import RevisionSpec
+    from verifier.notes import write_notes
     from verifier.pipeline import Options, verify
 
     git = Git(Git(repo).toplevel())
@@ -1187,17 +1184,8 @@ def recheck(repo: str | os.PathLike[str], audit: Audit, sandbox: str = "auto", p
         except VerifierError as error:
             problems.append(f"{row.sha[:12]}: {error.message}")
             continue
-        _write_note(git, report, row.sha, audit.notes_ref)
+        write_notes(git, report, audit.notes_ref)
     return problems
 
 
-def _write_note(git: Git, report: Any, sha: str, ref: str) -> None:
-    try:
-        from verifier.notes import write_notes
-    except ImportError:
-        body = {"format": 1, "tool": "verifier", "commit": sha, "verdict": report.verdict,
-                "checked_at": iso(int(datetime.now().timestamp())), "findings": [], "waivers": []}
-        git.write_note(ref, sha, json.dumps(body))
-        return
-    write_notes(git, report, ref)
 

@@ -1,7 +1,7 @@
 """The one place that talks to git: plain ``git`` subprocesses with argument lists, never shell strings.
 
 Every command runs with ``GIT_OPTIONAL_LOCKS=0`` so that reading never refreshes the user's index, and
-nothing here writes to the repository except :meth:`Git.write_note` (the gate's own notes ref).
+nothing here writes to the repository (the gate's own notes ref is written by :mod:`verifier.notes`).
 """
 
 from __future__ import annotations
@@ -196,9 +196,6 @@ class Git:
         self.run(["checkout-index", "--all", "--force", f"--prefix={dest}{os.sep}"])
 
     # -- notes ----------------------------------------------------------------------------------
-    def write_note(self, ref: str, sha: str, text: str) -> None:
-        self.run(["notes", f"--ref={ref}", "add", "--force", "--file=-", sha], input=text.encode())
-
     def read_notes(self, ref: str) -> Iterator[tuple[str, str]]:
         """Yield (commit sha, note text) for every note under ``ref``."""
         listing = self.run(["notes", f"--ref={ref}", "list"], check=False).decode().split("\n")
