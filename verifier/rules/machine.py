@@ -9,39 +9,14 @@ model both edited the file in the range, which is the safe direction for a gate.
 
 from __future__ import annotations
 
-import functools
-import re
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from typing import Any
 
 from verifier.models import FileChange
+from verifier.pathglob import glob_matcher
 from verifier.rules import REGISTRY, RuleContext
 
 TEXT_STATUSES_WITH_FILE_EVENT = ("added", "deleted", "renamed", "copied", "type-changed")
-
-
-@functools.lru_cache(maxsize=64)
-def glob_matcher(globs: tuple[str, ...]) -> Callable[[str], bool]:
-    """``matches_any(path, globs)`` as one compiled regex (the rules test every changed path against dozens
-    of globs). Same semantics as the scope globs: a pattern without wildcards, or ending in '/', also
-    covers everything under it."""
-    from verifier.trailers import _compile
-
-    parts: list[str] = []
-    for glob in globs:
-        regex, has_wildcards = _compile(glob)
-        if regex is None:
-            return lambda _path: True
-        if glob.endswith("/"):
-            parts.append(f"(?:{regex.pattern})/.*")
-        elif has_wildcards:
-            parts.append(f"(?:{regex.pattern})")
-        else:
-            parts.append(f"(?:{regex.pattern})(?:/.*)?")
-    if not parts:
-        return lambda _path: False
-    combined = re.compile("|".join(parts), re.DOTALL)
-    return lambda path: combined.fullmatch(path) is not None
 
 
 def matches(path: str, globs: Sequence[str]) -> bool:
