@@ -29,7 +29,7 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from verifier.audit import AuditRequest, run_audit  # noqa: E402
+from verifier.audit.build import AuditRequest, run_audit  # noqa: E402
 
 START = 1_704_067_200  # 2024-01-01T00:00:00Z
 STEP = 600  # a commit every ten minutes

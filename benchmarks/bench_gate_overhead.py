@@ -16,7 +16,7 @@ from pathlib import Path
 
 from timing import compare, run_command
 
-from verifier.scratch import ScratchRepo
+from verifier.demo.scratch import ScratchRepo
 
 DEFAULT_LIBRARY = "boltons==26.2.0"
 CHANGE_TARGET = ("boltons/strutils.py", "def bytes2human(", "    # quill-assist: sizes are never negative\n")

@@ -22,11 +22,11 @@ from timing import compare, run_command
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from verifier.scratch import IDENTITY, ScratchRepo  # noqa: E402
+from verifier.demo.scratch import IDENTITY, ScratchRepo  # noqa: E402
 
 UNMARKED = "Fix the invoice rounding\n\nSigned-off-by: Ada Okafor <ada@quillfeather.example>\n"
 NAMES_THE_KEY = "Explain the Model-Written trailer in the docs\n\nNo trailer here, only prose.\n"
-ENTRY = "import sys; sys.path[0] = sys.argv.pop(1); from verifier.cli import main; sys.exit(main())"
+ENTRY = "import sys; sys.path[0] = sys.argv.pop(1); from verifier.cli.main import main; sys.exit(main())"
 
 
 def committer(repo: Path, env: dict[str, str]):  # type: ignore[no-untyped-def]

@@ -27,7 +27,7 @@ from pathlib import Path
 
 from bench_gate_overhead import fetch_sdist
 
-from verifier.scratch import ScratchRepo
+from verifier.demo.scratch import ScratchRepo
 
 LIBRARIES = ("toolz==1.0.0", "more-itertools==10.5.0")
 POLICY = "selection:\n  mode: smart\ncoverage:\n  threshold: 0\n"

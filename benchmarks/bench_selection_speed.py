@@ -26,7 +26,7 @@ from pathlib import Path
 
 from bench_gate_overhead import fetch_sdist
 
-from verifier.scratch import ScratchRepo
+from verifier.demo.scratch import ScratchRepo
 
 DEFAULT = ("more-itertools==10.5.0", "more_itertools/more.py", "def chunked(")
 POLICY = "selection:\n  mode: smart\ncoverage:\n  threshold: 0\ntests:\n  python_path: [\".\", \"src\"]\n"

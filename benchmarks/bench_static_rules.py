@@ -64,7 +64,7 @@ def build(root: Path):  # type: ignore[no-untyped-def]
     from conftest import machine
     from test_rules_support import context_for
 
-    from verifier.scratch import ScratchRepo
+    from verifier.demo.scratch import ScratchRepo
 
     repo = ScratchRepo(root / "repo")
     tests = {f"tests/test_zone_{n}.py": TEST.format(n=n) for n in range(100)}

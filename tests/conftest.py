@@ -12,7 +12,7 @@ from pathlib import Path
 
 import pytest
 
-from verifier.scratch import ScratchRepo
+from verifier.demo.scratch import ScratchRepo
 
 ROOT = Path(__file__).resolve().parent.parent
 AGENT = "quill-assist/2.3"
@@ -82,7 +82,7 @@ def snapshot(path: Path) -> dict[str, str]:
 
     state = {
         "HEAD": git("rev-parse", "HEAD") + git("symbolic-ref", "-q", "HEAD"),
-        # the gate's own notes ref is the one ref a check may write (verifier.notes)
+        # the gate's own notes ref is the one ref a check may write (verifier.report.notes)
         "refs": "".join(line for line in git("for-each-ref", "--format=%(refname) %(objectname)")
                         .splitlines(keepends=True) if not line.startswith("refs/notes/verifier ")),
         "stash": git("stash", "list"),

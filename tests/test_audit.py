@@ -12,8 +12,8 @@ from pathlib import Path
 import pytest
 
 from tests.conftest import ROOT, machine
-from verifier.audit import AuditRequest, FilePatch, parse_patch, run_audit
-from verifier.scratch import ScratchRepo
+from verifier.audit.build import AuditRequest, FilePatch, parse_patch, run_audit
+from verifier.demo.scratch import ScratchRepo
 
 WINDOW = AuditRequest(since="2024-03-04", until="2024-03-10", weeks=2,
                       agent_emails=("quill-assist@quillfeather.example",))
@@ -202,8 +202,8 @@ def test_agent_identities_come_from_the_trusted_policy(tmp_path: Path):
 
 
 def test_json_text_is_what_the_json_module_writes(history):
-    from verifier.auditreport import render
-    from verifier.auditreport.jsonfmt import as_dict
+    from verifier.audit.report import render
+    from verifier.audit.report.jsonfmt import as_dict
 
     audit = run_audit(repo_path(history), WINDOW)
     assert audit.commits and any(c.findings for c in audit.commits)

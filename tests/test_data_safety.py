@@ -13,8 +13,8 @@ from pathlib import Path
 
 from conftest import ROOT, machine, processes_carrying, run_check, snapshot, test_sandbox
 
-from verifier import demo
-from verifier.scratch import ScratchRepo
+from verifier.demo import scenario as demo
+from verifier.demo.scratch import ScratchRepo
 
 SLOW_TEST = "import time\nfrom parcelkit.slow import nap\n\n\ndef test_nap():\n    nap()\n"
 SLOW_CODE = "import time\n\n\ndef nap():\n    time.sleep(600)\n"

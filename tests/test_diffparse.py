@@ -1,4 +1,4 @@
-"""Tests of verifier.diffparse on the output of real git, in repositories built in tmp_path.
+"""Tests of verifier.change.diff on the output of real git, in repositories built in tmp_path.
 
 Every case checks the parsed line counts per file against ``git diff --numstat`` (git's own count is the
 reference; for a binary file git prints '-' for both) and the line numbers against the content the test
@@ -14,7 +14,7 @@ from pathlib import Path
 
 import pytest
 
-from verifier.diffparse import DIFF_ARGS, RAW_ARGS, parse_diff
+from verifier.change.diff import DIFF_ARGS, RAW_ARGS, parse_diff
 from verifier.errors import CannotVerify
 from verifier.models import FileChange
 

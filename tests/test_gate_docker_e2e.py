@@ -7,8 +7,8 @@ import os
 import pytest
 from conftest import machine, run_check
 
-from verifier import demo
-from verifier.scratch import ScratchRepo
+from verifier.demo import scenario as demo
+from verifier.demo.scratch import ScratchRepo
 
 
 def docker_problem() -> str | None:

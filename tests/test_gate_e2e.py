@@ -9,8 +9,8 @@ from pathlib import Path
 
 from conftest import machine, run_check, snapshot, test_sandbox
 
-from verifier import demo
-from verifier.scratch import ScratchRepo
+from verifier.demo import scenario as demo
+from verifier.demo.scratch import ScratchRepo
 
 BASE_FILES = {
     "parcelkit/__init__.py": "",

@@ -15,10 +15,11 @@ from pathlib import Path
 import pytest
 from conftest import ROOT, machine, snapshot, test_sandbox
 
-from verifier import demo, hooks
+from verifier.demo import scenario as demo
+from verifier.demo.scratch import IDENTITY, ScratchRepo
 from verifier.gitio import Git
-from verifier.notes import read_notes
-from verifier.scratch import IDENTITY, ScratchRepo
+from verifier.integration import hooks
+from verifier.report.notes import read_notes
 
 BASE_FILES = {"parcelkit/__init__.py": "", "parcelkit/rates.py": demo.RATES, "tests/test_rates.py": demo.TEST_RATES}
 NOTES_REF = "refs/notes/verifier"
@@ -116,12 +117,12 @@ def test_unmarked_and_skipped_commits_are_fast_and_get_no_note(hrepo: ScratchRep
 def test_the_unmarked_path_does_not_import_the_pipeline(tmp_path: Path) -> None:
     message = tmp_path / "MSG"
     message.write_text("Fix a typo\n\nSigned-off-by: Ada Okafor <ada@quillfeather.example>\n")
-    probe = ("import sys; from verifier.cli import main; code = main(['hook', 'commit-msg', sys.argv[1]]); "
+    probe = ("import sys; from verifier.cli.main import main; code = main(['hook', 'commit-msg', sys.argv[1]]); "
              "print(code, sorted(m for m in sys.modules if m.startswith('verifier')))")
     done = subprocess.run([sys.executable, "-c", probe, str(message)], capture_output=True, text=True,
                           env={**os.environ, "PYTHONPATH": str(ROOT)}, cwd=tmp_path)
     assert done.stdout.split(" ", 1)[0] == "0", done.stderr
-    heavy = ("verifier.pipeline", "verifier.sandbox", "verifier.change", "coverage", "pytest", "yaml", "docker")
+    heavy = ("verifier.pipeline", "verifier.sandbox", "verifier.change.stage", "coverage", "pytest", "yaml", "docker")
     loaded = subprocess.run([sys.executable, "-c", probe.replace("m.startswith('verifier')", "True"), str(message)],
                             capture_output=True, text=True, env={**os.environ, "PYTHONPATH": str(ROOT)},
                             cwd=tmp_path).stdout

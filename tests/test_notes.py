@@ -8,9 +8,10 @@ from pathlib import Path
 
 from conftest import machine, run_check
 
-from verifier import demo, notes
+from verifier.demo import scenario as demo
+from verifier.demo.scratch import ScratchRepo
 from verifier.gitio import Git
-from verifier.scratch import ScratchRepo
+from verifier.report import notes
 
 BASE_FILES = {"parcelkit/__init__.py": "", "parcelkit/rates.py": demo.RATES, "tests/test_rates.py": demo.TEST_RATES}
 FIELDS = {"format", "tool", "version", "checked_at", "commit", "range", "verdict", "agent", "machine_lines",
@@ -96,7 +97,7 @@ def test_notes_are_written_without_a_git_identity(tmp_path: Path) -> None:
 
 def test_a_pending_verdict_only_annotates_the_commit_it_was_for(repo: ScratchRepo, tmp_path: Path) -> None:
     """The staged verdict waits under the git dir keyed by tree; another tree or parent gets no note."""
-    from verifier.change import RevisionSpec
+    from verifier.change.stage import RevisionSpec
     from verifier.pipeline import verify
 
     repo.commit("Start parcelkit", BASE_FILES)

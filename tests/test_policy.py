@@ -7,10 +7,11 @@ from pathlib import Path
 
 import pytest
 
+from verifier.demo.scratch import ScratchRepo
 from verifier.errors import PolicyError
 from verifier.gitio import Git
 from verifier.models import Finding, PathOverride, Policy, Waiver
-from verifier.policy import (
+from verifier.policy.loader import (
     Layer,
     build_policy,
     judge_finding,
@@ -24,7 +25,6 @@ from verifier.policy import (
     waivers_used,
 )
 from verifier.rules import REGISTRY, Rule, load_all
-from verifier.scratch import ScratchRepo
 
 
 def error_of(text: str) -> PolicyError:

@@ -12,11 +12,11 @@ from pathlib import Path
 import pytest
 from conftest import ROOT, machine, run_check
 
-from verifier import demo
+from verifier.demo import scenario as demo
+from verifier.demo.scratch import ScratchRepo
 from verifier.errors import PolicyError
 from verifier.gitio import Git
-from verifier.policy import load_policy, shipped_dir
-from verifier.scratch import ScratchRepo
+from verifier.policy.loader import load_policy, shipped_dir
 
 BASE_FILES = {
     "parcelkit/__init__.py": "",

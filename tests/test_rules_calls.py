@@ -9,8 +9,8 @@ import pytest
 from conftest import machine
 from test_rules_support import context_for, findings, machine_change
 
+from verifier.demo.scratch import ScratchRepo
 from verifier.rules.calls import DEFAULT_ENTRIES, entry_problems, parse_entry
-from verifier.scratch import ScratchRepo
 
 # case name -> (module source, the (line, CWE) pairs calls.banned must report)
 CASES: dict[str, tuple[str, list[tuple[int, str]]]] = {

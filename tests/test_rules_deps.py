@@ -4,8 +4,8 @@ from __future__ import annotations
 
 from test_rules_support import findings, machine_change
 
+from verifier.demo.scratch import ScratchRepo
 from verifier.rules.deps import normalise, pyproject_requirements, requirement_lines
-from verifier.scratch import ScratchRepo
 
 PYPROJECT = '''[project]
 name = "parcelkit"

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 from conftest import machine, run_check
 
-from verifier import demo
-from verifier.scratch import ScratchRepo
+from verifier.demo import scenario as demo
+from verifier.demo.scratch import ScratchRepo
 
 BASE_FILES = {"parcelkit/__init__.py": "", "parcelkit/rates.py": demo.RATES, "tests/test_rates.py": demo.TEST_RATES}
 

@@ -6,8 +6,8 @@ import coverage.config
 import pytest
 from test_rules_support import findings, machine_change
 
+from verifier.demo.scratch import ScratchRepo
 from verifier.rules.harness import DEFAULT_PRAGMA, exclusion_patterns
-from verifier.scratch import ScratchRepo
 
 PYPROJECT = '[project]\nname = "parcelkit"\nversion = "1.0"\n\n[tool.pytest.ini_options]\ntestpaths = ["tests"]\n'
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 from conftest import machine
 from test_rules_support import context_for, findings, machine_change
 
-from verifier.scratch import ScratchRepo
+from verifier.demo.scratch import ScratchRepo
 
 CI = "name: ci\non: [push]\njobs:\n  test:\n    runs-on: ubuntu-latest\n"
 
@@ -63,9 +63,9 @@ def test_scope_trailer_outside_the_protected_file(repo: ScratchRepo) -> None:
 
 def test_combined_glob_matcher_agrees_with_the_scope_matcher() -> None:
     """The one-regex matcher of a glob list must say what the scope trailer's matcher says, glob by glob."""
+    from verifier.provenance.trailers import path_in_scope
     from verifier.rules.machine import matches
     from verifier.rules.paths import DEFAULT_PROTECTED
-    from verifier.trailers import path_in_scope
 
     globs = [*DEFAULT_PROTECTED, "docs/", "src/*/", "parcelkit", "*.md", "a?c/**/z.py", "[ab]*.txt"]
     paths = ["Dockerfile", "svc/Dockerfile", "svc/Dockerfile.dev", ".github/workflows/ci.yml", ".github/x.yml",

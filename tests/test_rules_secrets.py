@@ -10,8 +10,8 @@ import string
 import pytest
 from test_rules_support import findings, machine_change
 
+from verifier.demo.scratch import ScratchRepo
 from verifier.rules.secrets import entropy
-from verifier.scratch import ScratchRepo
 
 # The credentials are made up at run time (never stored in this repository), in each issuer's shape.
 _RANDOM = random.Random(20240601)

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 from test_rules_support import findings, machine_change
 
+from verifier.demo.scratch import ScratchRepo
 from verifier.rules import apply_rules
-from verifier.scratch import ScratchRepo
 
 
 def lines(count: int) -> str:

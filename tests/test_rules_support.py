@@ -11,13 +11,13 @@ from typing import Any
 
 from conftest import machine
 
-from verifier.change import RevisionSpec, read_change
+from verifier.change.stage import RevisionSpec, read_change
+from verifier.demo.scratch import ScratchRepo
 from verifier.gitio import Git
 from verifier.models import Finding, Policy
 from verifier.pipeline import _base_reader, _changed_sources
-from verifier.provenance import attribute
+from verifier.provenance.attribution import attribute
 from verifier.rules import REGISTRY, RuleContext, load_all
-from verifier.scratch import ScratchRepo
 
 
 def context_for(repo: ScratchRepo, spec: str, options: Mapping[str, Mapping[str, Any]] | None = None) -> RuleContext:

@@ -5,9 +5,9 @@ from __future__ import annotations
 import pytest
 from test_rules_support import findings, machine_change
 
+from verifier.demo.scratch import ScratchRepo
 from verifier.rules import apply_rules
 from verifier.rules.weakened import _widened
-from verifier.scratch import ScratchRepo
 
 BASE = '''import pytest
 

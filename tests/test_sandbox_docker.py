@@ -20,10 +20,10 @@ from pathlib import Path
 
 import pytest
 
-from verifier import images
 from verifier.errors import EXIT_UNVERIFIED, SandboxUnavailable
 from verifier.models import Limits, SandboxRequest, SandboxResult
 from verifier.sandbox import docker as docker_backend
+from verifier.sandbox import images
 from verifier.sandbox.docker import LABEL, OWNER_LABEL, DockerBackend, engine_endpoint, is_orphan
 
 REPO_ROOT = Path(__file__).resolve().parents[1]

@@ -12,7 +12,7 @@ import sys
 
 from conftest import ROOT, machine, run_check
 
-from verifier.scratch import ScratchRepo
+from verifier.demo.scratch import ScratchRepo
 
 RATES = '''\
 """Parcel rates of Quillfeather Logistics."""

@@ -7,12 +7,12 @@ check the same decisions on real runs.
 
 from __future__ import annotations
 
-from verifier.differential import classify, classify_run, regressions
-from verifier.impactmap import ImpactMap
-from verifier.imports import build_graph, dotted_name
 from verifier.models import Change, FileChange
 from verifier.models import TestOutcome as Outcome
-from verifier.selection import functions, innermost, plan, touched_scopes
+from verifier.selection.impactmap import ImpactMap
+from verifier.selection.imports import build_graph, dotted_name
+from verifier.selection.plan import functions, innermost, plan, touched_scopes
+from verifier.testrun.differential import classify, classify_run, regressions
 
 RATES = '''\
 """Parcel rates."""

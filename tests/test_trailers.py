@@ -1,4 +1,4 @@
-"""Tests of verifier.trailers: the parser against git itself, the machine mark, and scope globs.
+"""Tests of verifier.provenance.trailers: the parser against git itself, the machine mark, and scope globs.
 
 Source of truth for parsing: `git interpret-trailers --parse` (git 2.39 on the development machine), run on
 each message with the system and global git config shut out, so the default trailer rules apply. Each
@@ -16,7 +16,7 @@ from pathlib import Path
 import pytest
 
 from verifier.models import MachineMark
-from verifier.trailers import MACHINE_KEY, SCOPE_KEY, machine_mark, parse_trailers, path_in_scope
+from verifier.provenance.trailers import MACHINE_KEY, SCOPE_KEY, machine_mark, parse_trailers, path_in_scope
 
 GIT_ENV = {**os.environ, "GIT_CONFIG_NOSYSTEM": "1", "GIT_CONFIG_GLOBAL": os.devnull, "LC_ALL": "C"}
 
@@ -381,11 +381,11 @@ def test_path_in_scope_agrees_with_git_glob_pathspec(tmp_path: Path) -> None:
 
 def test_import_stays_light() -> None:
     code = (
-        "import sys; before = set(sys.modules); import verifier.trailers; "
+        "import sys; before = set(sys.modules); import verifier.provenance.trailers; "
         "print(' '.join(sorted(set(sys.modules) - before)))"
     )
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=60)
     loaded = set(done.stdout.split())
     heavy = {"subprocess", "git", "yaml", "coverage", "pytest", "docker", "unidiff", "fnmatch"}
-    assert "verifier.trailers" in loaded
+    assert "verifier.provenance.trailers" in loaded
     assert not loaded & heavy

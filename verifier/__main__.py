@@ -2,6 +2,6 @@
 
 import sys
 
-from verifier.cli import main
+from verifier.cli.main import main
 
 sys.exit(main())

@@ -1,7 +1,7 @@
 """The one place that talks to git: plain ``git`` subprocesses with argument lists, never shell strings.
 
 Every command runs with ``GIT_OPTIONAL_LOCKS=0`` so that reading never refreshes the user's index, and
-nothing here writes to the repository (the gate's own notes ref is written by :mod:`verifier.notes`).
+nothing here writes to the repository (the gate's own notes ref is written by :mod:`verifier.report.notes`).
 """
 
 from __future__ import annotations

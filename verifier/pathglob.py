@@ -21,7 +21,7 @@ def glob_matcher(globs: tuple[str, ...]) -> Callable[[str], bool]:
     """``matches_any(path, globs)`` as one compiled regex (the rules test every changed path against dozens
     of globs). Same semantics as the scope globs: a pattern without wildcards, or ending in '/', also
     covers everything under it."""
-    from verifier.trailers import _compile
+    from verifier.provenance.trailers import _compile
 
     parts: list[str] = []
     for glob in globs:

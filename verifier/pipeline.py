@@ -4,7 +4,7 @@ Reading this module top to bottom follows one change from git to the verdict:
 change -> provenance -> policy -> static rules -> selection -> sandbox -> dynamic rules -> verdict.
 Side effects stay at the edges: git is only read; the files written are in a temporary folder outside
 the repository, removed in every case, and the caches under git's common dir (the who-tests-what maps
-and base results of :mod:`verifier.impactmap` and :mod:`verifier.differential`, safe to delete).
+and base results of :mod:`verifier.selection.impactmap` and :mod:`verifier.testrun.differential`, safe to delete).
 """
 
 from __future__ import annotations
@@ -13,12 +13,12 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
-from verifier.change import RevisionSpec, read_change
+from verifier.change.stage import RevisionSpec, read_change
 from verifier.gitio import Git
 from verifier.models import INDEX, Change, CoverageSummary, Finding, Policy, Provenance, Report, RunResult, Selection
-from verifier.policy import load_policy, policy_for_path, waivers_used
-from verifier.provenance import attribute
-from verifier.verdict import decide
+from verifier.policy.loader import load_policy, policy_for_path, waivers_used
+from verifier.provenance.attribution import attribute
+from verifier.verdict.decision import decide
 
 Progress = Callable[[str], None]
 
@@ -56,7 +56,7 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
         selection, run = options.premade
     else:
         selection, run = _select_and_run(git, change, policy, options, base_sources, sources, say)
-    from verifier.measure import summarise_coverage
+    from verifier.testrun.measure import summarise_coverage
 
     coverage = None
     if run.status == "completed":  # a partial run's coverage would blame the code for what never ran
@@ -111,7 +111,7 @@ def _select_and_run(
     sources: dict[str, str], say: Progress,
 ) -> tuple[Selection, RunResult]:
     """Choose the tests (building the base map when needed), run them at head, and at base when asked."""
-    from verifier.selection import select_tests
+    from verifier.selection.plan import select_tests
 
     backend = _backend(git, change, policy, options)
     selection, impact = select_tests(git, change, policy, backend, base_sources, sources,
@@ -119,7 +119,7 @@ def _select_and_run(
     say(f"tests: {selection.reason} (map: {selection.map_status})")
     run = _run_tests(git, change, policy, selection, backend, say)
     if policy.selection.differential:
-        from verifier.differential import with_baseline
+        from verifier.testrun.differential import with_baseline
 
         run = with_baseline(git, change, policy, selection, run, backend, impact, say)
     return selection, run
@@ -139,7 +139,7 @@ def _run_tests(
     git: Git, change: Change, policy: Policy, selection: Selection, backend, say: Progress  # type: ignore[no-untyped-def]
 ) -> RunResult:
     """Materialise the head tree outside the repository and run the selected tests there, in the sandbox."""
-    from verifier import testrun
+    from verifier.testrun import harness as testrun
 
     say(f"running the tests in the {backend.name} sandbox")
     judged = tuple(f.path for f in change.files if f.path.endswith(".py") and f.added_lines)
@@ -150,8 +150,8 @@ def _pick_image(backend, git: Git, change: Change) -> None:  # type: ignore[no-u
     """Use the image built for this repository's test dependencies (at base) when there is one."""
     import os
 
-    from verifier.images import image_for
     from verifier.sandbox.docker import IMAGE_ENV
+    from verifier.sandbox.images import image_for
 
     if not os.environ.get(IMAGE_ENV):
         backend.image = image_for(str(git.repo), change.base) or backend.image

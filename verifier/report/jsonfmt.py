@@ -86,7 +86,7 @@ def _differential(run: RunResult) -> dict[str, list[str]] | None:
     """Node ids by class (broken, fixed, still-failing, new, unchanged) when a differential run happened."""
     if run.baseline is None:
         return None
-    from verifier.differential import CLASSES, classify_run
+    from verifier.testrun.differential import CLASSES, classify_run
 
     classes = classify_run(run.tests, run.baseline)
     return {name: sorted(test for test, found in classes.items() if found == name) for name in CLASSES}

@@ -25,7 +25,7 @@ LEVELS = {"block": "error", "error": "error", "warn": "warning", "info": "note",
 
 def as_dict(report: Report) -> dict[str, Any]:
     from verifier import __version__
-    from verifier.verdict import EXIT_CODES
+    from verifier.verdict.decision import EXIT_CODES
 
     rules, index = _rules(report.findings)
     run = {

@@ -105,7 +105,7 @@ def _differential(run) -> list[str]:  # type: ignore[no-untyped-def]
         return []
     from collections import Counter
 
-    from verifier.differential import CLASSES, classify_run
+    from verifier.testrun.differential import CLASSES, classify_run
 
     counts = Counter(classify_run(run.tests, run.baseline).values())
     return ["against base: " + ", ".join(f"{counts[name]} {name}" for name in CLASSES)]

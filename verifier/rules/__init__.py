@@ -55,7 +55,7 @@ class Rule:
         that match it, when given), else the rule's default."""
         if path is None or not policy.overrides:
             return policy.rule_options.get(self.id, {}).get(name, self.options[name])
-        from verifier.policy import policy_for_path
+        from verifier.policy.loader import policy_for_path
 
         return policy_for_path(policy, path).option(self.id, name, self.options[name])
 
@@ -94,7 +94,7 @@ def load_all() -> Mapping[str, Rule]:
 def apply_rules(stage: str, context: RuleContext) -> list[Finding]:
     """Run every enabled rule of ``stage`` and give each finding the severity the policy sets for its
     path (per-path overrides included); a finding a waiver covers becomes ``info``."""
-    from verifier.policy import enabled_anywhere, judge_finding
+    from verifier.policy.loader import enabled_anywhere, judge_finding
 
     findings: list[Finding] = []
     policy = context.policy

@@ -4,10 +4,10 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
-from verifier.differential import classify, regressions
 from verifier.models import Finding
 from verifier.rules import RuleContext, rule
 from verifier.rules.tests import _gist
+from verifier.testrun.differential import classify, regressions
 
 
 @rule("tests.broken", default="block", summary="a test the change breaks (passed at base, fails at head)",

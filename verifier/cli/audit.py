@@ -9,7 +9,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:
-    from verifier.audit import Audit
+    from verifier.audit.build import Audit
 
 FORMATS = ("markdown", "json", "csv", "html")
 
@@ -38,7 +38,7 @@ def add_audit_command(commands: argparse._SubParsersAction) -> None:  # type: ig
 
 
 def run_audit_command(args: argparse.Namespace) -> int:
-    from verifier.audit import AuditRequest, no_cycle_collection, recheck, run_audit
+    from verifier.audit.build import AuditRequest, no_cycle_collection, recheck, run_audit
 
     request = AuditRequest(
         since=args.since, until=args.until, ref=args.ref, weeks=args.weeks, churn_days=args.churn_days,
@@ -59,7 +59,7 @@ def run_audit_command(args: argparse.Namespace) -> int:
 
 
 def _write_reports(audit: Audit, formats: list[str], output: Path | None) -> None:
-    from verifier.auditreport import SUFFIX, render
+    from verifier.audit.report import SUFFIX, render
 
     if output is None:
         for fmt in formats:
@@ -75,11 +75,11 @@ def _write_reports(audit: Audit, formats: list[str], output: Path | None) -> Non
 
 
 def _notes_ref(args: argparse.Namespace) -> str:
-    from verifier.audit import DEFAULT_NOTES_REF
+    from verifier.audit.build import DEFAULT_NOTES_REF
 
     try:
         from verifier.gitio import Git
-        from verifier.notes import configured_ref
+        from verifier.report.notes import configured_ref
     except ImportError:
         return args.notes_ref or DEFAULT_NOTES_REF
     return configured_ref(Git(args.repo), args.notes_ref)

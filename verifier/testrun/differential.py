@@ -21,9 +21,9 @@ from dataclasses import replace
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from verifier import impactmap
-from verifier.impactmap import ImpactMap
 from verifier.models import Change, Policy, RunResult, Selection, TestOutcome
+from verifier.selection import impactmap
+from verifier.selection.impactmap import ImpactMap
 
 if TYPE_CHECKING:
     from verifier.gitio import Git
@@ -93,7 +93,7 @@ def with_baseline(
 def _run_at_base(
     git: Git, base: str, policy: Policy, selection: Selection, backend: Backend, wanted: list[str]
 ) -> dict[str, str] | None:
-    from verifier import testrun
+    from verifier.testrun import harness as testrun
 
     if not wanted:
         return {}

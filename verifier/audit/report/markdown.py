@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
-from verifier.audit import Audit, Group
-from verifier.auditreport import percent
+from verifier.audit.build import Audit, Group
+from verifier.audit.report import percent
 
 
 def render(audit: Audit) -> str:

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from verifier.diffparse import DIFF_ARGS, RAW_ARGS, parse_diff
+from verifier.change.diff import DIFF_ARGS, RAW_ARGS, parse_diff
 from verifier.errors import CannotVerify, UsageError
 from verifier.gitio import Git
 from verifier.models import INDEX, Change, Commit

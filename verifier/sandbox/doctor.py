@@ -28,7 +28,7 @@ def _facts(name: str) -> list[tuple[str, str]]:
     """Versions and details a backend can tell about itself, for the doctor's listing."""
     if name == "docker":
         try:
-            from verifier.images import docker_facts
+            from verifier.sandbox.images import docker_facts
 
             return docker_facts()
         except Exception as error:  # the doctor reports; it never fails on a missing piece

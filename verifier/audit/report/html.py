@@ -11,8 +11,8 @@ import io
 import re
 from html import escape
 
-from verifier.audit import Audit, AuditCommit, Group, Period
-from verifier.auditreport import percent
+from verifier.audit.build import Audit, AuditCommit, Group, Period
+from verifier.audit.report import percent
 from verifier.errors import UsageError
 
 _STYLE = """

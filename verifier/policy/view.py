@@ -10,7 +10,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
-from verifier.policy import Layer, Located, merge_layers
+from verifier.policy.loader import Layer, Located, merge_layers
 
 RULE_DEFAULT = "rule default"
 _SECTIONS = ("version", "coverage", "tests", "limits", "sandbox", "selection")

@@ -4,14 +4,14 @@ A test is selected when it could behave differently at head than at base:
 
 * it executed, at base, a function the change touches (any changed line, machine-written or not: a
   human line in the same change can break a machine test). The who-tests-what map
-  (:mod:`verifier.impactmap`) says which tests executed which lines; a changed line inside a function's
+  (:mod:`verifier.selection.impactmap`) says which tests executed which lines; a changed line inside a function's
   body stands for the whole function, so that a test that ran the function is selected even when the
   change is on a line it skipped. Lines the function ran at import time, outside any test, make it a
   module-level change;
 * the change adds or modifies its test file (the whole file runs);
 * a module-level line of a file it depends on changed (a constant, an import, a decorator, a class
   body, a default argument): every test that executed the file and every test file that imports it,
-  directly or through other modules (:mod:`verifier.imports`);
+  directly or through other modules (:mod:`verifier.selection.imports`);
 * it failed at base (so that a selection never hides a failure the whole suite would show).
 
 What the map cannot see runs everything: a change to ``conftest.py``, configuration, fixtures' data or
@@ -30,10 +30,10 @@ from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
-from verifier import impactmap
-from verifier.impactmap import IMPORT_TIME, ImpactMap
 from verifier.models import INDEX, Change, FileChange, Policy, Selection
 from verifier.pathglob import matches_any
+from verifier.selection import impactmap
+from verifier.selection.impactmap import IMPORT_TIME, ImpactMap
 
 if TYPE_CHECKING:
     from verifier.gitio import Git
@@ -354,7 +354,7 @@ def innermost(found: list[Function] | None, line: int) -> Function | None:
 
 
 def _importers(git: Git, change: Change, policy: Policy) -> Importers:
-    from verifier.imports import build_graph
+    from verifier.selection.imports import build_graph
 
     graphs: dict[str, object] = {}
 
@@ -370,8 +370,8 @@ def _importers(git: Git, change: Change, policy: Policy) -> Importers:
 def _cached_graph(git: Git, revision: str | None, build):  # type: ignore[no-untyped-def]
     """The import graph of a commit's tree, kept beside the who-tests-what maps (keyed by the tree hash,
     safe to delete); the index and the empty tree are read every time."""
-    from verifier.impactmap import cache_dir, tree_of
-    from verifier.imports import ImportGraph
+    from verifier.selection.impactmap import cache_dir, tree_of
+    from verifier.selection.imports import ImportGraph
 
     if revision is None or revision == INDEX:
         return build()

@@ -84,7 +84,7 @@ def build_parser() -> argparse.ArgumentParser:
                          help="doctor: what works here; build: the docker image for this repository")
     sandbox.add_argument("--rev", default="HEAD", help="build: read the test dependencies at this revision")
 
-    from verifier.auditreport.command import add_audit_command
+    from verifier.cli.audit import add_audit_command
 
     add_audit_command(commands)
     return parser
@@ -126,10 +126,10 @@ def _check(args: argparse.Namespace) -> int:
         if not args.quiet:
             print("verifier: no Model-Written trailer in the message; nothing to verify")
         return 0
-    from verifier.change import RevisionSpec
+    from verifier.change.stage import RevisionSpec
     from verifier.pipeline import Options, verify
     from verifier.report.text import StageDisplay
-    from verifier.verdict import EXIT_CODES
+    from verifier.verdict.decision import EXIT_CODES
 
     spec = RevisionSpec(text=args.spec, staged=args.staged, message=message)
     index_file = os.path.abspath(os.environ["GIT_INDEX_FILE"]) if args.staged and os.environ.get("GIT_INDEX_FILE") \
@@ -147,8 +147,8 @@ def _check(args: argparse.Namespace) -> int:
 
 
 def _merge_reports(args: argparse.Namespace) -> int:
-    from verifier.shards import merge_reports
-    from verifier.verdict import EXIT_CODES
+    from verifier.report.shards import merge_reports
+    from verifier.verdict.decision import EXIT_CODES
 
     report = merge_reports(args.repo, args.reports)
     _record_notes(report, args)
@@ -165,8 +165,8 @@ def _shard(text: str) -> tuple[int, int]:
 
 
 def _deepen(args: argparse.Namespace, progress) -> None:  # type: ignore[no-untyped-def]
-    from verifier.ci import deepen_for
     from verifier.gitio import Git
+    from verifier.integration.ci import deepen_for
 
     deepen_for(Git(Git(args.repo).toplevel()), args.spec, args.deepen, say=progress or (lambda _text: None))
 
@@ -175,8 +175,8 @@ def _record_notes(report, args: argparse.Namespace) -> None:  # type: ignore[no-
     """One git note per checked commit (a --staged check has none yet: its post-commit hook writes it)."""
     if args.no_notes or args.staged or getattr(args, "shard", None):  # a shard's verdict is partial
         return
-    from verifier import notes
     from verifier.gitio import Git
+    from verifier.report import notes
 
     git = Git(Git(args.repo).toplevel())
     warning = notes.try_write_notes(git, report, notes.configured_ref(git, args.notes_ref))
@@ -198,7 +198,7 @@ def _read_message(args: argparse.Namespace) -> str:
 
 
 def _has_machine_trailer(message: str) -> bool:
-    from verifier.trailers import machine_mark
+    from verifier.provenance.trailers import machine_mark
 
     return machine_mark(message) is not None
 
@@ -248,7 +248,7 @@ def _write_error_report(args: argparse.Namespace, message: str, exit_code: int) 
 
 
 def _rules(args: argparse.Namespace) -> int:
-    from verifier.policyview import render_explain, render_rules
+    from verifier.policy.view import render_explain, render_rules
 
     if args.rule is None:
         print(render_rules(), end="")
@@ -266,7 +266,7 @@ def _policy(args: argparse.Namespace) -> int:
     if args.action == "show":
         return _policy_show(args)
     from verifier.gitio import Git
-    from verifier.policy import build_policy, file_layers
+    from verifier.policy.loader import build_policy, file_layers
 
     root = Path(args.repo)
     if Git(root).ok(["rev-parse", "--show-toplevel"]):
@@ -284,8 +284,8 @@ def _policy(args: argparse.Namespace) -> int:
 def _policy_show(args: argparse.Namespace) -> int:
     """The policy a change on top of the current HEAD would be judged by (HEAD is its base)."""
     from verifier.gitio import Git
-    from verifier.policy import build_policy, policy_layers
-    from verifier.policyview import render_show, render_show_json
+    from verifier.policy.loader import build_policy, policy_layers
+    from verifier.policy.view import render_show, render_show_json
 
     git = Git(Git(args.repo).toplevel())
     base = git.resolve("HEAD") if git.has_commits() else None
@@ -296,8 +296,8 @@ def _policy_show(args: argparse.Namespace) -> int:
 
 
 def _hooks(args: argparse.Namespace) -> int:
-    from verifier import hooks
     from verifier.gitio import Git
+    from verifier.integration import hooks
 
     git = Git(args.repo)
     git.toplevel()  # a clear message outside a repository
@@ -319,19 +319,19 @@ def _hooks(args: argparse.Namespace) -> int:
 
 
 def _hook(args: argparse.Namespace) -> int:
-    from verifier.hooks import run_hook
+    from verifier.integration.hooks import run_hook
 
     return run_hook(args.repo, args.name, args.hook_args, sys.stdin if args.name == "pre-push" else ())
 
 
 def _audit(args: argparse.Namespace) -> int:
-    from verifier.auditreport.command import run_audit_command
+    from verifier.cli.audit import run_audit_command
 
     return run_audit_command(args)
 
 
 def _demo(args: argparse.Namespace) -> int:
-    from verifier.demo import run_demo
+    from verifier.demo.scenario import run_demo
 
     return run_demo(args.dir, sandbox=args.sandbox)
 
@@ -339,17 +339,17 @@ def _demo(args: argparse.Namespace) -> int:
 def _sandbox(args: argparse.Namespace) -> int:
     if args.action == "build":
         from verifier.gitio import Git
-        from verifier.images import build_image
+        from verifier.sandbox.images import build_image
 
         git = Git(args.repo)
         tag = build_image(str(git.toplevel()), git.resolve(args.rev), lambda line: print(line, file=sys.stderr))
         print(tag)
         return 0
-    from verifier.doctor import doctor
+    from verifier.sandbox.doctor import doctor
 
     return doctor()
 
 
-if __name__ == "__main__":  # pragma: no cover - python -m verifier.cli
+if __name__ == "__main__":  # pragma: no cover - python -m verifier.cli.main
     sys.exit(main())
 

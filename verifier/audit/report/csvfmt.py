@@ -5,7 +5,7 @@ from __future__ import annotations
 import csv
 import io
 
-from verifier.audit import Audit
+from verifier.audit.build import Audit
 
 COLUMNS = (
     "sha", "date", "agent", "marked", "committer", "author", "subject", "status", "verified", "verdict",

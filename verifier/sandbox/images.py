@@ -8,7 +8,7 @@ Two layers, each tagged with a hash of its inputs so that it is rebuilt only whe
   repository's own test dependencies (read from the *base* revision, which the change cannot edit),
   installed inside with ``pip install --no-index`` from wheels fetched on the host.
 
-``python -m verifier.images default`` builds the image the project's own CI uses
+``python -m verifier.sandbox.images default`` builds the image the project's own CI uses
 (``verifier-sandbox:latest``); :func:`build_image` builds one for a repository. :func:`docker_facts`
 gives ``verifier sandbox doctor`` what it prints about docker.
 """
@@ -441,7 +441,7 @@ def _sdk_version() -> str:
 
 # -- command line (used by sandbox_images/build-offline and .ci/docker-up) -----------------------------
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="python -m verifier.images", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="python -m verifier.sandbox.images", description=__doc__.splitlines()[0])
     commands = parser.add_subparsers(dest="command", required=True)
     commands.add_parser("base", help="build the Debian base image")
     commands.add_parser("default", help=f"build base + pytest + coverage, tagged {DEFAULT_IMAGE}")
@@ -466,7 +466,7 @@ def main(argv: list[str] | None = None) -> int:
         }
         print(builders[args.command]())
     except VerifierError as error:
-        print(f"verifier.images: {error}", file=sys.stderr)
+        print(f"verifier.sandbox.images: {error}", file=sys.stderr)
         return error.exit_code
     return 0
 

@@ -24,7 +24,7 @@ _STATUS_ORDER = ("timeout", "crashed", "collection-error", "harness-error", "no-
 
 def merge_reports(repo: str | Path, paths: Sequence[Path], sandbox: str = "auto") -> Report:
     """The report of the change the shard reports at ``paths`` checked, judged as one run."""
-    from verifier.change import RevisionSpec
+    from verifier.change.stage import RevisionSpec
     from verifier.pipeline import Options, verify
 
     reports = [_read(path) for path in paths]

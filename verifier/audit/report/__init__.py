@@ -1,4 +1,4 @@
-"""Reporters of the audit: one module per format, each turning an :class:`verifier.audit.Audit` into text."""
+"""Reporters of the audit: one module per format, each turning an :class:`verifier.audit.build.Audit` into text."""
 
 from __future__ import annotations
 
@@ -6,13 +6,13 @@ import importlib
 from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:  # the CLI imports this package for the subcommand's arguments; the audit itself is lazy
-    from verifier.audit import Audit
+    from verifier.audit.build import Audit
 
 FORMATS = {
-    "markdown": "verifier.auditreport.markdown:render",
-    "json": "verifier.auditreport.jsonfmt:render",
-    "csv": "verifier.auditreport.csvfmt:render",
-    "html": "verifier.auditreport.html:render",
+    "markdown": "verifier.audit.report.markdown:render",
+    "json": "verifier.audit.report.jsonfmt:render",
+    "csv": "verifier.audit.report.csvfmt:render",
+    "html": "verifier.audit.report.html:render",
 }
 SUFFIX = {"markdown": "md", "json": "json", "csv": "csv", "html": "html"}
 

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 from verifier.gitio import Git
 from verifier.models import Change, MachineMark, Provenance
-from verifier.trailers import machine_mark, path_in_scope
+from verifier.provenance.trailers import machine_mark, path_in_scope
 
 
 def attribute(git: Git, change: Change) -> Provenance:

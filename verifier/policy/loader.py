@@ -204,9 +204,9 @@ SCHEMA: dict[str, Any] = {
 
 def shipped_dir() -> Path:
     """Where the shipped policies are: inside the installed wheel, or the source checkout's ``policies/``."""
-    here = Path(__file__).resolve().parent
-    installed = here / "_policies"
-    return installed if installed.is_dir() else here.parent / "policies"
+    package = Path(__file__).resolve().parents[1]
+    installed = package / "_policies"
+    return installed if installed.is_dir() else package.parent / "policies"
 
 
 def shipped_policies() -> tuple[str, ...]:

@@ -131,7 +131,7 @@ class History:
     span_since: int  # start of the earliest trend week
     end: str | None  # the window-end revision; None when the branch had no commit before ``until``
     commits: tuple[LogCommit, ...]  # the span, parents before children
-    notes: Mapping[str, Mapping[str, Any]]  # commit sha -> note body (see verifier.notes)
+    notes: Mapping[str, Mapping[str, Any]]  # commit sha -> note body (see verifier.report.notes)
     outside: Mapping[str, LogCommit] = field(default_factory=dict)  # reverted commits older than the span
     waivers: tuple[WaiverInfo, ...] = ()
     agent_emails: tuple[str, ...] = ()
@@ -599,11 +599,11 @@ def _cache_dir(git: Git) -> Path:
 def _code_stamp() -> str:
     """What the cached facts were computed by: this module and the trailer parser (an upgraded verifier
     computes them afresh)."""
-    here = Path(__file__).parent
+    package = Path(__file__).resolve().parents[1]
     code = hashlib.sha1(str(_CACHE_VERSION).encode())
-    for name in ("audit.py", "trailers.py"):
+    for name in ("audit/build.py", "provenance/trailers.py"):
         with contextlib.suppress(OSError):
-            code.update((here / name).read_bytes())
+            code.update((package / name).read_bytes())
     return code.hexdigest()
 
 
@@ -647,7 +647,7 @@ def _save_marshal(path: Path, data: Any) -> None:
 
 
 def note_body(text: str) -> Mapping[str, Any]:
-    """A note's JSON body, read as verifier.notes.read_notes reads it: anything but a JSON object comes
+    """A note's JSON body, read as verifier.report.notes.read_notes reads it: anything but a JSON object comes
     back as ``{"format": None, "invalid": why}``."""
     try:
         body = json.loads(text)
@@ -667,7 +667,7 @@ def _policy_facts(git: Git, end: str | None, until: int,
     cached = _load_marshal(cache_file) if cache_file is not None else None
     if isinstance(cached, list) and len(cached) == 2:
         return tuple(WaiverInfo(*w) for w in cached[0]), tuple(cached[1]), []
-    from verifier.policy import load_policy
+    from verifier.policy.loader import load_policy
 
     try:
         policy = load_policy(git, end, today=day)
@@ -684,12 +684,13 @@ def _policy_facts(git: Git, end: str | None, until: int,
 
 def _policy_cache_file(git: Git, end: str | None, day: date) -> Path | None:
     """Where the policy facts of (window-end revision, day, shipped default, policy code) are kept; None
-    when an organisation policy is named (verifier.policy.ORG_POLICY_ENV) or the sources cannot be read."""
+    when an organisation policy is named (verifier.policy.loader.ORG_POLICY_ENV) or the sources cannot be read."""
     if os.environ.get("VERIFIER_ORG_POLICY"):
         return None
-    code = Path(__file__).with_name("policy.py")
-    installed = code.with_name("_policies")  # as verifier.policy.shipped_dir finds the shipped policies
-    shipped = (installed if installed.is_dir() else code.parent.parent / "policies") / "default.yaml"
+    from verifier.policy.loader import shipped_dir
+
+    code = Path(__file__).resolve().parents[1] / "policy" / "loader.py"
+    shipped = shipped_dir() / "default.yaml"
     try:
         sources = [code.read_bytes(), shipped.read_bytes()]
     except OSError:
@@ -727,7 +728,7 @@ class Authorship:
 def authorship(commit: LogCommit, agent_emails: Iterable[str]) -> Authorship | None:
     """Who wrote ``commit``: its Model-Written trailer, else an author, committer or co-author whose
     email is one of the policy's agent identities; None for a person's commit."""
-    from verifier.trailers import machine_mark, parse_trailers
+    from verifier.provenance.trailers import machine_mark, parse_trailers
 
     if "model-written" in commit.message.lower():  # a cheap test first: most commits carry no trailer
         mark = machine_mark(commit.message)
@@ -826,7 +827,7 @@ class _Replay:
         return dict(self.states[parent])
 
     def _fresh(self, position: int, commit: LogCommit, path: str, count: int) -> list[int]:
-        from verifier.trailers import path_in_scope
+        from verifier.provenance.trailers import path_in_scope
 
         scope = self.scopes.get(commit.sha)
         if scope is None or not count or not path_in_scope(path, scope):
@@ -1168,9 +1169,9 @@ def _run_audit(repo: str | os.PathLike[str], request: AuditRequest, now: float |
 
 def recheck(repo: str | os.PathLike[str], audit: Audit, sandbox: str = "auto", progress: Any = None) -> list[str]:
     """Run the gate on each unverified machine commit of ``audit`` and write its note; return the problems."""
-    from verifier.change import RevisionSpec
-    from verifier.notes import write_notes
+    from verifier.change.stage import RevisionSpec
     from verifier.pipeline import Options, verify
+    from verifier.report.notes import write_notes
 
     git = Git(Git(repo).toplevel())
     problems = []

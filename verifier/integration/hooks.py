@@ -38,9 +38,9 @@ SKIP_HINT = "skip in an emergency with VERIFIER_SKIP=1 (or --no-verify); the aud
 
 def shipped_dir() -> Path:
     """Where the hook shims are: inside the installed wheel, or the source checkout's ``hooks/``."""
-    here = Path(__file__).resolve().parent
-    installed = here / "_hooks"
-    return installed if installed.is_dir() else here.parent / "hooks"
+    package = Path(__file__).resolve().parents[1]
+    installed = package / "_hooks"
+    return installed if installed.is_dir() else package.parent / "hooks"
 
 
 def hooks_dir(git: Git) -> Path:
@@ -50,7 +50,7 @@ def hooks_dir(git: Git) -> Path:
 
 def package_home() -> Path:
     """The folder that holds the ``verifier`` package the hooks must import."""
-    return Path(__file__).resolve().parent.parent
+    return Path(__file__).resolve().parents[2]
 
 
 def hook_text(name: str, python: str | None = None, home: str | None = None) -> str:
@@ -183,7 +183,7 @@ def commit_msg(repo: str, message_file: Path) -> int:
         message = message_file.read_text(encoding="utf-8", errors="replace")
     except OSError as error:
         raise UsageError(f"cannot read the message file {message_file}: {error.strerror}") from error
-    from verifier.trailers import machine_mark
+    from verifier.provenance.trailers import machine_mark
 
     if machine_mark(message) is None:
         return EXIT_PASS
@@ -201,7 +201,7 @@ def commit_msg(repo: str, message_file: Path) -> int:
     if report.verdict in ("block", "error"):
         _refuse_commit(git, message_file, "the commit is stopped; the index and working tree are as they were")
         return _exit_code(report)
-    from verifier import notes
+    from verifier.report import notes
 
     if notes.notes_enabled(git):
         notes.save_pending(git, report, notes.staged_tree(git, index_file))
@@ -217,7 +217,7 @@ def _refuse_commit(git: Git, message_file: Path, why: str) -> None:
 
 def save_message(git: Git, message_file: Path) -> Path:
     """Keep the pending message, cleaned as git cleans an edited one, as ``<git dir>/verifier/last-message``."""
-    from verifier.notes import state_dir
+    from verifier.report.notes import state_dir
 
     text = message_file.read_bytes()
     cut = text.find(b"\n# ------------------------ >8 ------------------------\n")
@@ -233,8 +233,8 @@ def save_message(git: Git, message_file: Path) -> Path:
 
 def post_commit(repo: str) -> int:
     """Write the note for the commit just made, from the verdict commit-msg reached on its tree."""
-    from verifier import notes
     from verifier.gitio import Git
+    from verifier.report import notes
 
     git = Git(Git(repo).toplevel())
     try:
@@ -311,7 +311,7 @@ def pushed_specs(git: Git, local: str, remote: str) -> list[str]:
 
 
 def _has_machine_commits(git: Git, spec: str) -> bool:
-    from verifier.trailers import machine_mark
+    from verifier.provenance.trailers import machine_mark
 
     if ".." in spec:
         left, right = spec.split("..", 1)
@@ -325,7 +325,7 @@ def _has_machine_commits(git: Git, spec: str) -> bool:
 
 
 def _verify(git: Git, spec: str | None, staged_message: str | None = None, index_file: str | None = None) -> Report:
-    from verifier.change import RevisionSpec
+    from verifier.change.stage import RevisionSpec
     from verifier.pipeline import Options, verify
 
     sandbox = git.run(["config", "--get", "verifier.sandbox"], check=False).decode().strip() or "auto"
@@ -343,7 +343,7 @@ def _print_report(report: Report) -> None:
 
 
 def _record(git: Git, report: Report) -> None:
-    from verifier import notes
+    from verifier.report import notes
 
     if notes.notes_enabled(git):
         warning = notes.try_write_notes(git, report, notes.configured_ref(git))
@@ -352,7 +352,7 @@ def _record(git: Git, report: Report) -> None:
 
 
 def _exit_code(report: Report) -> int:
-    from verifier.verdict import EXIT_CODES
+    from verifier.verdict.decision import EXIT_CODES
 
     return EXIT_CODES[report.verdict] if report.verdict != "pass" else EXIT_PASS
 

@@ -11,7 +11,7 @@ from __future__ import annotations
 import tempfile
 from pathlib import Path
 
-from verifier.scratch import ScratchRepo
+from verifier.demo.scratch import ScratchRepo
 
 AGENT = "quill-assist/2.3"
 
@@ -113,7 +113,7 @@ def build(path: Path) -> tuple[ScratchRepo, list[tuple[str, str]]]:
 
 def run_demo(where: Path | None, sandbox: str = "auto") -> int:
     """Build the demo repository and run the gate on each assistant commit; 0 when all went as expected."""
-    from verifier.change import RevisionSpec
+    from verifier.change.stage import RevisionSpec
     from verifier.pipeline import Options, verify
     from verifier.report import render
 

@@ -92,7 +92,7 @@ def from_run(tree: str, environment: str, run: RunResult) -> ImpactMap | None:
 def build(git: Git, revision: str, policy: Policy, backend: Backend, environment: str) -> tuple[ImpactMap | None,
                                                                                                    RunResult]:
     """Run the whole suite at ``revision`` in the sandbox and make its map (None when the run failed)."""
-    from verifier import testrun
+    from verifier.testrun import harness as testrun
 
     run = testrun.read_run(testrun.run_revision(git, revision, policy, Selection(whole_suite=True), backend))
     return from_run(tree_of(git, revision), environment, run), run
@@ -106,7 +106,7 @@ def environment_key(policy: Policy, backend: Backend) -> str:
     """What besides the tree decides which lines the tests execute: interpreter, packages, sandbox, settings."""
     from importlib import metadata
 
-    from verifier import testrun
+    from verifier.testrun import harness as testrun
 
     distributions = sorted(f"{d.metadata['Name']}=={d.version}" for d in metadata.distributions())
     facts = {

@@ -1,0 +1,1 @@
+"""The change stage: a revision spec becomes a Change (base, head, commits, files, hunks)."""

@@ -1,0 +1,1 @@
+"""Where the gate meets git and CI: the hooks it installs and the helpers CI runs."""

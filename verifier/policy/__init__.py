@@ -1,0 +1,1 @@
+"""The policy stage: the trusted policy, read from the base revision, validated, with waivers."""

@@ -1,0 +1,1 @@
+"""The provenance stage: which added lines a model wrote (trailers, blame through the range)."""

@@ -1,0 +1,1 @@
+"""The selection stage: which tests can observe the machine-written lines."""

@@ -1,0 +1,1 @@
+"""The verdict stage: findings, judged by the policy, become pass, warn, block or error."""
