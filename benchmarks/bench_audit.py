@@ -87,16 +87,29 @@ def generate(path: Path, commits: int, seed: int = 7) -> None:
         else:
             module = rnd.choice(list(modules))
             _edit(rnd, modules[module], number)
-            stream += _commit(number, b"main", when, _message(number, machine), [main_tip] if main_tip else [],
-                              {module: "".join(modules[module])})
+            stream += _commit(
+                number,
+                b"main",
+                when,
+                _message(number, machine),
+                [main_tip] if main_tip else [],
+                {module: "".join(modules[module])},
+            )
             main_tip = number
         if machine and rnd.random() < 0.8:
             notes.append((number, rnd.choice(["pass", "pass", "pass", "warn", "block"])))
     stream += b"commit refs/notes/verifier\ncommitter %s %d +0000\n" % (PERSON, START + commits * STEP + 60)
     stream += _data("Notes of the gate")
     for mark, verdict in notes:
-        body = {"format": 1, "tool": "verifier", "verdict": verdict, "agent": "quill-assist/2.3",
-                "coverage": {"executable": 4, "covered": 4, "percent": 100.0}, "findings": [], "waivers": []}
+        body = {
+            "format": 1,
+            "tool": "verifier",
+            "verdict": verdict,
+            "agent": "quill-assist/2.3",
+            "coverage": {"executable": 4, "covered": 4, "percent": 100.0},
+            "findings": [],
+            "waivers": [],
+        }
         stream += b"N inline :%d\n" % mark + _data(json.dumps(body))
     subprocess.run(["git", "fast-import", "--quiet"], cwd=path, input=bytes(stream), check=True)
 
@@ -120,8 +133,24 @@ def main() -> int:
         until = time.strftime("%Y-%m-%d", time.gmtime(START + (args.commits + 1) * STEP))
         request = AuditRequest(since=since, until=until, weeks=0)
         log = ["git", "-C", str(repo), "log", "--notes=verifier", f"--format={BASELINE_FORMAT}", "main"]
-        cli = [sys.executable, "-m", "verifier", "-C", str(repo), "audit", "--since", since, "--until", until,
-               "--weeks", "0", "--format", "json", "--output", str(Path(scratch) / "audit.json")]
+        cli = [
+            sys.executable,
+            "-m",
+            "verifier",
+            "-C",
+            str(repo),
+            "audit",
+            "--since",
+            since,
+            "--until",
+            until,
+            "--weeks",
+            "0",
+            "--format",
+            "json",
+            "--output",
+            str(Path(scratch) / "audit.json"),
+        ]
 
         def baseline() -> None:
             subprocess.run(log, stdout=subprocess.DEVNULL, check=True)
@@ -151,10 +180,13 @@ def main() -> int:
             span_times.append(_seconds(new_span))
             cli_times.append(_seconds(command_line))
         git_log, warm, notes, span, whole = (
-            statistics.median(t) for t in (git_times, audit_times, notes_times, span_times, cli_times))
+            statistics.median(t) for t in (git_times, audit_times, notes_times, span_times, cli_times)
+        )
         w = audit.window
-        print(f"history: {w.commits} commits, {w.machine_commits} machine-written, {w.machine_lines_added} machine "
-              f"lines ({w.machine_lines_alive} alive), {w.unverified} unverified, {w.blocked_merged} blocked-merged")
+        print(
+            f"history: {w.commits} commits, {w.machine_commits} machine-written, {w.machine_lines_added} machine "
+            f"lines ({w.machine_lines_alive} alive), {w.unverified} unverified, {w.blocked_merged} blocked-merged"
+        )
         print(f"git log with messages and notes: {git_log * 1000:.0f} ms (median of {args.rounds})")
         print(f"first audit, no cache:           {first * 1000:.0f} ms  ratio {first / git_log:.2f}x")
         print(f"audit again (cache):             {warm * 1000:.0f} ms  ratio {warm / git_log:.2f}x  (bar: 2x)")

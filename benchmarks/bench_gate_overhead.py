@@ -24,8 +24,22 @@ CHANGE_TARGET = ("boltons/strutils.py", "def bytes2human(", "    # quill-assist:
 
 def fetch_sdist(requirement: str, folder: Path) -> Path:
     """Download and unpack the sdist of ``requirement``; return the unpacked project folder."""
-    subprocess.run([sys.executable, "-m", "pip", "download", "-q", "--no-deps", "--no-binary", ":all:",
-                    "-d", str(folder), requirement], check=True)
+    subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "pip",
+            "download",
+            "-q",
+            "--no-deps",
+            "--no-binary",
+            ":all:",
+            "-d",
+            str(folder),
+            requirement,
+        ],
+        check=True,
+    )
     archive = next(folder.glob("*.tar.gz"))
     with tarfile.open(archive) as sdist:
         sdist.extractall(folder, filter="data") if hasattr(tarfile, "data_filter") else sdist.extractall(folder)
@@ -59,8 +73,13 @@ def main() -> None:
         plain = [sys.executable, "-m", "coverage", "run", "--branch", "-m", "pytest", "-q", "-p", "no:cacheprovider"]
         outcome = subprocess.run(gate, capture_output=True, text=True)
         print(f"gate verdict on the change (exit {outcome.returncode}):\n{outcome.stdout[-800:]}")
-        result = compare("verifier check (sandbox, coverage, contexts)", run_command(gate),
-                         "coverage run -m pytest", run_command(plain, cwd=plain_tree), runs=3)
+        result = compare(
+            "verifier check (sandbox, coverage, contexts)",
+            run_command(gate),
+            "coverage run -m pytest",
+            run_command(plain, cwd=plain_tree),
+            runs=3,
+        )
     print(f"library: {requirement}")
     print(result.describe())
     print(f"bar: at most 1.3x -> {'met' if result.ratio <= 1.3 else 'NOT met'}")

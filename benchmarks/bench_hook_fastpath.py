@@ -22,7 +22,8 @@ def main() -> None:
             run_command([*gate, "check", "--staged", "--message-file", str(message), "--quiet"], cwd=folder),
             "python -c pass",
             run_command([sys.executable, "-c", "pass"]),
-            runs=30, warmup=3,
+            runs=30,
+            warmup=3,
         )
     print(result.describe())
     print(f"bar: at most 1.5x -> {'met' if result.ratio <= 1.5 else 'NOT met'}")

@@ -40,22 +40,45 @@ def main() -> None:
         hooked, plain = ScratchRepo(base / "hooked"), ScratchRepo(base / "plain")
         for repo in (hooked, plain):
             repo.commit("Start", {"README.md": "parcelkit\n"})
-        subprocess.run([sys.executable, "-m", "verifier", "hooks", "install"], cwd=hooked.path, env=env,
-                       check=True, capture_output=True)
+        subprocess.run(
+            [sys.executable, "-m", "verifier", "hooks", "install"],
+            cwd=hooked.path,
+            env=env,
+            check=True,
+            capture_output=True,
+        )
         unmarked, names_key = base / "MSG1", base / "MSG2"
         unmarked.write_text(UNMARKED)
         names_key.write_text(NAMES_THE_KEY)
         hook = hooked.path / ".git" / "hooks" / "commit-msg"
         bare = run_command([sys.executable, "-c", "pass"])
         results = [
-            compare("commit-msg hook, unmarked message", run_command([str(hook), str(unmarked)], cwd=hooked.path),
-                    "python -c pass", bare, runs=40, warmup=3),
-            compare("verifier hook commit-msg (Python path, no trailer)",
-                    run_command([sys.executable, "-c", ENTRY, str(ROOT), "hook", "commit-msg", str(names_key)],
-                                cwd=hooked.path),
-                    "python -c pass", bare, runs=40, warmup=3),
-            compare("git commit with the hooks", committer(hooked.path, env),
-                    "git commit without hooks", committer(plain.path, env), runs=40, warmup=3),
+            compare(
+                "commit-msg hook, unmarked message",
+                run_command([str(hook), str(unmarked)], cwd=hooked.path),
+                "python -c pass",
+                bare,
+                runs=40,
+                warmup=3,
+            ),
+            compare(
+                "verifier hook commit-msg (Python path, no trailer)",
+                run_command(
+                    [sys.executable, "-c", ENTRY, str(ROOT), "hook", "commit-msg", str(names_key)], cwd=hooked.path
+                ),
+                "python -c pass",
+                bare,
+                runs=40,
+                warmup=3,
+            ),
+            compare(
+                "git commit with the hooks",
+                committer(hooked.path, env),
+                "git commit without hooks",
+                committer(plain.path, env),
+                runs=40,
+                warmup=3,
+            ),
         ]
     for result in results:
         print(result.describe())

@@ -19,8 +19,9 @@ TEST = "def test_sum():\n    assert sum(range(10)) == 45\n"
 
 
 def request(tree: Path, args: tuple[str, ...]) -> SandboxRequest:
-    return SandboxRequest(tree=str(tree), python_args=args, env={"LANG": "C.UTF-8"},
-                          limits=Limits(wall_seconds=120), collect=())
+    return SandboxRequest(
+        tree=str(tree), python_args=args, env={"LANG": "C.UTF-8"}, limits=Limits(wall_seconds=120), collect=()
+    )
 
 
 def main() -> None:
@@ -34,10 +35,20 @@ def main() -> None:
         (tree / "test_small.py").write_text(TEST)
         trivial = request(tree, ("-c", "pass"))
         pytest_run = request(tree, ("-m", "pytest", "-q", "-p", "no:cacheprovider", "test_small.py"))
-        start = compare("docker: python -c pass", lambda: docker.run(trivial),
-                        "namespace: python -c pass", lambda: namespace.run(trivial), runs=10)
-        small = compare("docker: pytest, one test", lambda: docker.run(pytest_run),
-                        "namespace: pytest, one test", lambda: namespace.run(pytest_run), runs=10)
+        start = compare(
+            "docker: python -c pass",
+            lambda: docker.run(trivial),
+            "namespace: python -c pass",
+            lambda: namespace.run(trivial),
+            runs=10,
+        )
+        small = compare(
+            "docker: pytest, one test",
+            lambda: docker.run(pytest_run),
+            "namespace: pytest, one test",
+            lambda: namespace.run(pytest_run),
+            runs=10,
+        )
     print("start latency (trivial command):", start.describe())
     print("per-run overhead (a small pytest run):", small.describe())
 

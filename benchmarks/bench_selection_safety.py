@@ -33,9 +33,18 @@ LIBRARIES = ("toolz==1.0.0", "more-itertools==10.5.0")
 POLICY = "selection:\n  mode: smart\ncoverage:\n  threshold: 0\n"
 AGENT = "quill-assist/2.3"
 # (text in a line, replacement): the kinds of slip a model makes in a plausible-looking edit
-MUTATIONS = ((" == ", " != "), (" < ", " <= "), (" > ", " >= "), (" + 1", " + 2"), (" - 1", " - 2"),
-             (" and ", " or "), ("return True", "return False"), ("return False", "return True"),
-             (" is None", " is not None"), (" not in ", " in "))
+MUTATIONS = (
+    (" == ", " != "),
+    (" < ", " <= "),
+    (" > ", " >= "),
+    (" + 1", " + 2"),
+    (" - 1", " - 2"),
+    (" and ", " or "),
+    ("return True", "return False"),
+    ("return False", "return True"),
+    (" is None", " is not None"),
+    (" not in ", " in "),
+)
 SEED = 6
 
 
@@ -51,8 +60,11 @@ class Fault:
 def library_sources(root: Path) -> list[Path]:
     """The library's own Python files: not tests, not packaging or documentation helpers."""
     skip = re.compile(r"(^|/)(tests?|docs?|doc|benchmarks?|examples?)/|(^|/)(setup|versioneer|conftest)\.py$")
-    return [p for p in sorted(root.rglob("*.py"))
-            if not skip.search(p.relative_to(root).as_posix()) and not p.name.startswith("test_")]
+    return [
+        p
+        for p in sorted(root.rglob("*.py"))
+        if not skip.search(p.relative_to(root).as_posix()) and not p.name.startswith("test_")
+    ]
 
 
 def candidate_faults(root: Path) -> list[Fault]:
@@ -63,18 +75,27 @@ def candidate_faults(root: Path) -> list[Fault]:
             tree = ast.parse(text)
         except SyntaxError:
             continue
-        body_lines = {line for node in ast.walk(tree) if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef))
-                      for line in range(node.body[0].lineno, (node.end_lineno or 0) + 1)}
-        strings = {line for node in ast.walk(tree) if isinstance(node, ast.Constant) and isinstance(node.value, str)
-                   for line in range(node.lineno, (node.end_lineno or node.lineno) + 1)}  # docstrings, literals
+        body_lines = {
+            line
+            for node in ast.walk(tree)
+            if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef))
+            for line in range(node.body[0].lineno, (node.end_lineno or 0) + 1)
+        }
+        strings = {
+            line
+            for node in ast.walk(tree)
+            if isinstance(node, ast.Constant) and isinstance(node.value, str)
+            for line in range(node.lineno, (node.end_lineno or node.lineno) + 1)
+        }  # docstrings, literals
         for number, row in enumerate(text.split("\n"), start=1):
             if row.lstrip().startswith("#") or number in strings:
                 continue
             for old, new in MUTATIONS:
                 if old in row:
                     where = "function" if number in body_lines else "module"
-                    faults.append(Fault(file.relative_to(root).as_posix(), number, row, row.replace(old, new, 1),
-                                        where))
+                    faults.append(
+                        Fault(file.relative_to(root).as_posix(), number, row, row.replace(old, new, 1), where)
+                    )
                     break
     return faults
 
@@ -93,8 +114,24 @@ def commit_fault(repo: ScratchRepo, base: str, fault: Fault) -> str:
 
 def gate_failures(repo: ScratchRepo, sha: str, out: Path) -> tuple[set[str], int, str]:
     report_file = out / f"gate-{sha[:12]}.json"
-    done = subprocess.run([sys.executable, "-m", "verifier", "-C", str(repo.path), "check", sha, "--quiet",
-                           "--format", "json", "--output", str(report_file)], capture_output=True, text=True)
+    done = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "verifier",
+            "-C",
+            str(repo.path),
+            "check",
+            sha,
+            "--quiet",
+            "--format",
+            "json",
+            "--output",
+            str(report_file),
+        ],
+        capture_output=True,
+        text=True,
+    )
     if not report_file.exists():
         raise SystemExit(f"the gate wrote no report (exit {done.returncode}): {done.stderr[-2000:]}")
     report = json.loads(report_file.read_text())
@@ -110,9 +147,13 @@ def suite_failures(repo: ScratchRepo, sha: str, out: Path) -> tuple[set[str], in
     archive = subprocess.run(["git", "archive", sha], cwd=repo.path, capture_output=True, check=True).stdout
     subprocess.run(["tar", "-x", "-C", str(tree)], input=archive, check=True)
     junit = out / f"junit-{sha[:12]}.xml"
-    subprocess.run([sys.executable, "-m", "pytest", "-q", "-p", "no:cacheprovider", "--rootdir=.",
-                    f"--junitxml={junit}", "-rfE"], cwd=tree, capture_output=True, text=True,
-                   env={"PATH": "/usr/bin:/bin", "PYTHONPATH": ".:src", "PYTHONHASHSEED": "0"})
+    subprocess.run(
+        [sys.executable, "-m", "pytest", "-q", "-p", "no:cacheprovider", "--rootdir=.", f"--junitxml={junit}", "-rfE"],
+        cwd=tree,
+        capture_output=True,
+        text=True,
+        env={"PATH": "/usr/bin:/bin", "PYTHONPATH": ".:src", "PYTHONHASHSEED": "0"},
+    )
     return _junit_failures(junit, tree)
 
 
@@ -164,15 +205,21 @@ def main() -> None:
                 total_failures += len(full)
                 fractions.append(ran / suite_size if suite_size else 0.0)
                 print(f"  {fault.path}:{fault.line} ({fault.where}) {fault.old.strip()!r} -> {fault.new.strip()!r}")
-                print(f"    suite: {len(full)} failing of {suite_size}; gate: ran {ran} ({ran / suite_size:.1%}), "
-                      f"{len(gate)} failing, map {map_status}; missed {len(missed)}")
+                print(
+                    f"    suite: {len(full)} failing of {suite_size}; gate: ran {ran} ({ran / suite_size:.1%}), "
+                    f"{len(gate)} failing, map {map_status}; missed {len(missed)}"
+                )
                 for test in sorted(missed):
                     print(f"    MISSED {test}")
-    print(f"\ntotal: {total_failures} failures in the whole suites, missed by the gate: {total_missed} (bar: 0) -> "
-          f"{'met' if total_missed == 0 else 'NOT met'}")
+    print(
+        f"\ntotal: {total_failures} failures in the whole suites, missed by the gate: {total_missed} (bar: 0) -> "
+        f"{'met' if total_missed == 0 else 'NOT met'}"
+    )
     if fractions:
-        print(f"fraction of the suite the gate ran: mean {sum(fractions) / len(fractions):.1%}, "
-              f"min {min(fractions):.1%}, max {max(fractions):.1%}")
+        print(
+            f"fraction of the suite the gate ran: mean {sum(fractions) / len(fractions):.1%}, "
+            f"min {min(fractions):.1%}, max {max(fractions):.1%}"
+        )
 
 
 if __name__ == "__main__":

@@ -44,7 +44,7 @@ def price_{n}(weight: float, zone: str = "home") -> float:
 def archive_{n}(folder: str) -> None:
     sp.run(["tar", "czf", "out.tgz", folder], check=True)
 '''
-TEST = '''import pytest
+TEST = """import pytest
 
 from parcelkit.zone_{n} import price_{n}
 
@@ -57,7 +57,7 @@ def test_price_{n}(weight, expected):
 def test_rejects_{n}():
     with pytest.raises(ValueError, match="positive"):
         price_{n}(0)
-'''
+"""
 
 
 def build(root: Path):  # type: ignore[no-untyped-def]
@@ -79,8 +79,10 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as folder:
         context = build(Path(folder))
         sources = {p: t for p, t in context.head_sources.items() if p.endswith(".py")}
-        print(f"{context.provenance.machine_line_count} machine-written lines in {len(sources)} Python files "
-              f"(and {sum(1 for p in context.base_sources if p.endswith('.py'))} base versions)")
+        print(
+            f"{context.provenance.machine_line_count} machine-written lines in {len(sources)} Python files "
+            f"(and {sum(1 for p in context.base_sources if p.endswith('.py'))} base versions)"
+        )
 
         git = Git(Path(folder) / "repo")
 

@@ -25,8 +25,10 @@ class Comparison:
         return statistics.median(a / b for a, b in zip(self.seconds_a, self.seconds_b, strict=True))
 
     def describe(self) -> str:
-        return (f"{self.name_a}: median {statistics.median(self.seconds_a):.3f}s | {self.name_b}: median "
-                f"{statistics.median(self.seconds_b):.3f}s | ratio A/B (median of pairs) {self.ratio:.2f}")
+        return (
+            f"{self.name_a}: median {statistics.median(self.seconds_a):.3f}s | {self.name_b}: median "
+            f"{statistics.median(self.seconds_b):.3f}s | ratio A/B (median of pairs) {self.ratio:.2f}"
+        )
 
 
 def timed(action: Callable[[], object]) -> float:
@@ -40,8 +42,14 @@ def run_command(argv: Sequence[str], **kwargs: object) -> Callable[[], object]:
     return lambda: subprocess.run(argv, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, **kwargs)
 
 
-def compare(name_a: str, action_a: Callable[[], object], name_b: str, action_b: Callable[[], object],
-            runs: int = 5, warmup: int = 1) -> Comparison:
+def compare(
+    name_a: str,
+    action_a: Callable[[], object],
+    name_b: str,
+    action_b: Callable[[], object],
+    runs: int = 5,
+    warmup: int = 1,
+) -> Comparison:
     """Time ``action_a`` and ``action_b`` alternately, after ``warmup`` unmeasured rounds."""
     for _ in range(warmup):
         action_a()

@@ -47,15 +47,34 @@ def test_sandbox() -> str:
 test_sandbox.__test__ = False  # type: ignore[attr-defined]  # a helper, not a test
 
 
-def run_check(repo: ScratchRepo | Path, *args: str, sandbox: str | None = None, env: dict | None = None,
-              timeout: float = 300) -> Outcome:
+def run_check(
+    repo: ScratchRepo | Path, *args: str, sandbox: str | None = None, env: dict | None = None, timeout: float = 300
+) -> Outcome:
     """Run ``verifier check`` as a real process with a JSON report; return code, output and report."""
     path = repo.path if isinstance(repo, ScratchRepo) else repo
     report_file = path.parent / f"report-{os.getpid()}-{hashlib.sha1(str(args).encode()).hexdigest()[:8]}.json"
-    command = [sys.executable, "-m", "verifier", "-C", str(path), "check", *args,
-               "--sandbox", sandbox or test_sandbox(), "--format", "json", "--output", str(report_file)]
-    done = subprocess.run(command, capture_output=True, text=True, timeout=timeout,
-                          env={**os.environ, "PYTHONPATH": str(ROOT), **(env or {})})
+    command = [
+        sys.executable,
+        "-m",
+        "verifier",
+        "-C",
+        str(path),
+        "check",
+        *args,
+        "--sandbox",
+        sandbox or test_sandbox(),
+        "--format",
+        "json",
+        "--output",
+        str(report_file),
+    ]
+    done = subprocess.run(
+        command,
+        capture_output=True,
+        text=True,
+        timeout=timeout,
+        env={**os.environ, "PYTHONPATH": str(ROOT), **(env or {})},
+    )
     report = json.loads(report_file.read_text()) if report_file.exists() else None
     report_file.unlink(missing_ok=True)
     return Outcome(done.returncode, done.stdout, done.stderr, report)
@@ -77,14 +96,18 @@ def tree(tmp_path: Path) -> Path:
 
 def snapshot(path: Path) -> dict[str, str]:
     """Everything a run must leave byte-identical: HEAD, refs, index, stash, working tree, untracked files."""
+
     def git(*args: str) -> str:
         return subprocess.run(["git", *args], cwd=path, capture_output=True, text=True).stdout
 
     state = {
         "HEAD": git("rev-parse", "HEAD") + git("symbolic-ref", "-q", "HEAD"),
         # the gate's own notes ref is the one ref a check may write (verifier.report.notes)
-        "refs": "".join(line for line in git("for-each-ref", "--format=%(refname) %(objectname)")
-                        .splitlines(keepends=True) if not line.startswith("refs/notes/verifier ")),
+        "refs": "".join(
+            line
+            for line in git("for-each-ref", "--format=%(refname) %(objectname)").splitlines(keepends=True)
+            if not line.startswith("refs/notes/verifier ")
+        ),
         "stash": git("stash", "list"),
         "status": git("status", "--porcelain=v2", "--untracked-files=all", "--ignored"),
     }

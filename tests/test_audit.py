@@ -15,8 +15,9 @@ from tests.conftest import ROOT, machine
 from verifier.audit.build import AuditRequest, FilePatch, parse_patch, run_audit
 from verifier.demo.scratch import ScratchRepo
 
-WINDOW = AuditRequest(since="2024-03-04", until="2024-03-10", weeks=2,
-                      agent_emails=("quill-assist@quillfeather.example",))
+WINDOW = AuditRequest(
+    since="2024-03-04", until="2024-03-10", weeks=2, agent_emails=("quill-assist@quillfeather.example",)
+)
 AGENT_IDENTITY = ("quill-assist", "quill-assist@quillfeather.example")
 NOTES = "refs/notes/verifier"
 
@@ -26,11 +27,22 @@ def _date(day: str, hour: int = 12) -> str:
 
 
 def _note(repo: ScratchRepo, sha: str, verdict: str, findings=(), waivers=(), percent=100.0) -> None:
-    body = {"format": 1, "tool": "verifier", "version": "0.1.0", "checked_at": "2024-03-04T00:00:00Z",
-            "commit": sha, "range": {"base": None, "head": sha}, "verdict": verdict, "agent": "quill-assist/2.3",
-            "machine_lines": 0, "coverage": {"executable": 4, "covered": 4, "percent": percent},
-            "tests": {"run": 3, "failed": 0}, "findings": list(findings), "waivers": list(waivers),
-            "sandbox": "namespace"}
+    body = {
+        "format": 1,
+        "tool": "verifier",
+        "version": "0.1.0",
+        "checked_at": "2024-03-04T00:00:00Z",
+        "commit": sha,
+        "range": {"base": None, "head": sha},
+        "verdict": verdict,
+        "agent": "quill-assist/2.3",
+        "machine_lines": 0,
+        "coverage": {"executable": 4, "covered": 4, "percent": percent},
+        "tests": {"run": 3, "failed": 0},
+        "findings": list(findings),
+        "waivers": list(waivers),
+        "sandbox": "namespace",
+    }
     repo.git("notes", f"--ref={NOTES}", "add", "-m", json.dumps(body), sha)  # the contract: one JSON note
 
 
@@ -44,18 +56,27 @@ def history(tmp_path_factory: pytest.TempPathFactory) -> tuple[ScratchRepo, dict
     a rewrite, a side branch merged, a revert, an unmarked commit by the assistant's identity."""
     repo = ScratchRepo(tmp_path_factory.mktemp("audit") / "repo")
     c: dict[str, str] = {}
-    c["base"] = repo.commit("Start parcelkit", {"parcelkit/rates.py": _lines("rate", 3), "README.md": "parcelkit\n"},
-                            date=_date("02-20"))
+    c["base"] = repo.commit(
+        "Start parcelkit", {"parcelkit/rates.py": _lines("rate", 3), "README.md": "parcelkit\n"}, date=_date("02-20")
+    )
     c["M0"] = repo.commit(machine("Old helper"), {"parcelkit/old.py": _lines("old", 2)}, date=_date("02-28"))
     _note(repo, c["M0"], "pass")
     c["M1"] = repo.commit(machine("Add zones"), {"parcelkit/zones.py": _lines("zone", 4)}, date=_date("03-04", 10))
     _note(repo, c["M1"], "pass")
     c["H1"] = repo.commit("Tune rates", {"parcelkit/rates.py": _lines("rate", 5)}, date=_date("03-04"))
     _note(repo, c["H1"], "pass")  # a person's commit with a note: not counted
-    c["M2"] = repo.commit(machine("More rates", agent="quill-assist/2.4"),
-                          {"parcelkit/rates.py": _lines("rate", 5) + _lines("surcharge", 3)}, date=_date("03-05", 9))
-    finding = {"rule": "coverage.new-lines", "severity": "block", "path": "parcelkit/rates.py", "line": 6,
-               "message": "not run"}
+    c["M2"] = repo.commit(
+        machine("More rates", agent="quill-assist/2.4"),
+        {"parcelkit/rates.py": _lines("rate", 5) + _lines("surcharge", 3)},
+        date=_date("03-05", 9),
+    )
+    finding = {
+        "rule": "coverage.new-lines",
+        "severity": "block",
+        "path": "parcelkit/rates.py",
+        "line": 6,
+        "message": "not run",
+    }
     _note(repo, c["M2"], "block", findings=[finding], percent=0)
     c["M3"] = repo.commit(machine("Add labels"), {"parcelkit/labels.py": _lines("label", 5)}, date=_date("03-05"))
     zones = _lines("zone", 4).split("\n")
@@ -63,8 +84,14 @@ def history(tmp_path_factory: pytest.TempPathFactory) -> tuple[ScratchRepo, dict
     c["H2"] = repo.commit("Fix two zones", {"parcelkit/zones.py": "\n".join(zones)}, date=_date("03-06"))
     repo.git("checkout", "-q", "-b", "feature")
     c["M4"] = repo.commit(machine("Tracking"), {"parcelkit/track.py": _lines("track", 3)}, date=_date("03-07", 9))
-    _note(repo, c["M4"], "warn", waivers=[{"rule": "patch.size", "path": "parcelkit/**", "reason": "big",
-                                            "owner": "ada", "expires": "2024-04-01"}])
+    _note(
+        repo,
+        c["M4"],
+        "warn",
+        waivers=[
+            {"rule": "patch.size", "path": "parcelkit/**", "reason": "big", "owner": "ada", "expires": "2024-04-01"}
+        ],
+    )
     repo.git("checkout", "-q", "main")
     c["H3"] = repo.commit("Readme", {"README.md": "parcelkit\nrates and zones\n"}, date=_date("03-07"))
     dated = {"GIT_AUTHOR_DATE": _date("03-08"), "GIT_COMMITTER_DATE": _date("03-08")}
@@ -73,10 +100,12 @@ def history(tmp_path_factory: pytest.TempPathFactory) -> tuple[ScratchRepo, dict
     revert_date = {"GIT_AUTHOR_DATE": _date("03-09", 9), "GIT_COMMITTER_DATE": _date("03-09", 9)}
     repo.git("revert", "--no-edit", c["M3"], env=revert_date)
     c["R"] = repo.head()
-    c["U"] = repo.commit("Util helpers", {"parcelkit/util.py": _lines("util", 2)}, date=_date("03-09"),
-                         author=AGENT_IDENTITY)
-    c["M5"] = repo.commit(machine("One more zone"), {"parcelkit/zones.py": "\n".join(zones) + "zone_five = 5\n"},
-                          date=_date("03-10"))
+    c["U"] = repo.commit(
+        "Util helpers", {"parcelkit/util.py": _lines("util", 2)}, date=_date("03-09"), author=AGENT_IDENTITY
+    )
+    c["M5"] = repo.commit(
+        machine("One more zone"), {"parcelkit/zones.py": "\n".join(zones) + "zone_five = 5\n"}, date=_date("03-10")
+    )
     repo.git("notes", f"--ref={NOTES}", "add", "-m", "not json {", c["M5"])
     c["after"] = repo.commit("Drop zones", remove=("parcelkit/zones.py",), date=_date("03-12"))
     return repo, c
@@ -193,8 +222,9 @@ def test_agent_identities_come_from_the_trusted_policy(tmp_path: Path):
     repo = ScratchRepo(tmp_path / "repo")
     policy = f"version: 1\naudit:\n  agent_identities: [{AGENT_IDENTITY[1]}]\n"
     repo.commit("Start", {"verifier.yaml": policy, "parcelkit/rates.py": _lines("rate", 2)}, date=_date("03-01"))
-    unmarked = repo.commit("Helpers", {"parcelkit/util.py": _lines("util", 3)}, date=_date("03-05"),
-                           author=AGENT_IDENTITY)
+    unmarked = repo.commit(
+        "Helpers", {"parcelkit/util.py": _lines("util", 3)}, date=_date("03-05"), author=AGENT_IDENTITY
+    )
     repo.commit("Human edit", {"parcelkit/rates.py": _lines("rate", 3)}, date=_date("03-06"))
     audit = run_audit(repo.path, AuditRequest(since="2024-03-04", until="2024-03-10", weeks=0))
     assert [(r.sha, r.agent, r.marked) for r in audit.commits] == [(unmarked, AGENT_IDENTITY[1], False)]
@@ -220,19 +250,57 @@ def test_cli_formats(history, tmp_path: Path):
     before = repo.git("for-each-ref") + repo.git("status", "--porcelain")
     out = tmp_path / "out"
     done = subprocess.run(
-        [sys.executable, "-m", "verifier", "-C", str(repo.path), "audit", "--since", "2024-03-04", "--until",
-         "2024-03-10", "--weeks", "2", "--agent-email", AGENT_IDENTITY[1], "--format", "json", "--format", "csv",
-         "--format", "markdown", "--output", str(out)],
-        capture_output=True, text=True, env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"}, check=False,
+        [
+            sys.executable,
+            "-m",
+            "verifier",
+            "-C",
+            str(repo.path),
+            "audit",
+            "--since",
+            "2024-03-04",
+            "--until",
+            "2024-03-10",
+            "--weeks",
+            "2",
+            "--agent-email",
+            AGENT_IDENTITY[1],
+            "--format",
+            "json",
+            "--format",
+            "csv",
+            "--format",
+            "markdown",
+            "--output",
+            str(out),
+        ],
+        capture_output=True,
+        text=True,
+        env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"},
+        check=False,
     )
     assert done.returncode == 0, done.stderr
     report = json.loads((out / "audit.json").read_text())
     assert report["format"] == 1
     assert report["window"] == {"since": "2024-03-04T00:00:00Z", "until": "2024-03-11T00:00:00Z"}
-    assert {k: report["totals"][k] for k in ("commits", "machine_commits", "unverified", "blocked_merged",
-                                             "machine_lines_added", "machine_lines_alive")} == {
-        "commits": 11, "machine_commits": 6, "unverified": 3, "blocked_merged": 1, "machine_lines_added": 18,
-        "machine_lines_alive": 11}
+    assert {
+        k: report["totals"][k]
+        for k in (
+            "commits",
+            "machine_commits",
+            "unverified",
+            "blocked_merged",
+            "machine_lines_added",
+            "machine_lines_alive",
+        )
+    } == {
+        "commits": 11,
+        "machine_commits": 6,
+        "unverified": 3,
+        "blocked_merged": 1,
+        "machine_lines_added": 18,
+        "machine_lines_alive": 11,
+    }
     first = report["commits"][0]
     assert set(first) >= {"sha", "agent", "committer", "verified", "verdict"} and first["verified"] is False
     rows = list(csv.DictReader(io.StringIO((out / "audit.csv").read_text())))  # Python's csv reads it back
@@ -244,16 +312,32 @@ def test_cli_formats(history, tmp_path: Path):
 
 def test_bad_dates_are_usage_errors(history):
     repo, _c = history
-    done = subprocess.run([sys.executable, "-m", "verifier", "-C", str(repo.path), "audit", "--since", "last tuesday"],
-                          capture_output=True, text=True, env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"})
+    done = subprocess.run(
+        [sys.executable, "-m", "verifier", "-C", str(repo.path), "audit", "--since", "last tuesday"],
+        capture_output=True,
+        text=True,
+        env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"},
+    )
     assert done.returncode == 2 and "is not a date" in done.stderr and "Traceback" not in done.stderr
 
 
 def test_parse_patch_skips_content_that_looks_like_headers():
-    lines = ["diff --git a/x.py b/x.py", "index 1..2 100644", "--- a/x.py", "+++ b/x.py", "@@ -1,2 +1,3 @@",
-             "---- not a header", "-diff --git a/y b/y", "+++ still content", "+@@ -9 +9 @@", "+x",
-             'diff --git "a/sp ace\\t.py" "b/sp ace\\t.py"', "new file mode 100644", "index 0..1",
-             "Binary files /dev/null and \"b/sp ace\\t.py\" differ"]
+    lines = [
+        "diff --git a/x.py b/x.py",
+        "index 1..2 100644",
+        "--- a/x.py",
+        "+++ b/x.py",
+        "@@ -1,2 +1,3 @@",
+        "---- not a header",
+        "-diff --git a/y b/y",
+        "+++ still content",
+        "+@@ -9 +9 @@",
+        "+x",
+        'diff --git "a/sp ace\\t.py" "b/sp ace\\t.py"',
+        "new file mode 100644",
+        "index 0..1",
+        'Binary files /dev/null and "b/sp ace\\t.py" differ',
+    ]
     assert parse_patch(lines) == [FilePatch("x.py", "x.py", [1, 2, 1, 3]), FilePatch(None, "sp ace\t.py", [])]
 
 
@@ -262,19 +346,40 @@ def test_recheck_runs_the_gate_and_writes_the_note(tmp_path: Path):
 
     repo = ScratchRepo(tmp_path / "repo")
     first_test = "from pk.calc import add\n\n\ndef test_add():\n    assert add(1, 2) == 3\n"
-    repo.commit("Start", {"pk/__init__.py": "", "pk/calc.py": "def add(a, b):\n    return a + b\n",
-                          "tests/test_calc.py": first_test}, date=_date("03-01"))
-    sha = repo.commit(machine("Add sub"), {
-        "pk/calc.py": "def add(a, b):\n    return a + b\n\n\ndef sub(a, b):\n    return a - b\n",
-        "tests/test_calc.py": "from pk.calc import add, sub\n\n\ndef test_add():\n    assert add(1, 2) == 3\n\n\n"
-                              "def test_sub():\n    assert sub(3, 2) == 1\n"}, date=_date("03-05"))
-    command = [sys.executable, "-m", "verifier", "-C", str(repo.path), "audit", "--since", "2024-03-04",
-               "--until", "2024-03-10", "--format", "json"]
+    repo.commit(
+        "Start",
+        {"pk/__init__.py": "", "pk/calc.py": "def add(a, b):\n    return a + b\n", "tests/test_calc.py": first_test},
+        date=_date("03-01"),
+    )
+    sha = repo.commit(
+        machine("Add sub"),
+        {
+            "pk/calc.py": "def add(a, b):\n    return a + b\n\n\ndef sub(a, b):\n    return a - b\n",
+            "tests/test_calc.py": "from pk.calc import add, sub\n\n\ndef test_add():\n    assert add(1, 2) == 3\n\n\n"
+            "def test_sub():\n    assert sub(3, 2) == 1\n",
+        },
+        date=_date("03-05"),
+    )
+    command = [
+        sys.executable,
+        "-m",
+        "verifier",
+        "-C",
+        str(repo.path),
+        "audit",
+        "--since",
+        "2024-03-04",
+        "--until",
+        "2024-03-10",
+        "--format",
+        "json",
+    ]
     env = {"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"}
     before = json.loads(subprocess.run(command, capture_output=True, text=True, env=env, check=True).stdout)
     assert before["totals"]["unverified"] == 1
-    after = subprocess.run([*command, "--recheck", "--sandbox", test_sandbox()], capture_output=True, text=True,
-                           env=env, check=True)
+    after = subprocess.run(
+        [*command, "--recheck", "--sandbox", test_sandbox()], capture_output=True, text=True, env=env, check=True
+    )
     report = json.loads(after.stdout)
     assert report["totals"]["unverified"] == 0 and report["commits"][0]["verdict"] == "pass"
     note = json.loads(repo.git("notes", f"--ref={NOTES}", "show", sha))  # the note git holds now

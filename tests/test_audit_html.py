@@ -15,8 +15,15 @@ import pytest
 from tests.conftest import ROOT
 from tests.test_audit import AGENT_IDENTITY, history  # noqa: F401  (the module-scoped history fixture)
 
-CHROMIUM_FLAGS = ("--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
-                  "--disable-component-update", "--disable-sync", "--no-first-run")
+CHROMIUM_FLAGS = (
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+    "--no-first-run",
+)
 
 
 def _chromium() -> str:
@@ -34,10 +41,30 @@ def rendered(history, tmp_path_factory: pytest.TempPathFactory) -> str:  # noqa:
     repo, _c = history
     target = tmp_path_factory.mktemp("html") / "audit.html"
     done = subprocess.run(
-        [sys.executable, "-m", "verifier", "-C", str(repo.path), "audit", "--since", "2024-03-04", "--until",
-         "2024-03-10", "--weeks", "2", "--agent-email", AGENT_IDENTITY[1], "--format", "html", "--output",
-         str(target)],
-        capture_output=True, text=True, env={**os.environ, "PYTHONPATH": str(ROOT)}, check=False,
+        [
+            sys.executable,
+            "-m",
+            "verifier",
+            "-C",
+            str(repo.path),
+            "audit",
+            "--since",
+            "2024-03-04",
+            "--until",
+            "2024-03-10",
+            "--weeks",
+            "2",
+            "--agent-email",
+            AGENT_IDENTITY[1],
+            "--format",
+            "html",
+            "--output",
+            str(target),
+        ],
+        capture_output=True,
+        text=True,
+        env={**os.environ, "PYTHONPATH": str(ROOT)},
+        check=False,
     )
     assert done.returncode == 0, done.stderr
     return target.read_text()
@@ -50,8 +77,13 @@ def _page(text: str, tmp_path: Path) -> Path:
 
 
 def _dump_dom(chromium: str, page: Path, profile: Path) -> str:
-    done = subprocess.run([chromium, *CHROMIUM_FLAGS, f"--user-data-dir={profile}", "--dump-dom", page.as_uri()],
-                          capture_output=True, text=True, timeout=120, check=False)
+    done = subprocess.run(
+        [chromium, *CHROMIUM_FLAGS, f"--user-data-dir={profile}", "--dump-dom", page.as_uri()],
+        capture_output=True,
+        text=True,
+        timeout=120,
+        check=False,
+    )
     assert done.returncode == 0, done.stderr[-2000:]
     return done.stdout
 

@@ -28,8 +28,15 @@ def busy_repo(repo: ScratchRepo) -> str:
     """
     marker = f"probe_{uuid.uuid4().hex}"
     policy = f'version: 1\ntests:\n  args: ["-k", "not {marker}"]\n'
-    repo.commit("Start", {"parcelkit/__init__.py": "", "parcelkit/rates.py": demo.RATES,
-                          "tests/test_rates.py": demo.TEST_RATES, "verifier.yaml": policy})
+    repo.commit(
+        "Start",
+        {
+            "parcelkit/__init__.py": "",
+            "parcelkit/rates.py": demo.RATES,
+            "tests/test_rates.py": demo.TEST_RATES,
+            "verifier.yaml": policy,
+        },
+    )
     repo.commit(machine("Slow"), {"parcelkit/slow.py": SLOW_CODE, "tests/test_slow.py": SLOW_TEST})
     repo.write({"parcelkit/rates.py": demo.ROUNDING})
     repo.git("stash", "-q")

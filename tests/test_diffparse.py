@@ -38,9 +38,7 @@ class Repo:
         self.git("init", "-q", "-b", "main")
 
     def git(self, *args: str, cwd: Path | None = None) -> bytes:
-        done = subprocess.run(
-            ["git", *args], cwd=cwd or self.root, env=self.env, capture_output=True, check=False
-        )
+        done = subprocess.run(["git", *args], cwd=cwd or self.root, env=self.env, capture_output=True, check=False)
         assert done.returncode == 0, done.stderr.decode(errors="replace")
         return done.stdout
 
@@ -60,9 +58,7 @@ class Repo:
         self.git("commit", "-q", "--allow-empty", "-m", message)
         return self.git("rev-parse", "HEAD").decode().strip()
 
-    def numstat(
-        self, *revisions: str, extra: tuple[str, ...] = ()
-    ) -> dict[str, tuple[int | None, int | None]]:
+    def numstat(self, *revisions: str, extra: tuple[str, ...] = ()) -> dict[str, tuple[int | None, int | None]]:
         """git's own per-file counts (the outside reference); None where git prints '-' (binary)."""
         out = self.git("diff", "--numstat", "-z", "-M", "--diff-algorithm=myers", *extra, *revisions)
         fields = out.split(b"\0")
@@ -78,9 +74,7 @@ class Repo:
             counts[os.fsdecode(path)] = (_count(added), _count(removed))
         return counts
 
-    def parse(
-        self, *revisions: str, extra: tuple[str, ...] = (), cwd: Path | None = None
-    ) -> dict[str, FileChange]:
+    def parse(self, *revisions: str, extra: tuple[str, ...] = (), cwd: Path | None = None) -> dict[str, FileChange]:
         """Run git as gitio will, parse, and check the result against git's numstat."""
         patch = self.git(*DIFF_ARGS, *extra, *revisions, cwd=cwd)
         listing = self.git(*RAW_ARGS, *extra, *revisions, cwd=cwd)
@@ -103,8 +97,7 @@ def without_modes(change: FileChange) -> FileChange:
 
 def counts(changes: dict[str, FileChange]) -> dict[str, tuple[int | None, int | None]]:
     return {
-        path: (None, None) if c.binary else (len(c.added_lines), len(c.removed_lines))
-        for path, c in changes.items()
+        path: (None, None) if c.binary else (len(c.added_lines), len(c.removed_lines)) for path, c in changes.items()
     }
 
 
@@ -123,9 +116,7 @@ def test_modified_file_line_numbers(repo: Repo) -> None:
     # base 1..10; head: 3 replaced, 6 and 7 deleted, two lines inserted after 9
     repo.write(
         "parcelkit/route.py",
-        numbered(
-            "line 1", "line 2", "LINE 3", "line 4", "line 5", "line 8", "line 9", "new a", "new b", "line 10"
-        ),
+        numbered("line 1", "line 2", "LINE 3", "line 4", "line 5", "line 8", "line 9", "new a", "new b", "line 10"),
     )
     head = repo.commit()
     change = repo.parse(base, head)["parcelkit/route.py"]

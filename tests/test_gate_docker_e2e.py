@@ -29,8 +29,9 @@ def docker_ready() -> None:
 
 @pytest.mark.docker
 def test_docker_and_namespace_agree(repo: ScratchRepo, docker_ready: None) -> None:
-    repo.commit("Start", {"parcelkit/__init__.py": "", "parcelkit/rates.py": demo.RATES,
-                          "tests/test_rates.py": demo.TEST_RATES})
+    repo.commit(
+        "Start", {"parcelkit/__init__.py": "", "parcelkit/rates.py": demo.RATES, "tests/test_rates.py": demo.TEST_RATES}
+    )
     repo.commit(machine("Zones"), {"parcelkit/zones.py": demo.ZONES, "tests/test_zones.py": demo.TEST_ZONES})
     repo.commit(machine("Rounding"), {"parcelkit/rates.py": demo.ROUNDING})
     in_docker = run_check(repo, "HEAD~2..HEAD", sandbox="docker")

@@ -25,8 +25,9 @@ def start(repo: ScratchRepo, extra: dict[str, str] | None = None) -> str:
 
 def test_tested_machine_commit_passes(repo: ScratchRepo) -> None:
     start(repo)
-    sha = repo.commit(machine("Add volumetric weight"),
-                      {"parcelkit/volume.py": demo.VOLUME, "tests/test_volume.py": demo.TEST_VOLUME})
+    sha = repo.commit(
+        machine("Add volumetric weight"), {"parcelkit/volume.py": demo.VOLUME, "tests/test_volume.py": demo.TEST_VOLUME}
+    )
     out = run_check(repo, sha)
     assert out.code == 0, out.stderr + out.stdout
     report = out.report
@@ -40,8 +41,9 @@ def test_tested_machine_commit_passes(repo: ScratchRepo) -> None:
 
 def test_uncovered_lines_block_and_are_listed(repo: ScratchRepo) -> None:
     start(repo)
-    sha = repo.commit(machine("Add zone surcharges"),
-                      {"parcelkit/zones.py": demo.ZONES, "tests/test_zones.py": demo.TEST_ZONES})
+    sha = repo.commit(
+        machine("Add zone surcharges"), {"parcelkit/zones.py": demo.ZONES, "tests/test_zones.py": demo.TEST_ZONES}
+    )
     out = run_check(repo, sha)
     assert out.code == 1, out.stderr
     assert out.report["verdict"] == "block"
@@ -64,8 +66,12 @@ def test_executable_lines_agree_with_coverage_json(repo: ScratchRepo, tmp_path: 
     ours = out.report["coverage"]
     tree = tmp_path / "plain"
     repo.git("worktree", "add", "-q", "--detach", str(tree), sha)
-    subprocess.run([sys.executable, "-m", "coverage", "run", "--branch", "-m", "pytest", "-q", "-p",
-                    "no:cacheprovider"], cwd=tree, check=True, capture_output=True)
+    subprocess.run(
+        [sys.executable, "-m", "coverage", "run", "--branch", "-m", "pytest", "-q", "-p", "no:cacheprovider"],
+        cwd=tree,
+        check=True,
+        capture_output=True,
+    )
     subprocess.run([sys.executable, "-m", "coverage", "json", "-q", "-o", "cov.json"], cwd=tree, check=True)
     theirs = json.loads((tree / "cov.json").read_text())["files"]["parcelkit/sums.py"]["summary"]
     assert ours["executable"] == theirs["num_statements"]
@@ -94,8 +100,10 @@ def test_a_later_human_edit_makes_the_line_human(repo: ScratchRepo) -> None:
     base = start(repo)
     repo.commit(machine("Add volume"), {"parcelkit/volume.py": demo.VOLUME, "tests/test_volume.py": demo.TEST_VOLUME})
     edited = demo.VOLUME.replace("DIVISOR = 5000", "DIVISOR = 6000  # new carrier rules")
-    repo.commit("Human: new divisor", {"parcelkit/volume.py": edited,
-                                       "tests/test_volume.py": demo.TEST_VOLUME.replace("1.2", "1.0")})
+    repo.commit(
+        "Human: new divisor",
+        {"parcelkit/volume.py": edited, "tests/test_volume.py": demo.TEST_VOLUME.replace("1.2", "1.0")},
+    )
     out = run_check(repo, f"{base}..HEAD")
     lines = out.report["machine_lines"]["parcelkit/volume.py"]
     assert 3 not in lines and lines == [1, 2, 4, 5, 6, 7, 8]
@@ -107,8 +115,10 @@ def test_a_later_human_edit_makes_the_line_human(repo: ScratchRepo) -> None:
 
 def test_scope_trailer_limits_machine_lines(repo: ScratchRepo) -> None:
     start(repo)
-    sha = repo.commit(machine("Volume, tests by a human", scope="parcelkit/"),
-                      {"parcelkit/volume.py": demo.VOLUME, "tests/test_volume.py": demo.TEST_VOLUME})
+    sha = repo.commit(
+        machine("Volume, tests by a human", scope="parcelkit/"),
+        {"parcelkit/volume.py": demo.VOLUME, "tests/test_volume.py": demo.TEST_VOLUME},
+    )
     out = run_check(repo, sha)
     assert set(out.report["machine_lines"]) == {"parcelkit/volume.py"}
 
@@ -207,8 +217,10 @@ def test_syntax_error_in_machine_code_is_reported_as_such(repo: ScratchRepo) -> 
 
 def test_collection_error_is_not_a_pass(repo: ScratchRepo) -> None:
     start(repo)
-    sha = repo.commit(machine("Bad test import"),
-                      {"parcelkit/extra.py": "X = 1\n", "tests/test_extra.py": "import parcelkit.missing\n"})
+    sha = repo.commit(
+        machine("Bad test import"),
+        {"parcelkit/extra.py": "X = 1\n", "tests/test_extra.py": "import parcelkit.missing\n"},
+    )
     out = run_check(repo, sha)
     assert out.code == 3
     assert out.report["verdict"] == "error"
@@ -217,10 +229,13 @@ def test_collection_error_is_not_a_pass(repo: ScratchRepo) -> None:
 
 def test_timeout_is_exit_3(repo: ScratchRepo) -> None:
     start(repo, {"verifier.yaml": "version: 1\nlimits:\n  wall_seconds: 5\n"})
-    sha = repo.commit(machine("Slow"), {
-        "parcelkit/slow.py": "def wait():\n    while True:\n        pass\n",
-        "tests/test_slow.py": "from parcelkit.slow import wait\n\n\ndef test_wait():\n    wait()\n",
-    })
+    sha = repo.commit(
+        machine("Slow"),
+        {
+            "parcelkit/slow.py": "def wait():\n    while True:\n        pass\n",
+            "tests/test_slow.py": "from parcelkit.slow import wait\n\n\ndef test_wait():\n    wait()\n",
+        },
+    )
     out = run_check(repo, sha)
     assert out.code == 3
     assert out.report["run"]["status"] == "timeout"
@@ -260,9 +275,14 @@ def test_shallow_clone(repo: ScratchRepo, tmp_path: Path) -> None:
 def test_renames_deletions_and_binary_files(repo: ScratchRepo) -> None:
     start(repo, {"parcelkit/old_volume.py": demo.VOLUME, "docs/logo.png": b"\x89PNG\r\n\x1a\n\x00\x01\x02"})
     repo.git("mv", "parcelkit/old_volume.py", "parcelkit/volume.py")
-    sha = repo.commit(machine("Rename volume, drop the logo, add a binary"), {
-        "tests/test_volume.py": demo.TEST_VOLUME, "data/table.bin": bytes(range(256)),
-    }, remove=("docs/logo.png",))
+    sha = repo.commit(
+        machine("Rename volume, drop the logo, add a binary"),
+        {
+            "tests/test_volume.py": demo.TEST_VOLUME,
+            "data/table.bin": bytes(range(256)),
+        },
+        remove=("docs/logo.png",),
+    )
     out = run_check(repo, sha)
     assert out.code == 0, out.stderr
     assert set(out.report["machine_lines"]) == {"tests/test_volume.py"}  # a pure rename adds no line
@@ -286,8 +306,25 @@ def test_a_credential_is_never_quoted_in_any_report(repo: ScratchRepo, tmp_path:
     secret = "AKIA" + "Q7XW3MZP5RT2KV8N"  # the shape of an AWS access key id, made up here
     sha = repo.commit(machine("Carrier client"), {"parcelkit/carrier.py": f'def client():\n    return "{secret}"\n'})
     out_dir = tmp_path / "reports"
-    done = subprocess.run([sys.executable, "-m", "verifier", "-C", str(repo.path), "check", sha, "--sandbox",
-                           test_sandbox(), "--format", "all", "--output", str(out_dir)], capture_output=True, text=True)
+    done = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "verifier",
+            "-C",
+            str(repo.path),
+            "check",
+            sha,
+            "--sandbox",
+            test_sandbox(),
+            "--format",
+            "all",
+            "--output",
+            str(out_dir),
+        ],
+        capture_output=True,
+        text=True,
+    )
     assert done.returncode == 1
     assert "secrets.literal" in done.stdout
     assert secret not in done.stdout + done.stderr
@@ -298,6 +335,7 @@ def test_a_credential_is_never_quoted_in_any_report(repo: ScratchRepo, tmp_path:
 
 
 def test_a_missing_folder_is_a_usage_error(tmp_path: Path) -> None:
-    done = subprocess.run([sys.executable, "-m", "verifier", "-C", str(tmp_path / "nowhere"), "check"],
-                          capture_output=True, text=True)
+    done = subprocess.run(
+        [sys.executable, "-m", "verifier", "-C", str(tmp_path / "nowhere"), "check"], capture_output=True, text=True
+    )
     assert done.returncode == 2 and "is not a folder" in done.stderr and "Traceback" not in done.stderr

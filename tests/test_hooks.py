@@ -31,15 +31,21 @@ if grep -q REJECT "$1"; then echo "team hook: no" >&2; exit 1; fi
 
 
 def cli(cwd: Path, *args: str, env: dict | None = None) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "verifier", *args], cwd=cwd, capture_output=True, text=True,
-                          env={**os.environ, "PYTHONPATH": str(ROOT), **(env or {})})
+    return subprocess.run(
+        [sys.executable, "-m", "verifier", *args],
+        cwd=cwd,
+        capture_output=True,
+        text=True,
+        env={**os.environ, "PYTHONPATH": str(ROOT), **(env or {})},
+    )
 
 
 def git(cwd: Path, *args: str, env: dict | None = None, message: str | None = None) -> subprocess.CompletedProcess:
     """A real git command; the hooks inherit this environment (no PYTHONPATH: they must find us themselves)."""
     clean = {k: v for k, v in os.environ.items() if k != "PYTHONPATH"}
-    return subprocess.run(["git", *args], cwd=cwd, capture_output=True, text=True,
-                          input=message, env={**clean, **IDENTITY, **(env or {})})
+    return subprocess.run(
+        ["git", *args], cwd=cwd, capture_output=True, text=True, input=message, env={**clean, **IDENTITY, **(env or {})}
+    )
 
 
 def commit(cwd: Path, message: str, *extra: str, env: dict | None = None) -> subprocess.CompletedProcess:
@@ -117,15 +123,26 @@ def test_unmarked_and_skipped_commits_are_fast_and_get_no_note(hrepo: ScratchRep
 def test_the_unmarked_path_does_not_import_the_pipeline(tmp_path: Path) -> None:
     message = tmp_path / "MSG"
     message.write_text("Fix a typo\n\nSigned-off-by: Ada Okafor <ada@quillfeather.example>\n")
-    probe = ("import sys; from verifier.cli.main import main; code = main(['hook', 'commit-msg', sys.argv[1]]); "
-             "print(code, sorted(m for m in sys.modules if m.startswith('verifier')))")
-    done = subprocess.run([sys.executable, "-c", probe, str(message)], capture_output=True, text=True,
-                          env={**os.environ, "PYTHONPATH": str(ROOT)}, cwd=tmp_path)
+    probe = (
+        "import sys; from verifier.cli.main import main; code = main(['hook', 'commit-msg', sys.argv[1]]); "
+        "print(code, sorted(m for m in sys.modules if m.startswith('verifier')))"
+    )
+    done = subprocess.run(
+        [sys.executable, "-c", probe, str(message)],
+        capture_output=True,
+        text=True,
+        env={**os.environ, "PYTHONPATH": str(ROOT)},
+        cwd=tmp_path,
+    )
     assert done.stdout.split(" ", 1)[0] == "0", done.stderr
     heavy = ("verifier.pipeline", "verifier.sandbox", "verifier.change.stage", "coverage", "pytest", "yaml", "docker")
-    loaded = subprocess.run([sys.executable, "-c", probe.replace("m.startswith('verifier')", "True"), str(message)],
-                            capture_output=True, text=True, env={**os.environ, "PYTHONPATH": str(ROOT)},
-                            cwd=tmp_path).stdout
+    loaded = subprocess.run(
+        [sys.executable, "-c", probe.replace("m.startswith('verifier')", "True"), str(message)],
+        capture_output=True,
+        text=True,
+        env={**os.environ, "PYTHONPATH": str(ROOT)},
+        cwd=tmp_path,
+    ).stdout
     assert not [name for name in heavy if f"'{name}'" in loaded], loaded
 
 
@@ -154,7 +171,8 @@ def test_an_existing_hook_is_chained_and_uninstall_restores_it(tmp_path: Path) -
     assert cli(repo.path, "hooks", "uninstall").returncode == 0
     assert hook.read_text() == EXISTING_HOOK and os.access(hook, os.X_OK)
     assert sorted(p.name for p in folder.iterdir() if "verifier" in p.name or p.name in hooks.HOOK_NAMES) == [
-        "commit-msg"]
+        "commit-msg"
+    ]
 
 
 def test_core_hooks_path_is_honoured(tmp_path: Path) -> None:
@@ -204,8 +222,9 @@ def with_remote(repo: ScratchRepo, tmp_path: Path) -> Path:
 
 
 def remote_head(remote: Path, branch: str) -> str:
-    return subprocess.run(["git", "rev-parse", "--verify", "-q", f"refs/heads/{branch}"], cwd=remote,
-                          capture_output=True, text=True).stdout.strip()
+    return subprocess.run(
+        ["git", "rev-parse", "--verify", "-q", f"refs/heads/{branch}"], cwd=remote, capture_output=True, text=True
+    ).stdout.strip()
 
 
 def test_push_is_refused_when_a_pushed_machine_commit_fails_and_accepted_when_fixed(
@@ -222,8 +241,9 @@ def test_push_is_refused_when_a_pushed_machine_commit_fails_and_accepted_when_fi
     assert "tests.failing" in refused.stderr and "push is refused" in refused.stderr
     assert remote_head(remote, "feature") == ""
 
-    hrepo.write({"parcelkit/rates.py": demo.RATES, "parcelkit/volume.py": demo.VOLUME,
-                 "tests/test_volume.py": demo.TEST_VOLUME})
+    hrepo.write(
+        {"parcelkit/rates.py": demo.RATES, "parcelkit/volume.py": demo.VOLUME, "tests/test_volume.py": demo.TEST_VOLUME}
+    )
     hrepo.git("add", "-A")
     assert commit(hrepo.path, machine("Restore rounding, add volume"), "--no-verify").returncode == 0
     accepted = git(hrepo.path, "push", "-q", "origin", "feature")
@@ -232,7 +252,9 @@ def test_push_is_refused_when_a_pushed_machine_commit_fails_and_accepted_when_fi
     # The range checked was the two new commits together; each got its note.
     notes = notes_of(hrepo.path)
     assert {sha: n["range"]["base"] for sha, n in notes.items()} == {
-        hrepo.head(): base, hrepo.git("rev-parse", "HEAD~1").strip(): base}
+        hrepo.head(): base,
+        hrepo.git("rev-parse", "HEAD~1").strip(): base,
+    }
     assert notes[hrepo.head()]["verdict"] == "pass"
 
     deleted = git(hrepo.path, "push", "-q", "origin", ":feature")  # a deletion has nothing to verify
@@ -275,14 +297,16 @@ def test_a_shallow_clone_is_deepened_until_the_merge_base_is_there(tmp_path: Pat
     subprocess.run(["git", "clone", "-q", "--bare", str(upstream.path), str(bare)], check=True)
     clone = tmp_path / "clone"
     # git clone --depth needs a transport that negotiates: file:// (git-clone(1), --depth).
-    subprocess.run(["git", "clone", "-q", "--depth", "1", "--branch", "feature", f"file://{bare}", str(clone)],
-                   check=True)
-    subprocess.run(["git", "fetch", "-q", "--depth", "1", "origin", "main:refs/remotes/origin/main"], cwd=clone,
-                   check=True)
+    subprocess.run(
+        ["git", "clone", "-q", "--depth", "1", "--branch", "feature", f"file://{bare}", str(clone)], check=True
+    )
+    subprocess.run(
+        ["git", "fetch", "-q", "--depth", "1", "origin", "main:refs/remotes/origin/main"], cwd=clone, check=True
+    )
     stuck = cli(clone, "check", "origin/main..HEAD", "--no-notes")
     assert stuck.returncode == 3 and "deepen" in stuck.stderr
     deepened = cli(clone, "check", "origin/main..HEAD", "--deepen", "2", "--no-notes", "--format", "json")
     assert deepened.returncode == 0, deepened.stderr
-    report = json.loads(deepened.stdout[deepened.stdout.index("{"):])
+    report = json.loads(deepened.stdout[deepened.stdout.index("{") :])
     assert report["base"] == upstream.git("rev-parse", "main").strip()
     assert len(report["commits"]) == 4

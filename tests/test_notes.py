@@ -14,8 +14,22 @@ from verifier.gitio import Git
 from verifier.report import notes
 
 BASE_FILES = {"parcelkit/__init__.py": "", "parcelkit/rates.py": demo.RATES, "tests/test_rates.py": demo.TEST_RATES}
-FIELDS = {"format", "tool", "version", "checked_at", "commit", "range", "verdict", "agent", "machine_lines",
-          "coverage", "tests", "findings", "waivers", "sandbox"}
+FIELDS = {
+    "format",
+    "tool",
+    "version",
+    "checked_at",
+    "commit",
+    "range",
+    "verdict",
+    "agent",
+    "machine_lines",
+    "coverage",
+    "tests",
+    "findings",
+    "waivers",
+    "sandbox",
+}
 
 
 def shown(repo: ScratchRepo, sha: str, ref: str = notes.DEFAULT_REF) -> dict:
@@ -26,8 +40,9 @@ def shown(repo: ScratchRepo, sha: str, ref: str = notes.DEFAULT_REF) -> dict:
 def test_a_checked_range_gets_one_note_per_commit(repo: ScratchRepo) -> None:
     base = repo.commit("Start parcelkit", BASE_FILES)
     human = repo.commit("Human: readme", {"README.md": "# parcelkit\n"})
-    marked = repo.commit(machine("Add zones"), {"parcelkit/zones.py": demo.ZONES,
-                                                "tests/test_zones.py": demo.TEST_ZONES})
+    marked = repo.commit(
+        machine("Add zones"), {"parcelkit/zones.py": demo.ZONES, "tests/test_zones.py": demo.TEST_ZONES}
+    )
     out = run_check(repo, f"{base}..HEAD")
     assert out.report is not None, out.stderr
     listed = repo.git("notes", f"--ref={notes.DEFAULT_REF}", "list").split()

@@ -65,11 +65,18 @@ def test_unknown_key_names_file_line_column_and_key() -> None:
     ("text", "needle", "key"),
     [
         ("coverage: {threshold: 80, treshold: 70}\n", "treshold", "coverage.treshold"),
-        ("overrides:\n  - paths: [legacy/**]\n    coverage: {thresold: 5}\n", "thresold",
-         "overrides[0].coverage.thresold"),
+        (
+            "overrides:\n  - paths: [legacy/**]\n    coverage: {thresold: 5}\n",
+            "thresold",
+            "overrides[0].coverage.thresold",
+        ),
         ("overrides:\n  - paths: [a]\n  - paths: [b]\n    ruels: {}\n", "ruels", "overrides[1].ruels"),
-        ("waivers:\n  - rule: code.syntax\n    path: a\n    reason: r\n    owner: o\n    expires: 2999-01-01\n"
-         "    ticket: 12\n", "ticket", "waivers[0].ticket"),
+        (
+            "waivers:\n  - rule: code.syntax\n    path: a\n    reason: r\n    owner: o\n    expires: 2999-01-01\n"
+            "    ticket: 12\n",
+            "ticket",
+            "waivers[0].ticket",
+        ),
         ("rules:\n  code.syntax: {severity: warn, level: 3}\n", "level", "rules.code.syntax.level"),
         ("rules:\n  code.sintax: warn\n", "code.sintax", "rules.code.sintax"),
         ("sandbox:\n  allow_process: false\n  network: true\n", "network", "sandbox.network"),
@@ -98,14 +105,26 @@ def test_unknown_keys_anywhere_are_located(text: str, needle: str, key: str) -> 
         ("overrides:\n  - coverage: {threshold: 5}\n", 2, "overrides[0]"),  # paths is required
         ("overrides:\n  - paths: []\n", 2, "overrides[0].paths"),
         ("waivers:\n  - {rule: code.syntax, path: a}\n", 2, "waivers[0]"),  # reason, owner, expires missing
-        ("waivers:\n  - {rule: code.syntax, path: a, reason: r, owner: o, expires: 2999-02-30}\n", 2,
-         "waivers[0].expires"),
-        ("waivers:\n  - {rule: code.syntax, path: a, reason: r, owner: o, expires: next year}\n", 2,
-         "waivers[0].expires"),
-        ("waivers:\n  - {rule: code.syntax, path: a, reason: '  ', owner: o, expires: 2999-01-01}\n", 2,
-         "waivers[0].reason"),
-        ("waivers:\n  - {rule: run.incomplete, path: a, reason: r, owner: o, expires: 2999-01-01}\n", 2,
-         "waivers[0].rule"),  # the fail-closed rule cannot be waived
+        (
+            "waivers:\n  - {rule: code.syntax, path: a, reason: r, owner: o, expires: 2999-02-30}\n",
+            2,
+            "waivers[0].expires",
+        ),
+        (
+            "waivers:\n  - {rule: code.syntax, path: a, reason: r, owner: o, expires: next year}\n",
+            2,
+            "waivers[0].expires",
+        ),
+        (
+            "waivers:\n  - {rule: code.syntax, path: a, reason: '  ', owner: o, expires: 2999-01-01}\n",
+            2,
+            "waivers[0].reason",
+        ),
+        (
+            "waivers:\n  - {rule: run.incomplete, path: a, reason: r, owner: o, expires: 2999-01-01}\n",
+            2,
+            "waivers[0].rule",
+        ),  # the fail-closed rule cannot be waived
         ("waivers:\n  - {rule: no.rule, path: a, reason: r, owner: o, expires: 2999-01-01}\n", 2, "waivers[0].rule"),
         ("coverage:\n  threshold: 80\n  threshold: 70\n", 3, "coverage.threshold"),  # given twice
     ],
@@ -128,12 +147,18 @@ def test_bare_off_is_a_setting_not_false() -> None:
 
 
 def test_rule_options_are_typed_by_their_defaults(sample_rule: Rule) -> None:
-    text = ("rules:\n  sample.options:\n    severity: block\n    limit: 50\n    ratio: 1\n    strict: true\n"
-            "    label: y\n    globs: [b/**]\n    entries: [{call: os.system, when: {shell: true}}]\n")
+    text = (
+        "rules:\n  sample.options:\n    severity: block\n    limit: 50\n    ratio: 1\n    strict: true\n"
+        "    label: y\n    globs: [b/**]\n    entries: [{call: os.system, when: {shell: true}}]\n"
+    )
     policy = build_policy([shipped_layer("default"), Layer("v.yaml", parse_layer(text, "v.yaml"))])
     assert policy.rules["sample.options"] == "block"
     assert policy.rule_options["sample.options"] == {
-        "limit": 50, "ratio": 1.0, "strict": True, "label": "y", "globs": ["b/**"],
+        "limit": 50,
+        "ratio": 1.0,
+        "strict": True,
+        "label": "y",
+        "globs": ["b/**"],
         "entries": [{"call": "os.system", "when": {"shell": True}}],
     }
     assert sample_rule.option(policy, "limit") == 50
@@ -142,8 +167,18 @@ def test_rule_options_are_typed_by_their_defaults(sample_rule: Rule) -> None:
 
 @pytest.mark.parametrize(
     ("option", "value"),
-    [("limit", "many"), ("limit", "2.5"), ("limit", "true"), ("ratio", "high"), ("strict", "1"), ("label", "[1]"),
-     ("globs", "b/**"), ("globs", "[1, 2]"), ("entries", "[[1]]"), ("entries", "[{call: 2020-01-01}]")],
+    [
+        ("limit", "many"),
+        ("limit", "2.5"),
+        ("limit", "true"),
+        ("ratio", "high"),
+        ("strict", "1"),
+        ("label", "[1]"),
+        ("globs", "b/**"),
+        ("globs", "[1, 2]"),
+        ("entries", "[[1]]"),
+        ("entries", "[{call: 2020-01-01}]"),
+    ],
 )
 def test_wrongly_typed_options_are_located(sample_rule: Rule, option: str, value: str) -> None:
     text = f"rules:\n  sample.options:\n    {option}: {value}\n"
@@ -156,8 +191,10 @@ def test_wrongly_typed_options_are_located(sample_rule: Rule, option: str, value
 def test_banned_call_entries_are_checked_by_their_rule_at_their_line() -> None:
     if "calls.banned" not in load_all():
         pytest.skip("the calls.banned rule is not in this build")
-    good = ("      - call: acme.db.raw_sql\n        why: raw SQL built at run time\n"
-            "        when: {arg: 0, is: non-literal}\n")
+    good = (
+        "      - call: acme.db.raw_sql\n        why: raw SQL built at run time\n"
+        "        when: {arg: 0, is: non-literal}\n"
+    )
     bad = "      - {call: parcelkit.legacy.run, cwe: 78}\n"
     text = "rules:\n  calls.banned:\n    entries:\n" + good + bad
     error = error_of(text)
@@ -201,8 +238,13 @@ def test_rule_settings_merge_key_by_key_across_layers(sample_rule: Rule) -> None
 
 # --- per-path settings and waivers on plain data --------------------------------------------------------
 
-LEGACY = PathOverride(paths=("legacy/**",), source="v.yaml:3", coverage_threshold=50.0,
-                      rules={"code.syntax": "warn"}, rule_options={"sample.options": {"limit": 5}})
+LEGACY = PathOverride(
+    paths=("legacy/**",),
+    source="v.yaml:3",
+    coverage_threshold=50.0,
+    rules={"code.syntax": "warn"},
+    rule_options={"sample.options": {"limit": 5}},
+)
 TOOLS = PathOverride(paths=("legacy/tools/**",), source="v.yaml:9", rules={"code.syntax": "off"})
 
 
@@ -244,8 +286,10 @@ def test_a_matching_waiver_turns_a_finding_into_info() -> None:
 
 
 def test_waiver_expiry_is_inclusive_and_a_lapsed_one_is_an_error() -> None:
-    text = ("version: 1\nwaivers:\n  - rule: code.syntax\n    path: legacy/**\n    reason: generated code\n"
-            "    owner: ada.okafor\n    expires: 2030-06-30\n")
+    text = (
+        "version: 1\nwaivers:\n  - rule: code.syntax\n    path: legacy/**\n    reason: generated code\n"
+        "    owner: ada.okafor\n    expires: 2030-06-30\n"
+    )
     layers = [shipped_layer("default"), Layer("v.yaml", parse_layer(text, "v.yaml"))]
     assert build_policy(layers, today=date(2030, 6, 30)).waivers[0].expires == "2030-06-30"
     with pytest.raises(PolicyError) as caught:

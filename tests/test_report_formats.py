@@ -27,8 +27,12 @@ BASE_FILES = {"parcelkit/__init__.py": "", "parcelkit/rates.py": demo.RATES, "te
 
 
 def gate(repo: Path, *args: str, env: dict | None = None) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "verifier", "-C", str(repo), "check", *args, "--no-notes"],
-                          capture_output=True, text=True, env={**os.environ, "PYTHONPATH": str(ROOT), **(env or {})})
+    return subprocess.run(
+        [sys.executable, "-m", "verifier", "-C", str(repo), "check", *args, "--no-notes"],
+        capture_output=True,
+        text=True,
+        env={**os.environ, "PYTHONPATH": str(ROOT), **(env or {})},
+    )
 
 
 @pytest.fixture(scope="module")
@@ -37,12 +41,18 @@ def outputs(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     root = tmp_path_factory.mktemp("formats")
     repo = ScratchRepo(root / "repo")
     base = repo.commit("Start parcelkit", BASE_FILES)
-    repo.commit(machine("Zones, and simpler rounding"), {
-        "parcelkit/zones.py": demo.ZONES, "tests/test_zones.py": demo.TEST_ZONES, "parcelkit/rates.py": demo.ROUNDING,
-    })
+    repo.commit(
+        machine("Zones, and simpler rounding"),
+        {
+            "parcelkit/zones.py": demo.ZONES,
+            "tests/test_zones.py": demo.TEST_ZONES,
+            "parcelkit/rates.py": demo.ROUNDING,
+        },
+    )
     human = repo.commit("Human: readme", {"README.md": "# parcelkit\n"})
-    blocked = gate(repo.path, f"{base}..{human}", "--sandbox", test_sandbox(), "--format", "all",
-                   "--output", str(root / "block"))
+    blocked = gate(
+        repo.path, f"{base}..{human}", "--sandbox", test_sandbox(), "--format", "all", "--output", str(root / "block")
+    )
     assert blocked.returncode == 1, blocked.stderr
     passed = gate(repo.path, human, "--format", "all", "--output", str(root / "pass"))
     assert passed.returncode == 0, passed.stderr
@@ -80,9 +90,14 @@ def test_sarif_carries_rules_results_and_facts(outputs: dict[str, Path]) -> None
     assert all(run["tool"]["driver"]["rules"][r["ruleIndex"]]["id"] == r["ruleId"] for r in results)
     failing = [r for r in results if r["ruleId"] == "tests.failing"]
     assert failing and all(r["level"] == "error" for r in failing)
-    located = {(r["locations"][0]["physicalLocation"]["artifactLocation"]["uri"],
-                r["locations"][0]["physicalLocation"]["region"]["startLine"])
-               for r in results if r["ruleId"] == "coverage.new-lines" and "locations" in r}
+    located = {
+        (
+            r["locations"][0]["physicalLocation"]["artifactLocation"]["uri"],
+            r["locations"][0]["physicalLocation"]["region"]["startLine"],
+        )
+        for r in results
+        if r["ruleId"] == "coverage.new-lines" and "locations" in r
+    }
     assert located == {(path, line) for path, lines in report["coverage"]["uncovered"].items() for line in lines}
     facts = run["properties"]
     assert facts["provenance"]["agents"] == [demo.AGENT]
@@ -114,12 +129,27 @@ def test_junit_counts_match_the_report_and_pytest_itself(outputs: dict[str, Path
     assert int(suite.get("errors")) == report["tests"]["errors"]
     # pytest's own --junitxml on the same tests of the same tree is the outside reference.
     tree = tmp_path / "tree"
-    subprocess.run(["git", "worktree", "add", "-q", "--detach", str(tree), str(outputs["head"])],
-                   cwd=outputs["repo"], check=True)
+    subprocess.run(
+        ["git", "worktree", "add", "-q", "--detach", str(tree), str(outputs["head"])], cwd=outputs["repo"], check=True
+    )
     cases = [(c.get("classname"), c.get("name")) for c in suite.iter("testcase")]
     node_ids = [f"{cls.replace('.', '/', cls.count('.'))}.py::{name}" for cls, name in cases]
-    subprocess.run([sys.executable, "-m", "pytest", "-q", "-p", "no:cacheprovider", "--junitxml=theirs.xml",
-                    "-o", "junit_family=xunit2", *node_ids], cwd=tree, capture_output=True)
+    subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "pytest",
+            "-q",
+            "-p",
+            "no:cacheprovider",
+            "--junitxml=theirs.xml",
+            "-o",
+            "junit_family=xunit2",
+            *node_ids,
+        ],
+        cwd=tree,
+        capture_output=True,
+    )
     theirs = ET.parse(tree / "theirs.xml").getroot().find("testsuite")
     assert theirs is not None
     for key in ("tests", "failures", "errors", "skipped"):

@@ -29,25 +29,35 @@ CASES: dict[str, tuple[str, list[tuple[int, str]]]] = {
     "assigned alias": ("import subprocess\nsh = subprocess.Popen\nsh('ls', shell=True)\n", [(3, "CWE-78")]),
     "getattr with a literal name": ("import os\ngetattr(os, 'system')('ls')\n", [(2, "CWE-78")]),
     "subprocess shell=True": ("import subprocess as sp\nsp.run('ls -l', shell=True)\n", [(2, "CWE-78")]),
-    "subprocess shell from a variable": ("import subprocess\ndef f(c, s):\n    subprocess.call(c, shell=s)\n",
-                                         [(3, "CWE-78")]),
+    "subprocess shell from a variable": (
+        "import subprocess\ndef f(c, s):\n    subprocess.call(c, shell=s)\n",
+        [(3, "CWE-78")],
+    ),
     "subprocess list without a shell": ("import subprocess\nsubprocess.run(['ls', '-l'], check=True)\n", []),
     "subprocess shell=False": ("import subprocess\nsubprocess.run('ls', shell=False)\n", []),
     "subprocess getoutput": ("from subprocess import getoutput\ngetoutput('ls')\n", [(2, "CWE-78")]),
     "call inside a lambda": ("import os\nrun = lambda c: os.system(c)\n", [(2, "CWE-78")]),
-    "call inside a comprehension": ("import pickle\ndef f(blobs):\n    return [pickle.loads(b) for b in blobs]\n",
-                                    [(3, "CWE-502")]),
+    "call inside a comprehension": (
+        "import pickle\ndef f(blobs):\n    return [pickle.loads(b) for b in blobs]\n",
+        [(3, "CWE-502")],
+    ),
     "pickle alias": ("import pickle as pk\ndef f(b):\n    return pk.loads(b)\n", [(3, "CWE-502")]),
     "marshal": ("import marshal\ndef f(b):\n    return marshal.loads(b)\n", [(3, "CWE-502")]),
     "shelve": ("import shelve\ndb = shelve.open('cache')\n", [(2, "CWE-502")]),
-    "nested attribute chain": ("import xml\nimport os.path\nos.path.join('a', 'b')\nimport os\nos.system('x')\n",
-                               [(5, "CWE-78")]),
+    "nested attribute chain": (
+        "import xml\nimport os.path\nos.path.join('a', 'b')\nimport os\nos.system('x')\n",
+        [(5, "CWE-78")],
+    ),
     "yaml.load without Loader": ("import yaml\ndef f(t):\n    return yaml.load(t)\n", [(3, "CWE-502")]),
-    "yaml.load with the full Loader": ("import yaml\ndef f(t):\n    return yaml.load(t, Loader=yaml.Loader)\n",
-                                       [(3, "CWE-502")]),
+    "yaml.load with the full Loader": (
+        "import yaml\ndef f(t):\n    return yaml.load(t, Loader=yaml.Loader)\n",
+        [(3, "CWE-502")],
+    ),
     "yaml.load with SafeLoader": ("import yaml\ndef f(t):\n    return yaml.load(t, Loader=yaml.SafeLoader)\n", []),
     "yaml.load with imported SafeLoader": (
-        "from yaml import load, SafeLoader\ndef f(t):\n    return load(t, SafeLoader)\n", []),
+        "from yaml import load, SafeLoader\ndef f(t):\n    return load(t, SafeLoader)\n",
+        [],
+    ),
     "yaml.load with **kwargs": ("import yaml\ndef f(t, **kw):\n    return yaml.load(t, **kw)\n", [(3, "CWE-502")]),
     "yaml.safe_load": ("import yaml\ndef f(t):\n    return yaml.safe_load(t)\n", []),
     "tempfile.mktemp": ("import tempfile\nname = tempfile.mktemp()\n", [(2, "CWE-377")]),
@@ -56,17 +66,25 @@ CASES: dict[str, tuple[str, list[tuple[int, str]]]] = {
     "session verify=False": ("def f(session):\n    return session.post('u', verify=False)\n", [(2, "CWE-295")]),
     "requests verified": ("import requests\nrequests.get('https://q.example', verify=True)\n", []),
     "unverified ssl context": ("import ssl\nctx = ssl._create_unverified_context()\n", [(2, "CWE-295")]),
-    "check_hostname off": ("import ssl\nctx = ssl.create_default_context()\nctx.check_hostname = False\n",
-                           [(3, "CWE-295")]),
+    "check_hostname off": (
+        "import ssl\nctx = ssl.create_default_context()\nctx.check_hostname = False\n",
+        [(3, "CWE-295")],
+    ),
     "verify_mode CERT_NONE": ("import ssl\ndef f(ctx):\n    ctx.verify_mode = ssl.CERT_NONE\n", [(3, "CWE-295")]),
     "default https context replaced": (
-        "import ssl\nssl._create_default_https_context = ssl._create_unverified_context\n", [(2, "CWE-295")]),
-    "import_module of a variable": ("import importlib\ndef f(n):\n    return importlib.import_module(n)\n",
-                                    [(3, "CWE-470")]),
+        "import ssl\nssl._create_default_https_context = ssl._create_unverified_context\n",
+        [(2, "CWE-295")],
+    ),
+    "import_module of a variable": (
+        "import importlib\ndef f(n):\n    return importlib.import_module(n)\n",
+        [(3, "CWE-470")],
+    ),
     "import_module of a literal": ("import importlib\nm = importlib.import_module('json')\n", []),
     "__import__ of a variable": ("def f(n):\n    return __import__(n)\n", [(2, "CWE-470")]),
-    "shell=True on a continuation line": ("import subprocess\nsubprocess.run(\n    'ls',\n    shell=True,\n)\n",
-                                          [(2, "CWE-78")]),
+    "shell=True on a continuation line": (
+        "import subprocess\nsubprocess.run(\n    'ls',\n    shell=True,\n)\n",
+        [(2, "CWE-78")],
+    ),
 }
 
 
@@ -107,19 +125,26 @@ def test_human_commit_after_the_machine_makes_the_line_human(repo: ScratchRepo) 
 
 def test_machine_argument_in_a_human_call_counts(repo: ScratchRepo) -> None:
     base = {"parcelkit/run.py": "import subprocess\nsubprocess.run(\n    'ls',\n)\n"}
-    context = machine_change(repo, base, {"parcelkit/run.py": "import subprocess\nsubprocess.run(\n    'ls',\n"
-                                          "    shell=True,\n)\n"})
+    context = machine_change(
+        repo, base, {"parcelkit/run.py": "import subprocess\nsubprocess.run(\n    'ls',\n    shell=True,\n)\n"}
+    )
     found = findings("calls.banned", context)
     assert [(f.line, f.details["cwe"]) for f in found] == [(2, "CWE-78")]
 
 
 def test_team_entry_with_an_argument_condition(repo: ScratchRepo) -> None:
-    entry = {"call": "parcelkit.db.raw_sql", "when": {"arg": 0, "keyword": "sql", "is": "non-literal"},
-             "cwe": "CWE-89", "why": "raw SQL built at run time"}
-    source = ("from parcelkit import db as store\n"
-              "def rows(table):\n"
-              "    store.raw_sql('select 1')\n"
-              "    return store.raw_sql(f'select * from {table}')\n")
+    entry = {
+        "call": "parcelkit.db.raw_sql",
+        "when": {"arg": 0, "keyword": "sql", "is": "non-literal"},
+        "cwe": "CWE-89",
+        "why": "raw SQL built at run time",
+    }
+    source = (
+        "from parcelkit import db as store\n"
+        "def rows(table):\n"
+        "    store.raw_sql('select 1')\n"
+        "    return store.raw_sql(f'select * from {table}')\n"
+    )
     context = machine_change(repo, None, {"parcelkit/q.py": source}, options={"calls.banned": {"entries": [entry]}})
     found = findings("calls.banned", context)
     assert [(f.line, f.details["cwe"]) for f in found] == [(4, "CWE-89")]
@@ -127,8 +152,12 @@ def test_team_entry_with_an_argument_condition(repo: ScratchRepo) -> None:
 
 
 def test_ignore_drops_a_default_entry(repo: ScratchRepo) -> None:
-    context = machine_change(repo, None, {"tools/tmp.py": "import tempfile\nname = tempfile.mktemp()\n"},
-                             options={"calls.banned": {"ignore": ["tempfile.*"]}})
+    context = machine_change(
+        repo,
+        None,
+        {"tools/tmp.py": "import tempfile\nname = tempfile.mktemp()\n"},
+        options={"calls.banned": {"ignore": ["tempfile.*"]}},
+    )
     assert findings("calls.banned", context) == []
 
 
@@ -141,16 +170,19 @@ def test_invalid_team_entry_is_an_error_not_a_crash(repo: ScratchRepo) -> None:
     assert "entries[0]" in message and "'why'" in message and "'is' must be one of" in message
 
 
-@pytest.mark.parametrize(("entry", "problem"), [
-    ({"why": "w"}, "exactly one of 'call' or 'assign'"),
-    ({"call": "a.b", "assign": "c", "why": "w"}, "exactly one of 'call' or 'assign'"),
-    ({"call": "a.b", "why": "w", "cwe": "89"}, "'cwe' must look like CWE-89"),
-    ({"call": "a.b", "why": "w", "when": {"is": "literal"}}, "needs 'arg' and/or 'keyword'"),
-    ({"assign": "*.x", "why": "w", "when": {"arg": 0, "is": "true"}}, "no 'arg' or 'keyword'"),
-    ({"call": "a.b", "why": "w", "when": {"arg": 0, "in": "yaml.SafeLoader"}}, "must be a list"),
-    ({"call": "a.b", "why": "w", "colour": "red"}, "unknown key 'colour'"),
-    ("a.b", "must be a mapping"),
-])
+@pytest.mark.parametrize(
+    ("entry", "problem"),
+    [
+        ({"why": "w"}, "exactly one of 'call' or 'assign'"),
+        ({"call": "a.b", "assign": "c", "why": "w"}, "exactly one of 'call' or 'assign'"),
+        ({"call": "a.b", "why": "w", "cwe": "89"}, "'cwe' must look like CWE-89"),
+        ({"call": "a.b", "why": "w", "when": {"is": "literal"}}, "needs 'arg' and/or 'keyword'"),
+        ({"assign": "*.x", "why": "w", "when": {"arg": 0, "is": "true"}}, "no 'arg' or 'keyword'"),
+        ({"call": "a.b", "why": "w", "when": {"arg": 0, "in": "yaml.SafeLoader"}}, "must be a list"),
+        ({"call": "a.b", "why": "w", "colour": "red"}, "unknown key 'colour'"),
+        ("a.b", "must be a mapping"),
+    ],
+)
 def test_entry_syntax_problems(entry: object, problem: str) -> None:
     assert any(problem in p for p in entry_problems(entry)), entry_problems(entry)
 
@@ -172,16 +204,34 @@ CWE_NAMES = {
     "CWE-470": "Use of Externally-Controlled Input to Select Classes or Code ('Unsafe Reflection')",
 }
 WEAKNESS_OF = {
-    "eval": "CWE-95", "exec": "CWE-95", "compile": "CWE-95",
-    "os.system": "CWE-78", "os.popen": "CWE-78", "subprocess.getoutput": "CWE-78",
-    "subprocess.getstatusoutput": "CWE-78", "asyncio.create_subprocess_shell": "CWE-78", "subprocess.*": "CWE-78",
-    "pickle.load": "CWE-502", "pickle.loads": "CWE-502", "pickle.Unpickler": "CWE-502", "marshal.load": "CWE-502",
-    "marshal.loads": "CWE-502", "shelve.open": "CWE-502", "yaml.load": "CWE-502", "yaml.load_all": "CWE-502",
-    "yaml.unsafe_load": "CWE-502", "yaml.unsafe_load_all": "CWE-502",
+    "eval": "CWE-95",
+    "exec": "CWE-95",
+    "compile": "CWE-95",
+    "os.system": "CWE-78",
+    "os.popen": "CWE-78",
+    "subprocess.getoutput": "CWE-78",
+    "subprocess.getstatusoutput": "CWE-78",
+    "asyncio.create_subprocess_shell": "CWE-78",
+    "subprocess.*": "CWE-78",
+    "pickle.load": "CWE-502",
+    "pickle.loads": "CWE-502",
+    "pickle.Unpickler": "CWE-502",
+    "marshal.load": "CWE-502",
+    "marshal.loads": "CWE-502",
+    "shelve.open": "CWE-502",
+    "yaml.load": "CWE-502",
+    "yaml.load_all": "CWE-502",
+    "yaml.unsafe_load": "CWE-502",
+    "yaml.unsafe_load_all": "CWE-502",
     "tempfile.mktemp": "CWE-377",
-    "*": "CWE-295", "ssl._create_unverified_context": "CWE-295", "ssl._create_default_https_context": "CWE-295",
-    "*.check_hostname": "CWE-295", "*.verify_mode": "CWE-295", "*.verify": "CWE-295",
-    "__import__": "CWE-470", "importlib.import_module": "CWE-470",
+    "*": "CWE-295",
+    "ssl._create_unverified_context": "CWE-295",
+    "ssl._create_default_https_context": "CWE-295",
+    "*.check_hostname": "CWE-295",
+    "*.verify_mode": "CWE-295",
+    "*.verify": "CWE-295",
+    "__import__": "CWE-470",
+    "importlib.import_module": "CWE-470",
 }
 
 
@@ -205,4 +255,3 @@ def test_default_names_exist_in_python_itself() -> None:
         module_name, _, attribute = target.rpartition(".")
         module = importlib.import_module(module_name or "builtins")
         assert hasattr(module, attribute), target
-

@@ -10,8 +10,16 @@ import pytest
 from verifier.rules import load_all
 
 DOC = Path(__file__).resolve().parent.parent / "docs" / "rules.md"
-STATIC_RULES = ["calls.banned", "paths.protected", "tests.weakened", "config.harness", "patch.size", "deps.added",
-                "secrets.literal", "code.syntax"]
+STATIC_RULES = [
+    "calls.banned",
+    "paths.protected",
+    "tests.weakened",
+    "config.harness",
+    "patch.size",
+    "deps.added",
+    "secrets.literal",
+    "code.syntax",
+]
 
 
 @pytest.mark.parametrize("rule_id", STATIC_RULES)

@@ -9,24 +9,25 @@ from verifier.demo.scratch import ScratchRepo
 
 BASE_FILES = {"parcelkit/__init__.py": "", "parcelkit/rates.py": demo.RATES, "tests/test_rates.py": demo.TEST_RATES}
 
-SHELL_HELPER = '''import os as system_tools
+SHELL_HELPER = """import os as system_tools
 
 
 def archive(folder: str) -> int:
     return system_tools.system("tar czf parcels.tgz " + folder)
-'''
-TEST_SHELL_HELPER = '''from parcelkit.shipping import archive
+"""
+TEST_SHELL_HELPER = """from parcelkit.shipping import archive
 
 
 def test_archive_runs(tmp_path):
     assert archive(str(tmp_path)) == 0
-'''
+"""
 
 
 def test_banned_call_blocks_a_tested_change(repo: ScratchRepo) -> None:
     repo.commit("Start parcelkit", BASE_FILES)
-    sha = repo.commit(machine("Archive parcels"), {"parcelkit/shipping.py": SHELL_HELPER,
-                                                   "tests/test_shipping.py": TEST_SHELL_HELPER})
+    sha = repo.commit(
+        machine("Archive parcels"), {"parcelkit/shipping.py": SHELL_HELPER, "tests/test_shipping.py": TEST_SHELL_HELPER}
+    )
     out = run_check(repo, sha)
     assert out.report is not None, out.stderr
     banned = [f for f in out.report["findings"] if f["rule"] == "calls.banned"]
@@ -37,10 +38,13 @@ def test_banned_call_blocks_a_tested_change(repo: ScratchRepo) -> None:
 
 def test_changed_expectation_warns_and_the_change_passes_with_a_warning(repo: ScratchRepo) -> None:
     repo.commit("Start parcelkit", BASE_FILES)
-    sha = repo.commit(machine("Raise the base rate"), {
-        "parcelkit/rates.py": demo.RATES.replace("BASE_RATE = 4.50", "BASE_RATE = 4.80"),
-        "tests/test_rates.py": demo.TEST_RATES.replace("== 5.70", "== 6.00"),
-    })
+    sha = repo.commit(
+        machine("Raise the base rate"),
+        {
+            "parcelkit/rates.py": demo.RATES.replace("BASE_RATE = 4.50", "BASE_RATE = 4.80"),
+            "tests/test_rates.py": demo.TEST_RATES.replace("== 5.70", "== 6.00"),
+        },
+    )
     out = run_check(repo, sha)
     assert out.report is not None, out.stderr
     weakened = [f for f in out.report["findings"] if f["rule"] == "tests.weakened"]

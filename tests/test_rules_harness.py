@@ -12,8 +12,18 @@ from verifier.rules.harness import DEFAULT_PRAGMA, exclusion_patterns
 PYPROJECT = '[project]\nname = "parcelkit"\nversion = "1.0"\n\n[tool.pytest.ini_options]\ntestpaths = ["tests"]\n'
 
 
-@pytest.mark.parametrize("path", ["conftest.py", "tests/conftest.py", "pytest.ini", ".coveragerc", "sitecustomize.py",
-                                  "src/usercustomize.py", "parcelkit-hooks.pth"])
+@pytest.mark.parametrize(
+    "path",
+    [
+        "conftest.py",
+        "tests/conftest.py",
+        "pytest.ini",
+        ".coveragerc",
+        "sitecustomize.py",
+        "src/usercustomize.py",
+        "parcelkit-hooks.pth",
+    ],
+)
 def test_harness_files(repo: ScratchRepo, path: str) -> None:
     context = machine_change(repo, {"README.md": "x\n"}, {path: "import os\n"})
     assert [(f.path, f.line) for f in findings("config.harness", context)] == [(path, 1)]
@@ -34,8 +44,10 @@ def test_other_sections_of_pyproject_are_not_harness(repo: ScratchRepo) -> None:
 
 def test_removed_coverage_lines_of_setup_cfg(repo: ScratchRepo) -> None:
     base = "[metadata]\nname = parcelkit\n\n[coverage:run]\nbranch = true\nsource = parcelkit\n"
-    found = findings("config.harness", machine_change(repo, {"setup.cfg": base},
-                                                      {"setup.cfg": base.replace("source = parcelkit\n", "")}))
+    found = findings(
+        "config.harness",
+        machine_change(repo, {"setup.cfg": base}, {"setup.cfg": base.replace("source = parcelkit\n", "")}),
+    )
     assert [(f.details["removed"], f.line) for f in found] == [([6], None)]
 
 
@@ -66,8 +78,10 @@ def test_pragma_on_a_human_line_is_not_reported(repo: ScratchRepo) -> None:
 
 def test_project_exclusion_pattern_read_at_base(repo: ScratchRepo) -> None:
     """The project's .coveragerc is untouched by the change: the rule reads it at the base revision."""
-    base = {".coveragerc": "[report]\nexclude_also =\n    raise NotImplementedError\n    ^\\s*if DEBUG:\n",
-            "parcelkit/rates.py": "def rate(w):\n    return 4.5 * w\n"}
+    base = {
+        ".coveragerc": "[report]\nexclude_also =\n    raise NotImplementedError\n    ^\\s*if DEBUG:\n",
+        "parcelkit/rates.py": "def rate(w):\n    return 4.5 * w\n",
+    }
     head = "def rate(w):\n    if DEBUG:\n        print(w)\n    return 4.5 * w\n"
     found = findings("config.harness", machine_change(repo, base, {"parcelkit/rates.py": head}))
     assert [(f.line, f.details["pattern"]) for f in found] == [(2, r"^\s*if DEBUG:")]  # anchored: per line
@@ -75,8 +89,9 @@ def test_project_exclusion_pattern_read_at_base(repo: ScratchRepo) -> None:
 
 def test_exclusion_patterns_from_each_config_format() -> None:
     configs = {
-        "pyproject.toml": ('[tool.coverage.report]\nexclude_lines = ["if TYPE_CHECKING:"]\n'
-                           'exclude_also = ["@overload"]\n'),
+        "pyproject.toml": (
+            '[tool.coverage.report]\nexclude_lines = ["if TYPE_CHECKING:"]\nexclude_also = ["@overload"]\n'
+        ),
         "setup.cfg": "[coverage:report]\nexclude_lines =\n    def __repr__\n",
         "tox.ini": "[coverage:report]\nexclude_also = assert_never\n",
     }

@@ -13,8 +13,12 @@ def lines(count: int) -> str:
 
 
 def test_over_the_limit_warns(repo: ScratchRepo) -> None:
-    context = machine_change(repo, None, {"parcelkit/table.py": lines(30), "parcelkit/more.py": lines(5)},
-                             options={"patch.size": {"max_lines": 20}})
+    context = machine_change(
+        repo,
+        None,
+        {"parcelkit/table.py": lines(30), "parcelkit/more.py": lines(5)},
+        options={"patch.size": {"max_lines": 20}},
+    )
     found = findings("patch.size", context)
     assert [f.details["lines"] for f in found] == [35]  # git's diff: 30 + 5 added lines
     judged = [f for f in apply_rules("static", context) if f.rule == "patch.size"]
@@ -22,6 +26,10 @@ def test_over_the_limit_warns(repo: ScratchRepo) -> None:
 
 
 def test_at_the_limit_or_excluded_is_silent(repo: ScratchRepo) -> None:
-    context = machine_change(repo, None, {"parcelkit/table.py": lines(20), "gen/schema.py": lines(50)},
-                             options={"patch.size": {"max_lines": 20, "exclude": ["gen/**"]}})
+    context = machine_change(
+        repo,
+        None,
+        {"parcelkit/table.py": lines(20), "gen/schema.py": lines(50)},
+        options={"patch.size": {"max_lines": 20, "exclude": ["gen/**"]}},
+    )
     assert findings("patch.size", context) == []

@@ -9,7 +9,7 @@ from verifier.demo.scratch import ScratchRepo
 from verifier.rules import apply_rules
 from verifier.rules.weakened import _widened
 
-BASE = '''import pytest
+BASE = """import pytest
 
 from parcelkit.rates import rate, ParcelError
 
@@ -37,7 +37,7 @@ def test_table(weight, price):
 class TestZones:
     def test_home_zone(self):
         assert rate(1, zone="home") == 4.5
-'''
+"""
 
 
 def weaken(old: str, new: str) -> str:
@@ -52,35 +52,61 @@ def run(repo: ScratchRepo, head: str, human: bool = False) -> list[tuple[int | N
 
 CASES = {
     "assertion removed": (weaken("    assert rate(1) > 0\n", ""), "1 of 2 assertions removed"),
-    "skip marker added": (weaken("def test_table", "@pytest.mark.skip(reason='flaky')\ndef test_table"),
-                          "pytest.mark.skip added to test_table"),
-    "xfail marker added": (weaken("def test_unknown_zone", "@pytest.mark.xfail\ndef test_unknown_zone"),
-                           "pytest.mark.xfail added to test_unknown_zone"),
-    "skip call added": (weaken("    assert rate(1) == 4.5\n", "    pytest.skip('later')\n    assert rate(1) == 4.5\n"),
-                        "skip call added to test_rate_for_one_kilo"),
-    "module pytestmark": (weaken("from parcelkit", "pytestmark = pytest.mark.skip\nfrom parcelkit"),
-                          "pytest.mark.skip added to the module"),
-    "class marker": (weaken("class TestZones:", "@pytest.mark.skip\nclass TestZones:"),
-                     "pytest.mark.skip added to class TestZones"),
+    "skip marker added": (
+        weaken("def test_table", "@pytest.mark.skip(reason='flaky')\ndef test_table"),
+        "pytest.mark.skip added to test_table",
+    ),
+    "xfail marker added": (
+        weaken("def test_unknown_zone", "@pytest.mark.xfail\ndef test_unknown_zone"),
+        "pytest.mark.xfail added to test_unknown_zone",
+    ),
+    "skip call added": (
+        weaken("    assert rate(1) == 4.5\n", "    pytest.skip('later')\n    assert rate(1) == 4.5\n"),
+        "skip call added to test_rate_for_one_kilo",
+    ),
+    "module pytestmark": (
+        weaken("from parcelkit", "pytestmark = pytest.mark.skip\nfrom parcelkit"),
+        "pytest.mark.skip added to the module",
+    ),
+    "class marker": (
+        weaken("class TestZones:", "@pytest.mark.skip\nclass TestZones:"),
+        "pytest.mark.skip added to class TestZones",
+    ),
     "assert True": (weaken("    assert rate(1) > 0\n", "    assert True\n"), "assertion that cannot fail"),
-    "assert x == x": (weaken("    assert rate(1) > 0\n", "    assert rate(1) == rate(1)\n"),
-                      "assertion that cannot fail"),
+    "assert x == x": (
+        weaken("    assert rate(1) > 0\n", "    assert rate(1) == rate(1)\n"),
+        "assertion that cannot fail",
+    ),
     "assert a string": (weaken("    assert rate(1) > 0\n", "    assert 'checked'\n"), "assertion that cannot fail"),
-    "raises widened": (weaken('pytest.raises(ValueError, match="negative")',
-                              'pytest.raises(Exception, match="negative")'), "pytest.raises widened to Exception"),
-    "raises of a project error widened": (weaken("pytest.raises(ParcelError)", "pytest.raises(BaseException)"),
-                                          "pytest.raises widened to BaseException"),
-    "raises match dropped": (weaken('pytest.raises(ValueError, match="negative")', "pytest.raises(ValueError)"),
-                             "no longer checks the message"),
+    "raises widened": (
+        weaken('pytest.raises(ValueError, match="negative")', 'pytest.raises(Exception, match="negative")'),
+        "pytest.raises widened to Exception",
+    ),
+    "raises of a project error widened": (
+        weaken("pytest.raises(ParcelError)", "pytest.raises(BaseException)"),
+        "pytest.raises widened to BaseException",
+    ),
+    "raises match dropped": (
+        weaken('pytest.raises(ValueError, match="negative")', "pytest.raises(ValueError)"),
+        "no longer checks the message",
+    ),
     "parametrize cut": (weaken("[(1, 4.5), (2, 6.0), (5, 9.0)]", "[(1, 4.5)]"), "parametrize cases cut from 3 to 1"),
-    "test function deleted": (weaken('''def test_unknown_zone():
+    "test function deleted": (
+        weaken(
+            """def test_unknown_zone():
     with pytest.raises(ParcelError):
         rate(1, zone="moon")
 
 
-''', ""), "test function test_unknown_zone deleted"),
-    "expected literal changed": (weaken("assert rate(1) == 4.5\n    assert", "assert rate(1) == 5.0\n    assert"),
-                                 "expected value changed (4.5 -> 5.0)"),
+""",
+            "",
+        ),
+        "test function test_unknown_zone deleted",
+    ),
+    "expected literal changed": (
+        weaken("assert rate(1) == 4.5\n    assert", "assert rate(1) == 5.0\n    assert"),
+        "expected value changed (4.5 -> 5.0)",
+    ),
 }
 
 
@@ -99,7 +125,7 @@ def test_the_same_weakening_by_a_human_is_not_this_rule(repo: ScratchRepo, name:
 
 def test_silent_on_changes_that_do_not_weaken(repo: ScratchRepo) -> None:
     head = weaken("    assert rate(1) > 0\n", "    assert rate(1) > 0\n    assert rate(2) > rate(1)\n")
-    head = head.replace('pytest.raises(ParcelError)', 'pytest.raises(ParcelError, match="zone")')  # narrower
+    head = head.replace("pytest.raises(ParcelError)", 'pytest.raises(ParcelError, match="zone")')  # narrower
     head += "\n\ndef test_new_case():\n    assert rate(3) == 7.5\n"
     head = head.replace("def test_home_zone(self):", "def test_home_zone_price(self):")  # a rename, same body
     assert run(repo, head) == []
@@ -116,8 +142,9 @@ def test_deleted_test_file(repo: ScratchRepo) -> None:
 
 
 def test_changed_expectation_only_warns_even_when_the_rule_blocks(repo: ScratchRepo) -> None:
-    context = machine_change(repo, {"tests/test_rates.py": BASE}, {"tests/test_rates.py": CASES["expected literal "
-                             "changed"][0]})
+    context = machine_change(
+        repo, {"tests/test_rates.py": BASE}, {"tests/test_rates.py": CASES["expected literal changed"][0]}
+    )
     judged = [f for f in apply_rules("static", context) if f.rule == "tests.weakened"]
     assert [f.severity for f in judged] == ["warn"]
 

@@ -49,12 +49,19 @@ def run(backend: NamespaceBackend, tree: Path, tmp_path: Path, monkeypatch: pyte
     private_temp.mkdir()
     monkeypatch.setattr(tempfile, "tempdir", str(private_temp))
 
-    def run_code(code: str, sandbox: object = backend, collect: tuple[str, ...] = (),
-                 env: dict[str, str] | None = None, **limits: float) -> SandboxResult:
+    def run_code(
+        code: str,
+        sandbox: object = backend,
+        collect: tuple[str, ...] = (),
+        env: dict[str, str] | None = None,
+        **limits: float,
+    ) -> SandboxResult:
         marker = f"verifier-test-{uuid.uuid4().hex}"
         request = SandboxRequest(
-            tree=str(tree), python_args=("-c", f"# {marker}\n{textwrap.dedent(code)}"),
-            env={"MARKER": marker, **(env or {})}, limits=Limits(**{"wall_seconds": 30, **limits}),
+            tree=str(tree),
+            python_args=("-c", f"# {marker}\n{textwrap.dedent(code)}"),
+            env={"MARKER": marker, **(env or {})},
+            limits=Limits(**{"wall_seconds": 30, **limits}),
             collect=collect,
         )
         result = sandbox.run(request)  # type: ignore[attr-defined]
@@ -67,13 +74,16 @@ def run(backend: NamespaceBackend, tree: Path, tmp_path: Path, monkeypatch: pyte
 
 def test_a_normal_run_brings_back_the_files_it_wrote(run: Runner, tree: Path) -> None:
     (tree / "leak").symlink_to("/etc/hostname")  # a symlink out of the workspace is never followed
-    result = run("""
+    result = run(
+        """
         import os
         os.makedirs("out")
         with open("out/result.txt", "w") as handle:
             handle.write(open("given.txt").read().upper())
         print("cwd", os.getcwd())
-    """, collect=("out/result.txt", "missing.txt", "leak", "../config.json"))
+    """,
+        collect=("out/result.txt", "missing.txt", "leak", "../config.json"),
+    )
     assert result.exit_status == 0, result.output
     assert result.files == {"out/result.txt": b"FROM THE TREE\n"}
     assert result.limit_hit is None and not result.timed_out
@@ -109,7 +119,8 @@ def test_nothing_can_be_written_outside_the_workspace(run: Runner, tree: Path, t
     name = f"verifier-probe-{uuid.uuid4().hex}"
     targets = [Path("/") / name, Path("/usr") / name, Path("/etc") / name, host_folder / name, tree / name]
     tree_before = sorted(os.listdir(tree))
-    result = run(f"""
+    result = run(
+        f"""
         import os
         for path in {[str(t) for t in targets]!r}:
             try:
@@ -120,7 +131,9 @@ def test_nothing_can_be_written_outside_the_workspace(run: Runner, tree: Path, t
             except OSError as error:
                 print("refused:", path, error.strerror)
         open("in-workspace.txt", "w").write("fine")
-    """, collect=("in-workspace.txt",))
+    """,
+        collect=("in-workspace.txt",),
+    )
     assert result.files == {"in-workspace.txt": b"fine"}
     for target in targets:
         assert not target.exists(), f"{target} appeared on the host"
@@ -129,8 +142,9 @@ def test_nothing_can_be_written_outside_the_workspace(run: Runner, tree: Path, t
         assert f"refused: {read_only} Read-only file system" in result.output
 
 
-def test_home_and_the_parents_environment_stay_secret(run: Runner, tmp_path: Path,
-                                                      monkeypatch: pytest.MonkeyPatch) -> None:
+def test_home_and_the_parents_environment_stay_secret(
+    run: Runner, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     secret = f"secret-{uuid.uuid4().hex}"
     fake_home = tmp_path / "home"
     fake_home.mkdir()
@@ -160,8 +174,9 @@ def test_home_and_the_parents_environment_stay_secret(run: Runner, tmp_path: Pat
     assert secret not in result.output
     assert "cannot read /proc/1/environ Permission denied" in result.output  # the init's, not readable
     # Of the real home the sandbox may show only the way down to the interpreter's own folders.
-    allowed = {Path(p).relative_to(real_home).parts[0] for p in interpreter_paths()
-               if Path(p).is_relative_to(real_home)}
+    allowed = {
+        Path(p).relative_to(real_home).parts[0] for p in interpreter_paths() if Path(p).is_relative_to(real_home)
+    }
     listing = result.output.split("home listing:")[-1].strip()
     shown = set(ast.literal_eval(listing)) if listing.startswith("[") else set()
     assert shown <= allowed
@@ -169,7 +184,8 @@ def test_home_and_the_parents_environment_stay_secret(run: Runner, tmp_path: Pat
 
 
 def test_a_fork_bomb_runs_into_the_process_limit(run: Runner) -> None:
-    result = run("""
+    result = run(
+        """
         import os, time
         children = 0
         try:
@@ -180,29 +196,38 @@ def test_a_fork_bomb_runs_into_the_process_limit(run: Runner) -> None:
                 children += 1
         finally:
             print("children:", children, flush=True)
-    """, processes=24)
+    """,
+        processes=24,
+    )
     assert result.limit_hit == "processes", result.output
     assert int(result.output.split("children:")[1].split()[0]) < 24
 
 
 def test_an_endless_fork_bomb_is_killed_at_the_wall_limit(run: Runner) -> None:
-    result = run("""
+    result = run(
+        """
         import os
         while True:
             try:
                 os.fork()
             except OSError:
                 pass
-    """, processes=32, wall_seconds=3)
+    """,
+        processes=32,
+        wall_seconds=3,
+    )
     assert result.timed_out and result.limit_hit == "wall"
     assert result.exit_status is None and result.signal == signal.SIGKILL
 
 
 def test_a_memory_hog_gets_a_memory_error(run: Runner) -> None:
-    result = run("""
+    result = run(
+        """
         hog = bytearray(8 << 30)
         print("allocated", len(hog))
-    """, memory_mb=512)
+    """,
+        memory_mb=512,
+    )
     assert result.exit_status == 1 and "allocated" not in result.output
     assert result.limit_hit == "memory"
 
@@ -213,23 +238,29 @@ def test_an_endless_loop_is_killed_at_the_wall_limit(run: Runner) -> None:
 
 
 def test_a_flood_of_output_is_capped_and_stopped(run: Runner) -> None:
-    result = run("""
+    result = run(
+        """
         import sys
         chunk = b"x" * (1 << 20)
         for _ in range(100):
             sys.stdout.buffer.write(chunk)
         print("finished")
-    """, output_bytes=10_000)
+    """,
+        output_bytes=10_000,
+    )
     assert result.output_truncated and result.limit_hit == "output"
     assert len(result.output) < 10_200
     assert "finished" not in result.output
 
 
 def test_a_file_larger_than_the_file_size_limit_cannot_be_written(run: Runner) -> None:
-    result = run("""
+    result = run(
+        """
         with open("big.bin", "wb") as handle:
             handle.write(b"x" * (3 << 20))
-    """, file_size_mb=1)
+    """,
+        file_size_mb=1,
+    )
     assert result.exit_status == 1 and result.limit_hit == "file-size", result.output
 
 
@@ -250,9 +281,12 @@ except KeyboardInterrupt:
 def _start_parent(tree: Path, temp: Path, marker: str) -> subprocess.Popen[str]:
     """A separate verifier-like process running an endless command, once that command is running."""
     # The marker goes in reversed, so that only the sandboxed command carries it, not this parent.
-    parent = subprocess.Popen([sys.executable, "-c", _PARENT, str(tree), marker[::-1]], text=True,
-                              stdout=subprocess.PIPE, env={**os.environ, "PYTHONPATH": str(ROOT),
-                                                           "TMPDIR": str(temp)})
+    parent = subprocess.Popen(
+        [sys.executable, "-c", _PARENT, str(tree), marker[::-1]],
+        text=True,
+        stdout=subprocess.PIPE,
+        env={**os.environ, "PYTHONPATH": str(ROOT), "TMPDIR": str(temp)},
+    )
     for _ in range(300):
         if processes_carrying(marker):
             return parent
@@ -270,8 +304,7 @@ def _wait_until_gone(marker: str) -> list[int]:
     return left
 
 
-def test_ctrl_c_in_the_parent_cleans_up_and_re_raises(backend: NamespaceBackend, tree: Path,
-                                                      tmp_path: Path) -> None:
+def test_ctrl_c_in_the_parent_cleans_up_and_re_raises(backend: NamespaceBackend, tree: Path, tmp_path: Path) -> None:
     marker = f"verifier-test-{uuid.uuid4().hex}"
     temp = tmp_path / "temp"
     temp.mkdir()

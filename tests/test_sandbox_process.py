@@ -31,12 +31,15 @@ def run(tree: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Runner:
     private_temp.mkdir()
     monkeypatch.setattr(tempfile, "tempdir", str(private_temp))
 
-    def run_code(code: str, collect: tuple[str, ...] = (), env: dict[str, str] | None = None,
-                 **limits: float) -> SandboxResult:
+    def run_code(
+        code: str, collect: tuple[str, ...] = (), env: dict[str, str] | None = None, **limits: float
+    ) -> SandboxResult:
         marker = f"verifier-test-{uuid.uuid4().hex}"
         request = SandboxRequest(
-            tree=str(tree), python_args=("-c", f"# {marker}\n{textwrap.dedent(code)}"),
-            env={"MARKER": marker, **(env or {})}, limits=Limits(**{"wall_seconds": 30, **limits}),
+            tree=str(tree),
+            python_args=("-c", f"# {marker}\n{textwrap.dedent(code)}"),
+            env={"MARKER": marker, **(env or {})},
+            limits=Limits(**{"wall_seconds": 30, **limits}),
             collect=collect,
         )
         result = ProcessBackend().run(request)
@@ -56,24 +59,30 @@ def test_written_files_come_back_and_symlinks_are_not_followed(run: Runner, tree
     outside = tmp_path / "outside.txt"
     outside.write_text("not yours")
     (tree / "leak").symlink_to(outside)
-    result = run("""
+    result = run(
+        """
         import os
         os.makedirs("out")
         open("out/result.txt", "w").write(open("given.txt").read().upper())
         os.symlink("../given.txt", "out/link.txt")
-    """, collect=("out/result.txt", "out/link.txt", "leak", "missing.txt", "../tree/given.txt"))
+    """,
+        collect=("out/result.txt", "out/link.txt", "leak", "missing.txt", "../tree/given.txt"),
+    )
     assert result.exit_status == 0, result.output
     assert result.files == {"out/result.txt": b"FROM THE TREE\n"}
     assert sorted(os.listdir(tree)) == ["given.txt", "leak"]  # the tree itself is never written
 
 
 def test_output_is_capped_keeping_head_and_tail(run: Runner) -> None:
-    result = run("""
+    result = run(
+        """
         print("first line")
         for number in range(200_000):
             print("filler", number)
         print("last line")
-    """, output_bytes=4_000)
+    """,
+        output_bytes=4_000,
+    )
     assert result.exit_status == 0
     assert result.output_truncated and result.limit_hit == "output"
     assert result.output.startswith("first line") and result.output.rstrip().endswith("last line")
@@ -81,14 +90,17 @@ def test_output_is_capped_keeping_head_and_tail(run: Runner) -> None:
 
 
 def test_a_timeout_kills_the_whole_process_group(run: Runner) -> None:
-    result = run("""
+    result = run(
+        """
         import subprocess, sys, time
         sleeper = "import time; time.sleep(300)"
         code = f"import subprocess, sys, time; subprocess.Popen([sys.executable, '-c', {sleeper!r}]); time.sleep(300)"
         subprocess.Popen([sys.executable, "-c", code])  # a child with a grandchild, both inheriting MARKER
         print("started", flush=True)
         time.sleep(300)
-    """, wall_seconds=3)
+    """,
+        wall_seconds=3,
+    )
     assert result.timed_out and result.limit_hit == "wall" and result.exit_status is None
     assert "started" in result.output  # the fixture then checks that no process with the marker is left
 
@@ -113,7 +125,8 @@ def test_only_the_given_environment_reaches_the_command(run: Runner, monkeypatch
 
 
 def test_a_missing_tree_is_a_clear_error(tmp_path: Path) -> None:
-    request = SandboxRequest(tree=str(tmp_path / "nowhere"), python_args=("-c", "pass"), env={},
-                             limits=Limits(), collect=())
+    request = SandboxRequest(
+        tree=str(tmp_path / "nowhere"), python_args=("-c", "pass"), env={}, limits=Limits(), collect=()
+    )
     with pytest.raises(UsageError, match="is not a folder"):
         ProcessBackend().run(request)

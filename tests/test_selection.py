@@ -34,13 +34,13 @@ LIBRARY = {
     "src/parcelkit/__init__.py": "",
     "src/parcelkit/rates.py": RATES,
     "src/parcelkit/labels.py": "from parcelkit.rates import surcharge\n\n\ndef label(zone):\n"
-                               "    return f\"{zone}:{surcharge(zone)}\"\n",
+    '    return f"{zone}:{surcharge(zone)}"\n',
     "tests/test_rates.py": "from parcelkit.rates import base_rate, surcharge\n\n\n"
-                           "def test_light():\n    assert base_rate(1) == 4\n\n\n"
-                           "def test_heavy():\n    assert base_rate(11) == 6\n\n\n"
-                           "def test_remote():\n    assert surcharge(\"remote\") == 3\n",
+    "def test_light():\n    assert base_rate(1) == 4\n\n\n"
+    "def test_heavy():\n    assert base_rate(11) == 6\n\n\n"
+    'def test_remote():\n    assert surcharge("remote") == 3\n',
     "tests/test_labels.py": "from parcelkit.labels import label\n\n\n"
-                            "def test_label():\n    assert label(\"remote\") == \"remote:3\"\n",
+    'def test_label():\n    assert label("remote") == "remote:3"\n',
     "tests/test_misc.py": "def test_unrelated():\n    assert 1 + 1 == 2\n",
 }
 LIGHT, HEAVY, REMOTE = (f"tests/test_rates.py::test_{name}" for name in ("light", "heavy", "remote"))
@@ -55,8 +55,7 @@ def library(repo: ScratchRepo, policy: str = SMART, extra: dict[str, str] | None
 
 
 def change_heavy_branch(repo: ScratchRepo, new: str = "BASE + 1 + 1") -> None:
-    repo.commit(machine("Spell out the heavy surcharge"),
-                {"src/parcelkit/rates.py": RATES.replace("BASE + 2", new)})
+    repo.commit(machine("Spell out the heavy surcharge"), {"src/parcelkit/rates.py": RATES.replace("BASE + 2", new)})
 
 
 def ran(outcome) -> set[str]:  # type: ignore[no-untyped-def]
@@ -91,9 +90,12 @@ def test_selection_runs_exactly_the_tests_that_executed_the_changed_function_and
 
 def test_a_conftest_change_runs_the_whole_suite(repo):
     library(repo, extra={"tests/conftest.py": "import pytest\n"})
-    repo.commit("Add a zone fixture (by a person)", {
-        "tests/conftest.py": "import pytest\n\n\n@pytest.fixture\ndef zone():\n    return 'remote'\n",
-    })
+    repo.commit(
+        "Add a zone fixture (by a person)",
+        {
+            "tests/conftest.py": "import pytest\n\n\n@pytest.fixture\ndef zone():\n    return 'remote'\n",
+        },
+    )
     change_heavy_branch(repo)
     out = run_check(repo, "HEAD~2..HEAD")
     assert out.code == 0, out.stdout + out.stderr
@@ -105,10 +107,14 @@ def test_a_conftest_change_runs_the_whole_suite(repo):
 
 def test_without_a_map_the_import_graph_chooses(repo):
     library(repo, policy=SMART + "  map_build: never\n  without_map: imports\n")
-    repo.commit(machine("Remote zones cost one more"), {
-        "src/parcelkit/rates.py": RATES.replace('return 3 if zone == "remote" else 0',
-                                                'return 3 if zone in ("remote", "island") else 0'),
-    })
+    repo.commit(
+        machine("Remote zones cost one more"),
+        {
+            "src/parcelkit/rates.py": RATES.replace(
+                'return 3 if zone == "remote" else 0', 'return 3 if zone in ("remote", "island") else 0'
+            ),
+        },
+    )
     out = run_check(repo, "HEAD")
     assert out.code == 0, out.stdout + out.stderr
     selection = out.report["selection"]
@@ -119,7 +125,7 @@ def test_without_a_map_the_import_graph_chooses(repo):
     assert not (repo.path / ".git" / "verifier" / "cache" / "impact").exists()
 
 
-FLAKY = '''\
+FLAKY = """\
 from pathlib import Path
 
 
@@ -134,7 +140,7 @@ def test_flaky():
 
 def test_always_fails():
     assert 2 + 2 == 5
-'''
+"""
 
 
 def test_a_test_that_passes_on_a_rerun_is_reported_flaky_and_a_real_failure_still_blocks(repo):
@@ -143,7 +149,10 @@ def test_a_test_that_passes_on_a_rerun_is_reported_flaky_and_a_real_failure_stil
     out = run_check(repo, "HEAD")
     outcomes = {t["node_id"]: t for t in out.report["tests"]["outcomes"]}
     assert outcomes["tests/test_flaky.py::test_flaky"] == {
-        "node_id": "tests/test_flaky.py::test_flaky", "outcome": "flaky", "attempts": 2}
+        "node_id": "tests/test_flaky.py::test_flaky",
+        "outcome": "flaky",
+        "attempts": 2,
+    }
     assert outcomes["tests/test_flaky.py::test_always_fails"]["outcome"] == "failed"
     assert outcomes["tests/test_flaky.py::test_always_fails"]["attempts"] == 3  # the first run and 2 re-runs
     by_rule = {(f["rule"], f["path"], f["severity"]) for f in out.report["findings"]}
@@ -184,9 +193,24 @@ def test_shards_split_the_tests_and_their_merged_reports_give_the_verdict_of_one
         files.append(tmp_path / f"shard-{k}.json")
         files[-1].write_text(json.dumps(shard.report))
     merged_file = tmp_path / "merged.json"
-    done = subprocess.run([sys.executable, "-m", "verifier", "-C", str(repo.path), "merge-reports", *map(str, files),
-                           "--format", "json", "--output", str(merged_file)],
-                          capture_output=True, text=True, env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"})
+    done = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "verifier",
+            "-C",
+            str(repo.path),
+            "merge-reports",
+            *map(str, files),
+            "--format",
+            "json",
+            "--output",
+            str(merged_file),
+        ],
+        capture_output=True,
+        text=True,
+        env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"},
+    )
     merged = json.loads(merged_file.read_text())
     assert (done.returncode, merged["verdict"]) == (whole.code, whole.report["verdict"]) == (1, "block")
     assert {t["node_id"] for t in merged["tests"]["outcomes"]} == ran(whole)
@@ -194,6 +218,10 @@ def test_shards_split_the_tests_and_their_merged_reports_give_the_verdict_of_one
     key = sorted((f["rule"], f["path"], f["message"]) for f in whole.report["findings"])
     assert sorted((f["rule"], f["path"], f["message"]) for f in merged["findings"]) == key
 
-    missing = subprocess.run([sys.executable, "-m", "verifier", "-C", str(repo.path), "merge-reports", str(files[0])],
-                             capture_output=True, text=True, env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"})
+    missing = subprocess.run(
+        [sys.executable, "-m", "verifier", "-C", str(repo.path), "merge-reports", str(files[0])],
+        capture_output=True,
+        text=True,
+        env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"},
+    )
     assert missing.returncode == 2 and "shard 2/2 is missing" in missing.stderr

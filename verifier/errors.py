@@ -38,9 +38,7 @@ class GitError(VerifierError):
 class PolicyError(VerifierError):
     """A policy file is broken; knows the file (or revision:file), line, column and key."""
 
-    def __init__(
-        self, source: str, line: int | None, key: str | None, problem: str, column: int | None = None
-    ) -> None:
+    def __init__(self, source: str, line: int | None, key: str | None, problem: str, column: int | None = None) -> None:
         where = source if line is None else f"{source}:{line}"
         what = f"key '{key}': {problem}" if key else problem
         at_column = f" (column {column})" if column is not None and line is not None else ""

@@ -121,8 +121,10 @@ class Git:
         read in one ``git diff-tree --stdin`` call."""
         if not shas:
             return {}
-        out = self.run(["diff-tree", "--stdin", "-r", "-m", "--first-parent", "--root", "--no-renames",
-                        "--name-only", "-z"], input="\n".join(shas).encode() + b"\n")
+        out = self.run(
+            ["diff-tree", "--stdin", "-r", "-m", "--first-parent", "--root", "--no-renames", "--name-only", "-z"],
+            input="\n".join(shas).encode() + b"\n",
+        )
         touched: dict[str, list[str]] = {}
         current = None
         for field in out.decode("utf-8", "surrogateescape").split("\0"):

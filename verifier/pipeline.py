@@ -61,14 +61,19 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
     coverage = None
     if run.status == "completed":  # a partial run's coverage would blame the code for what never ran
         coverage = summarise_coverage(
-            provenance.machine_lines, run.coverage, sources, policy.coverage_threshold, policy.coverage_exclude,
+            provenance.machine_lines,
+            run.coverage,
+            sources,
+            policy.coverage_threshold,
+            policy.coverage_exclude,
             threshold_for=lambda path: policy_for_path(policy, path).coverage_threshold,
         )
     dynamic = RuleContext(change, provenance, policy, sources, base_sources, run, coverage)
     findings += apply_rules("dynamic", dynamic)
     notes = _sandbox_notes(run)
-    return _report(change, provenance, policy, run, findings, sources, coverage=coverage, notes=notes,
-                   selection=selection)
+    return _report(
+        change, provenance, policy, run, findings, sources, coverage=coverage, notes=notes, selection=selection
+    )
 
 
 def _changed_sources(git: Git, change: Change) -> tuple[dict[str, str], dict[str, str]]:
@@ -106,16 +111,23 @@ def _base_reader(git: Git, change: Change) -> Callable[[str], str | None]:
 
     return read
 
+
 def _select_and_run(
-    git: Git, change: Change, policy: Policy, options: Options, base_sources: dict[str, str],
-    sources: dict[str, str], say: Progress,
+    git: Git,
+    change: Change,
+    policy: Policy,
+    options: Options,
+    base_sources: dict[str, str],
+    sources: dict[str, str],
+    say: Progress,
 ) -> tuple[Selection, RunResult]:
     """Choose the tests (building the base map when needed), run them at head, and at base when asked."""
     from verifier.selection.plan import select_tests
 
     backend = _backend(git, change, policy, options)
-    selection, impact = select_tests(git, change, policy, backend, base_sources, sources,
-                                     all_tests=options.all_tests, shard=options.shard, say=say)
+    selection, impact = select_tests(
+        git, change, policy, backend, base_sources, sources, all_tests=options.all_tests, shard=options.shard, say=say
+    )
     say(f"tests: {selection.reason} (map: {selection.map_status})")
     run = _run_tests(git, change, policy, selection, backend, say)
     if policy.selection.differential:
@@ -136,7 +148,12 @@ def _backend(git: Git, change: Change, policy: Policy, options: Options):  # typ
 
 
 def _run_tests(
-    git: Git, change: Change, policy: Policy, selection: Selection, backend, say: Progress  # type: ignore[no-untyped-def]
+    git: Git,
+    change: Change,
+    policy: Policy,
+    selection: Selection,
+    backend,
+    say: Progress,  # type: ignore[no-untyped-def]
 ) -> RunResult:
     """Materialise the head tree outside the repository and run the selected tests there, in the sandbox."""
     from verifier.testrun import harness as testrun

@@ -60,8 +60,19 @@ PLACEHOLDER = -1  # a merge's line not yet matched to a parent
 
 _CONFIG = ("-c", "core.quotePath=false", "-c", "diff.noprefix=false", "-c", "diff.mnemonicPrefix=false")
 _PATCH_FLAGS = (
-    "-p", "-U0", "-M", "--no-color", "--no-ext-diff", "--no-textconv", "--no-relative", "--diff-algorithm=myers",
-    "--inter-hunk-context=0", "--src-prefix=a/", "--dst-prefix=b/", "--ignore-submodules=none", "-O/dev/null",
+    "-p",
+    "-U0",
+    "-M",
+    "--no-color",
+    "--no-ext-diff",
+    "--no-textconv",
+    "--no-relative",
+    "--diff-algorithm=myers",
+    "--inter-hunk-context=0",
+    "--src-prefix=a/",
+    "--dst-prefix=b/",
+    "--ignore-submodules=none",
+    "-O/dev/null",
 )
 _LOG_FORMAT = "%x1e%H%x1f%P%x1f%an%x1f%ae%x1f%cn%x1f%ce%x1f%ct%x1f%N%x1f%B"
 _REVERT = re.compile(r"This reverts commit ([0-9a-f]{7,40})")
@@ -319,8 +330,15 @@ def iso(seconds: int) -> str:
 
 
 def read_history(
-    git: Git, ref: str | None, since: int, until: int, *, weeks: int = 4, notes_ref: str = DEFAULT_NOTES_REF,
-    agent_emails: Sequence[str] = (), use_cache: bool = True,
+    git: Git,
+    ref: str | None,
+    since: int,
+    until: int,
+    *,
+    weeks: int = 4,
+    notes_ref: str = DEFAULT_NOTES_REF,
+    agent_emails: Sequence[str] = (),
+    use_cache: bool = True,
 ) -> History:
     """Read the window and the ``weeks`` weeks before it from ``git``, in a few bulk calls; with the
     cache, a span already audited (same window-end revision, span and agent identities: commits never
@@ -335,23 +353,51 @@ def read_history(
     if cached is not None:
         commits, facts, outside = cached
         notes = _read_notes(git, notes_ref, [c.sha for c in commits], use_cache)
-        return History(ref_name, since, until, span_since, end, commits, notes, outside, waivers, emails,
-                       tuple(problems), facts, key)
+        return History(
+            ref_name,
+            since,
+            until,
+            span_since,
+            end,
+            commits,
+            notes,
+            outside,
+            waivers,
+            emails,
+            tuple(problems),
+            facts,
+            key,
+        )
     records = _log_records(git, end, span_since, until, notes_ref) if end is not None else []
     patches = _patches(git, records, use_cache)
     commits_list = [_log_commit(fields, patches) for fields in records]
     notes = {c.sha: note_body(c.note) for c in commits_list if c.note is not None}
     outside = _outside_reverts(git, commits_list)
-    return History(ref_name, since, until, span_since, end, tuple(commits_list), notes, outside, waivers, emails,
-                   tuple(problems), None, key)
+    return History(
+        ref_name,
+        since,
+        until,
+        span_since,
+        end,
+        tuple(commits_list),
+        notes,
+        outside,
+        waivers,
+        emails,
+        tuple(problems),
+        None,
+        key,
+    )
 
 
 def save_lines(git: Git, history: History, lines: Mapping[str, CommitLines]) -> None:
     """Keep the span's commits and the replay's results (a re-run, or one after ``--recheck``, which
     changes only notes, then reads no commit and no patch at all); the newest few spans are kept."""
     commits = [_commit_row(c) for c in history.commits]
-    facts = [[*lines[c.sha][:2], list(lines[c.sha].scope), *lines[c.sha][3:6], list(lines[c.sha].lifetimes)]
-             for c in history.commits]
+    facts = [
+        [*lines[c.sha][:2], list(lines[c.sha].scope), *lines[c.sha][3:6], list(lines[c.sha].lifetimes)]
+        for c in history.commits
+    ]
     outside = [_commit_row(c) for c in history.outside.values()]
     folder = _cache_dir(git)
     _save_marshal(folder / f"span-{history.lines_key}.bin", [commits, facts, outside])
@@ -360,8 +406,9 @@ def save_lines(git: Git, history: History, lines: Mapping[str, CommitLines]) -> 
 
 def _commit_row(commit: LogCommit) -> list[Any]:
     """A commit as the span cache keeps it; names and emails interned, so marshal writes each once."""
-    names = [sys.intern(name) for name in (commit.author, commit.author_email, commit.committer,
-                                           commit.committer_email)]
+    names = [
+        sys.intern(name) for name in (commit.author, commit.author_email, commit.committer, commit.committer_email)
+    ]
     return [commit.sha, " ".join(commit.parents), *names, commit.time, commit.message]
 
 
@@ -381,8 +428,13 @@ def _load_span(git: Git, key: str) -> tuple[tuple[LogCommit, ...], dict[str, Com
 def _read_notes(git: Git, notes_ref: str, shas: Sequence[str], use_cache: bool) -> dict[str, Mapping[str, Any]]:
     """The span's notes, in bulk: ``git notes list`` and one ``cat-file --batch`` of their blobs, or the
     cache of what this same notes ref tip (a commit: its notes never change) gave for this span."""
-    full = notes_ref if notes_ref.startswith("refs/notes/") else f"refs/{notes_ref}" if notes_ref.startswith(
-        "notes/") else f"refs/notes/{notes_ref}"  # as git expands --notes=<ref> (from memory of notes.c)
+    full = (
+        notes_ref
+        if notes_ref.startswith("refs/notes/")
+        else f"refs/{notes_ref}"
+        if notes_ref.startswith("notes/")
+        else f"refs/notes/{notes_ref}"
+    )  # as git expands --notes=<ref> (from memory of notes.c)
     notes_tip = git.run(["rev-parse", "-q", "--verify", f"{full}^{{commit}}"], check=False).decode().strip()
     if not notes_tip:
         return {}
@@ -395,8 +447,11 @@ def _read_notes(git: Git, notes_ref: str, shas: Sequence[str], use_cache: bool) 
     listing = git.run(["notes", "--ref", full, "list"]).decode().split()
     blob_of = {commit: blob for blob, commit in zip(listing[::2], listing[1::2], strict=True) if commit in wanted}
     blobs = git.read_blobs(sorted(set(blob_of.values())))
-    bodies = {blob: note_body(text) for blob, raw in blobs.items()  # a note written twice is read once
-              if (text := raw.decode("utf-8", "surrogateescape").rstrip("\n"))}
+    bodies = {
+        blob: note_body(text)
+        for blob, raw in blobs.items()  # a note written twice is read once
+        if (text := raw.decode("utf-8", "surrogateescape").rstrip("\n"))
+    }
     notes = {sha: bodies[blob_of[sha]] for sha in shas if blob_of.get(sha) in bodies}
     if use_cache:
         _save_marshal(cache_file, notes)
@@ -407,8 +462,15 @@ def _read_notes(git: Git, notes_ref: str, shas: Sequence[str], use_cache: bool) 
 def _window_end(git: Git, ref_name: str, until: int) -> str | None:
     """The newest first-parent ancestor of ``ref_name`` committed before ``until`` (one git call; a ref
     that is not a commit is then reported as git.resolve reports it)."""
-    ask = ["rev-list", "-1", "--first-parent", f"--until=@{until - 1}", "--end-of-options", f"{ref_name}^{{commit}}",
-           "--"]
+    ask = [
+        "rev-list",
+        "-1",
+        "--first-parent",
+        f"--until=@{until - 1}",
+        "--end-of-options",
+        f"{ref_name}^{{commit}}",
+        "--",
+    ]
     out = git.run(ask, check=False)
     if not out.strip():
         tip = git.resolve(ref_name)  # raises the usage error when it is not a commit
@@ -424,8 +486,19 @@ def _current_branch(git: Git) -> str:
 def _log_records(git: Git, end: str, since: int, until: int, notes_ref: str) -> list[list[str]]:
     """The span's commits (fields of ``_LOG_FORMAT``, the note by ``%N``: git reads the notes in the same
     walk), parents before children."""
-    out = git.run(["log", "--topo-order", "--reverse", f"--notes={notes_ref}", f"--since=@{since}",
-                   f"--until=@{until - 1}", f"--format={_LOG_FORMAT}", end, "--"])
+    out = git.run(
+        [
+            "log",
+            "--topo-order",
+            "--reverse",
+            f"--notes={notes_ref}",
+            f"--since=@{since}",
+            f"--until=@{until - 1}",
+            f"--format={_LOG_FORMAT}",
+            end,
+            "--",
+        ]
+    )
     records = []
     for record in out.decode("utf-8", "surrogateescape").split("\x1e")[1:]:
         fields = record.split("\x1f", 8)
@@ -450,11 +523,14 @@ def _patches(git: Git, records: Sequence[list[str]], use_cache: bool) -> dict[st
 
 def _log_commit(fields: list[str], cache: Mapping[str, list[Any]] | None) -> LogCommit:
     sha, parents, an, ae, cn, ce, when, note, message = fields
-    patches = () if cache is None else tuple(
-        tuple(FilePatch._make(entry) for entry in cache[key]) for key in _patch_keys(sha, parents)
+    patches = (
+        ()
+        if cache is None
+        else tuple(tuple(FilePatch._make(entry) for entry in cache[key]) for key in _patch_keys(sha, parents))
     )
-    return LogCommit(sha, tuple(parents.split()), an, ae, cn, ce, int(when), message.rstrip("\n"), patches,
-                     note.rstrip("\n") or None)
+    return LogCommit(
+        sha, tuple(parents.split()), an, ae, cn, ce, int(when), message.rstrip("\n"), patches, note.rstrip("\n") or None
+    )
 
 
 def _patch_keys(sha: str, parents: str) -> list[str]:
@@ -486,8 +562,10 @@ def _diff_trees(git: Git, keys: list[str]) -> dict[str, list[Any]]:
 
 def _diff_tree(git: Git, keys: list[str]) -> dict[str, list[Any]]:
     """Read the patches of ``keys`` in one call; ``--always`` prints a sha line for each, even when empty."""
-    out = git.run([*_CONFIG, "diff-tree", "--stdin", "--always", "--root", "-r", *_PATCH_FLAGS],
-                  input="".join(f"{key}\n" for key in keys).encode())
+    out = git.run(
+        [*_CONFIG, "diff-tree", "--stdin", "--always", "--root", "-r", *_PATCH_FLAGS],
+        input="".join(f"{key}\n" for key in keys).encode(),
+    )
     sections: list[list[str]] = []
     for line in out.decode("utf-8", "surrogateescape").split("\n"):
         # a sha line starts a commit's patch; it is never a patch line (those start with a header word, @,
@@ -497,8 +575,10 @@ def _diff_tree(git: Git, keys: list[str]) -> dict[str, list[Any]]:
         elif sections:
             sections[-1].append(line)
     if len(sections) != len(keys):
-        raise VerifierError(f"git diff-tree gave {len(sections)} patches for {len(keys)} commits",
-                            hint="report this with the repository's git version")
+        raise VerifierError(
+            f"git diff-tree gave {len(sections)} patches for {len(keys)} commits",
+            hint="report this with the repository's git version",
+        )
     return {key: _encode_patches(parse_patch(lines)) for key, lines in zip(keys, sections, strict=True)}
 
 
@@ -511,14 +591,14 @@ def parse_patch(lines: Sequence[str]) -> list[FilePatch]:
         if not lines[index].startswith("diff --git "):
             index += 1
             continue
-        header_names = lines[index][len("diff --git "):]
+        header_names = lines[index][len("diff --git ") :]
         index += 1
         fields: dict[str, str] = {}
         while index < len(lines) and not lines[index].startswith(("diff --git ", "@@ ")):
             line = lines[index]
             for key in _HEADER_FIELDS:
                 if line.startswith(key):
-                    fields.setdefault(key.strip(), line[len(key):])
+                    fields.setdefault(key.strip(), line[len(key) :])
             index += 1
         hunks, index = _read_hunks(lines, index)
         files.append(_file_patch(header_names, fields, hunks))
@@ -532,8 +612,12 @@ def _read_hunks(lines: Sequence[str], index: int) -> tuple[list[int], int]:
         if match is None:
             raise VerifierError(f"cannot read the hunk header {lines[index]!r}")
         old_start, old_count, new_start, new_count = match.groups()
-        hunk = (int(old_start), 1 if old_count is None else int(old_count),
-                int(new_start), 1 if new_count is None else int(new_count))
+        hunk = (
+            int(old_start),
+            1 if old_count is None else int(old_count),
+            int(new_start),
+            1 if new_count is None else int(new_count),
+        )
         hunks.extend(hunk)
         index += 1
         remaining = hunk[1] + hunk[3]
@@ -560,7 +644,7 @@ def _side_path(value: str | None, prefix: str) -> str | None:
     if value is None or value == "/dev/null":
         return None
     path = _unquote(value)
-    return path[len(prefix):] if path.startswith(prefix) else path
+    return path[len(prefix) :] if path.startswith(prefix) else path
 
 
 def _same_path(names: str) -> str:
@@ -581,8 +665,9 @@ def _unquote(text: str) -> str:
 
 def _encode_patches(files: list[FilePatch]) -> list[Any]:
     """Plain lists for the cache; paths interned, so marshal writes each path once."""
-    return [[f.old_path and sys.intern(f.old_path), f.new_path and sys.intern(f.new_path), list(f.hunks)]
-            for f in files]
+    return [
+        [f.old_path and sys.intern(f.old_path), f.new_path and sys.intern(f.new_path), list(f.hunks)] for f in files
+    ]
 
 
 def _cache_dir(git: Git) -> Path:
@@ -656,8 +741,9 @@ def note_body(text: str) -> Mapping[str, Any]:
     return body if isinstance(body, dict) else {"format": None, "invalid": "not a JSON object"}
 
 
-def _policy_facts(git: Git, end: str | None, until: int,
-                  use_cache: bool = True) -> tuple[tuple[WaiverInfo, ...], tuple[str, ...], list[str]]:
+def _policy_facts(
+    git: Git, end: str | None, until: int, use_cache: bool = True
+) -> tuple[tuple[WaiverInfo, ...], tuple[str, ...], list[str]]:
     """Waivers and agent identities of the trusted policy at the window's end (a broken policy is a fact
     to report, not a reason to stop the audit). Without an organisation policy (a file on disk, which may
     change) the policy depends only on the window-end revision, its last day, the shipped default and the
@@ -676,8 +762,7 @@ def _policy_facts(git: Git, end: str | None, until: int,
     waivers = tuple(WaiverInfo(w.rule, w.path, w.reason, w.owner, str(w.expires)) for w in policy.waivers)
     identities = policy.agent_identities
     if cache_file is not None:
-        _save_marshal(cache_file, [[[w.rule, w.path, w.reason, w.owner, w.expires] for w in waivers],
-                                   list(identities)])
+        _save_marshal(cache_file, [[[w.rule, w.path, w.reason, w.owner, w.expires] for w in waivers], list(identities)])
         _keep_newest(cache_file.parent, "policy-*.bin")
     return waivers, identities, []
 
@@ -706,8 +791,11 @@ def _outside_reverts(git: Git, commits: Sequence[LogCommit]) -> dict[str, LogCom
     unknown = [n for n in names if not any(sha.startswith(n) for sha in known)]
     if not unknown:
         return {}
-    out = git.run(["log", "--no-walk=unsorted", "--ignore-missing", f"--format={_LOG_FORMAT}", "--stdin"],
-                  input="".join(f"{n}\n" for n in unknown).encode(), check=False)
+    out = git.run(
+        ["log", "--no-walk=unsorted", "--ignore-missing", f"--format={_LOG_FORMAT}", "--stdin"],
+        input="".join(f"{n}\n" for n in unknown).encode(),
+        check=False,
+    )
     found = {}
     for record in out.decode("utf-8", "surrogateescape").split("\x1e")[1:]:
         sha, parents, an, ae, cn, ce, when, _note, message = record.split("\x1f", 8)
@@ -883,11 +971,18 @@ class _Replay:
                     self.states.pop(parent, None)
         return state
 
-    def _bury_merged(self, position: int, commit: LogCommit, parents: list[dict[str, list[int]]],
-                     state: Mapping[str, list[int]]) -> None:
+    def _bury_merged(
+        self, position: int, commit: LogCommit, parents: list[dict[str, list[int]]], state: Mapping[str, list[int]]
+    ) -> None:
         """Lines of the files a merge changed that none of its parents passed on died in the merge."""
-        before = {line for patches, parent in zip(commit.patches, parents, strict=True) for p in patches if p.old_path
-                  for line in parent.get(p.old_path, ()) if line > 0}
+        before = {
+            line
+            for patches, parent in zip(commit.patches, parents, strict=True)
+            for p in patches
+            if p.old_path
+            for line in parent.get(p.old_path, ())
+            if line > 0
+        }
         touched = {p.new_path for patches in commit.patches for p in patches if p.new_path}
         after = {line for path in touched for line in state.get(path, ()) if line > 0}
         self.lines.bury(before - after, position)
@@ -948,17 +1043,24 @@ def line_facts(commits: Sequence[LogCommit], agent_emails: Iterable[str], end: s
         if author is None:
             facts[commit.sha] = CommitLines(added)
         else:
-            facts[commit.sha] = CommitLines(added, author.agent, tuple(author.scope), author.marked,
-                                            replay.machine_added.get(commit.sha, 0), alive[position],
-                                            tuple(sorted(lifetimes[position])))
+            facts[commit.sha] = CommitLines(
+                added,
+                author.agent,
+                tuple(author.scope),
+                author.marked,
+                replay.machine_added.get(commit.sha, 0),
+                alive[position],
+                tuple(sorted(lifetimes[position])),
+            )
     return facts
 
 
 def compute_audit(history: History, settings: Settings | None = None) -> Audit:
     """The audit of ``history``: plain data in, plain data out."""
     settings = settings or Settings()
-    facts = history.lines if history.lines is not None else line_facts(history.commits, history.agent_emails,
-                                                                        history.end)
+    facts = (
+        history.lines if history.lines is not None else line_facts(history.commits, history.agent_emails, history.end)
+    )
     reverts, reverted_by = _reverts(history, facts)
     rows = {
         c.sha: _row(c, facts[c.sha], history.notes.get(c.sha), settings.churn_days, reverted_by.get(c.sha))
@@ -1013,8 +1115,9 @@ def _person(commit: LogCommit) -> str:
     return f"{commit.committer} <{commit.committer_email}>"
 
 
-def _row(commit: LogCommit, lines: CommitLines, note: Mapping[str, Any] | None, churn_days: int,
-         reverted_by: str | None) -> AuditCommit:
+def _row(
+    commit: LogCommit, lines: CommitLines, note: Mapping[str, Any] | None, churn_days: int, reverted_by: str | None
+) -> AuditCommit:
     record = note_record(note)
     verified = record is not None and record.problem is None and record.verdict in VERIFIED_VERDICTS
     verdict = record.verdict if record else None
@@ -1043,8 +1146,13 @@ def _row(commit: LogCommit, lines: CommitLines, note: Mapping[str, Any] | None, 
     )
 
 
-def _period(since: int, until: int, commits: Sequence[LogCommit], rows: Mapping[str, AuditCommit],
-            facts: Mapping[str, CommitLines]) -> Period:
+def _period(
+    since: int,
+    until: int,
+    commits: Sequence[LogCommit],
+    rows: Mapping[str, AuditCommit],
+    facts: Mapping[str, CommitLines],
+) -> Period:
     mine = [rows[c.sha] for c in commits if c.sha in rows]
     return Period(
         since=iso(since),
@@ -1061,8 +1169,9 @@ def _period(since: int, until: int, commits: Sequence[LogCommit], rows: Mapping[
     )
 
 
-def _trend(history: History, rows: Mapping[str, AuditCommit], facts: Mapping[str, CommitLines],
-           weeks: int, window: Period) -> tuple[Period, ...]:
+def _trend(
+    history: History, rows: Mapping[str, AuditCommit], facts: Mapping[str, CommitLines], weeks: int, window: Period
+) -> tuple[Period, ...]:
     periods = []
     for week in range(weeks, 0, -1):
         start, stop = history.since - 7 * DAY * week, history.since - 7 * DAY * (week - 1)
@@ -1076,9 +1185,16 @@ def _groups(rows: Sequence[AuditCommit], key: Any) -> tuple[Group, ...]:
     for row in rows:
         grouped[key(row)].append(row)
     groups = [
-        Group(name, len(mine), sum(r.machine_lines for r in mine), sum(r.lines_alive for r in mine),
-              sum(r.lines_churned for r in mine), sum(1 for r in mine if r.status == "unverified"),
-              sum(1 for r in mine if r.status == "blocked-merged"), sum(1 for r in mine if r.reverted_by))
+        Group(
+            name,
+            len(mine),
+            sum(r.machine_lines for r in mine),
+            sum(r.lines_alive for r in mine),
+            sum(r.lines_churned for r in mine),
+            sum(1 for r in mine if r.status == "unverified"),
+            sum(1 for r in mine if r.status == "blocked-merged"),
+            sum(1 for r in mine if r.reverted_by),
+        )
         for name, mine in grouped.items()
     ]
     return tuple(sorted(groups, key=lambda g: (-g.machine_lines, g.name)))
@@ -1156,8 +1272,16 @@ def no_cycle_collection() -> Iterator[None]:
 def _run_audit(repo: str | os.PathLike[str], request: AuditRequest, now: float | None) -> Audit:
     git = _open(repo)
     since, until = window_bounds(request.since, request.until, now)
-    history = read_history(git, request.ref, since, until, weeks=request.weeks, notes_ref=request.notes_ref,
-                           agent_emails=request.agent_emails, use_cache=request.use_cache)
+    history = read_history(
+        git,
+        request.ref,
+        since,
+        until,
+        weeks=request.weeks,
+        notes_ref=request.notes_ref,
+        agent_emails=request.agent_emails,
+        use_cache=request.use_cache,
+    )
     if history.lines is None:
         lines = line_facts(history.commits, history.agent_emails, history.end)
         if request.use_cache:
@@ -1187,6 +1311,3 @@ def recheck(repo: str | os.PathLike[str], audit: Audit, sandbox: str = "auto", p
             continue
         write_notes(git, report, audit.notes_ref)
     return problems
-
-
-

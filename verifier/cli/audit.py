@@ -20,18 +20,37 @@ def add_audit_command(commands: argparse._SubParsersAction) -> None:  # type: ig
     audit.add_argument("--until", help="last day of the window, YYYY-MM-DD in UTC, included (default: now)")
     audit.add_argument("--ref", help="the branch to audit (default: the current branch)")
     audit.add_argument("--weeks", type=int, default=4, help="trend weeks before the window (default 4)")
-    audit.add_argument("--churn-days", type=int, default=14,
-                       help="a machine line removed within this many days is churn (default 14)")
-    audit.add_argument("--expiry-days", type=int, default=14,
-                       help="list waivers expiring within this many days after the window (default 14)")
-    audit.add_argument("--agent-email", action="append", default=[], metavar="EMAIL",
-                       help="an assistant's email: its unmarked commits count as machine-written (repeatable)")
-    audit.add_argument("--notes-ref", help="where the gate's notes are (default: git config verifier.notesRef, "
-                                           "else refs/notes/verifier)")
-    audit.add_argument("--recheck", action="store_true",
-                       help="run the gate on the unverified machine commits and write their notes first")
-    audit.add_argument("--sandbox", choices=("auto", "docker", "namespace", "process"), default="auto",
-                       help="with --recheck: where the tests run")
+    audit.add_argument(
+        "--churn-days", type=int, default=14, help="a machine line removed within this many days is churn (default 14)"
+    )
+    audit.add_argument(
+        "--expiry-days",
+        type=int,
+        default=14,
+        help="list waivers expiring within this many days after the window (default 14)",
+    )
+    audit.add_argument(
+        "--agent-email",
+        action="append",
+        default=[],
+        metavar="EMAIL",
+        help="an assistant's email: its unmarked commits count as machine-written (repeatable)",
+    )
+    audit.add_argument(
+        "--notes-ref",
+        help="where the gate's notes are (default: git config verifier.notesRef, else refs/notes/verifier)",
+    )
+    audit.add_argument(
+        "--recheck",
+        action="store_true",
+        help="run the gate on the unverified machine commits and write their notes first",
+    )
+    audit.add_argument(
+        "--sandbox",
+        choices=("auto", "docker", "namespace", "process"),
+        default="auto",
+        help="with --recheck: where the tests run",
+    )
     audit.add_argument("--format", action="append", choices=(*FORMATS, "all"), help="output format (repeatable)")
     audit.add_argument("--output", type=Path, help="write the report here (a folder when several formats)")
     audit.add_argument("--no-cache", action="store_true", help="read every patch again (the cache is in the git dir)")
@@ -41,8 +60,14 @@ def run_audit_command(args: argparse.Namespace) -> int:
     from verifier.audit.build import AuditRequest, no_cycle_collection, recheck, run_audit
 
     request = AuditRequest(
-        since=args.since, until=args.until, ref=args.ref, weeks=args.weeks, churn_days=args.churn_days,
-        expiry_days=args.expiry_days, agent_emails=tuple(args.agent_email), notes_ref=_notes_ref(args),
+        since=args.since,
+        until=args.until,
+        ref=args.ref,
+        weeks=args.weeks,
+        churn_days=args.churn_days,
+        expiry_days=args.expiry_days,
+        agent_emails=tuple(args.agent_email),
+        notes_ref=_notes_ref(args),
         use_cache=not args.no_cache,
     )
     audit = run_audit(args.repo, request)
@@ -65,9 +90,9 @@ def _write_reports(audit: Audit, formats: list[str], output: Path | None) -> Non
         for fmt in formats:
             print(render(audit, fmt), end="")
         return
-    targets = [(formats[0], output)] if len(formats) == 1 else [
-        (fmt, output / f"audit.{SUFFIX[fmt]}") for fmt in formats
-    ]
+    targets = (
+        [(formats[0], output)] if len(formats) == 1 else [(fmt, output / f"audit.{SUFFIX[fmt]}") for fmt in formats]
+    )
     for fmt, target in targets:
         target.parent.mkdir(parents=True, exist_ok=True)
         target.write_text(render(audit, fmt), encoding="utf-8")

@@ -30,19 +30,34 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("--staged", action="store_true", help="check the index against HEAD (a commit hook)")
     check.add_argument("--message-file", type=Path, help="with --staged: the pending commit message")
     check.add_argument("--sandbox", choices=SANDBOX_CHOICES, default="auto", help="where the tests run")
-    check.add_argument("--format", action="append", choices=(*FORMAT_SUFFIX, "all"),
-                       help="output format (repeatable; 'all' for every format)")
+    check.add_argument(
+        "--format",
+        action="append",
+        choices=(*FORMAT_SUFFIX, "all"),
+        help="output format (repeatable; 'all' for every format)",
+    )
     check.add_argument("--output", type=Path, help="write the report here (a folder when several formats)")
     check.add_argument("--quiet", action="store_true", help="print only the verdict line and findings")
     check.add_argument("--no-notes", action="store_true", help="do not record the verdict as git notes")
-    check.add_argument("--notes-ref", help="the notes ref (default: git config verifier.notesRef, else "
-                       "refs/notes/verifier)")
-    check.add_argument("--deepen", type=int, metavar="N", help="in a shallow clone, fetch N more commits at a "
-                       "time (up to 10 times) until the change's base is present")
-    check.add_argument("--all-tests", action="store_true", help="run every test, not only those that can observe "
-                       "the change")
-    check.add_argument("--shard", type=_shard, metavar="K/N", help="run shard K of N of the selected tests (one "
-                       "CI machine each); join the JSON reports with 'verifier merge-reports'")
+    check.add_argument(
+        "--notes-ref", help="the notes ref (default: git config verifier.notesRef, else refs/notes/verifier)"
+    )
+    check.add_argument(
+        "--deepen",
+        type=int,
+        metavar="N",
+        help="in a shallow clone, fetch N more commits at a time (up to 10 times) until the change's base is present",
+    )
+    check.add_argument(
+        "--all-tests", action="store_true", help="run every test, not only those that can observe the change"
+    )
+    check.add_argument(
+        "--shard",
+        type=_shard,
+        metavar="K/N",
+        help="run shard K of N of the selected tests (one "
+        "CI machine each); join the JSON reports with 'verifier merge-reports'",
+    )
     _add_org_policy(check)
 
     merge = commands.add_parser("merge-reports", help="join the JSON reports of 'check --shard K/N' into one verdict")
@@ -80,8 +95,11 @@ def build_parser() -> argparse.ArgumentParser:
     demo.add_argument("--sandbox", choices=SANDBOX_CHOICES, default="auto")
 
     sandbox = commands.add_parser("sandbox", help="sandbox tools")
-    sandbox.add_argument("action", choices=("doctor", "build"),
-                         help="doctor: what works here; build: the docker image for this repository")
+    sandbox.add_argument(
+        "action",
+        choices=("doctor", "build"),
+        help="doctor: what works here; build: the docker image for this repository",
+    )
     sandbox.add_argument("--rev", default="HEAD", help="build: read the test dependencies at this revision")
 
     from verifier.cli.audit import add_audit_command
@@ -91,8 +109,11 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _add_org_policy(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--org-policy", metavar="PATH",
-                        help="the organisation policy, layered under the repository's (default: $VERIFIER_ORG_POLICY)")
+    parser.add_argument(
+        "--org-policy",
+        metavar="PATH",
+        help="the organisation policy, layered under the repository's (default: $VERIFIER_ORG_POLICY)",
+    )
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -109,14 +130,25 @@ def main(argv: Sequence[str] | None = None) -> int:
     except Exception as error:  # fail closed: an internal error is never a pass
         if os.environ.get("VERIFIER_DEBUG"):
             raise
-        print(f"verifier: internal error: {type(error).__name__}: {error} "
-              "(set VERIFIER_DEBUG=1 for the traceback)", file=sys.stderr)
+        print(
+            f"verifier: internal error: {type(error).__name__}: {error} (set VERIFIER_DEBUG=1 for the traceback)",
+            file=sys.stderr,
+        )
         return EXIT_UNVERIFIED
 
 
 def _dispatch(args: argparse.Namespace) -> int:
-    handlers = {"check": _check, "rules": _rules, "policy": _policy, "demo": _demo, "sandbox": _sandbox,
-                "hooks": _hooks, "hook": _hook, "audit": _audit, "merge-reports": _merge_reports}
+    handlers = {
+        "check": _check,
+        "rules": _rules,
+        "policy": _policy,
+        "demo": _demo,
+        "sandbox": _sandbox,
+        "hooks": _hooks,
+        "hook": _hook,
+        "audit": _audit,
+        "merge-reports": _merge_reports,
+    }
     return handlers[args.command](args)
 
 
@@ -132,14 +164,21 @@ def _check(args: argparse.Namespace) -> int:
     from verifier.verdict.decision import EXIT_CODES
 
     spec = RevisionSpec(text=args.spec, staged=args.staged, message=message)
-    index_file = os.path.abspath(os.environ["GIT_INDEX_FILE"]) if args.staged and os.environ.get("GIT_INDEX_FILE") \
-        else None
+    index_file = (
+        os.path.abspath(os.environ["GIT_INDEX_FILE"]) if args.staged and os.environ.get("GIT_INDEX_FILE") else None
+    )
     with StageDisplay() as display:
         progress = None if args.quiet else display
         if args.deepen:
             _deepen(args, progress)
-        options = Options(sandbox=args.sandbox, progress=progress, org_policy=args.org_policy, index_file=index_file,
-                          all_tests=args.all_tests, shard=args.shard)
+        options = Options(
+            sandbox=args.sandbox,
+            progress=progress,
+            org_policy=args.org_policy,
+            index_file=index_file,
+            all_tests=args.all_tests,
+            shard=args.shard,
+        )
         report = verify(args.repo, spec, options)
     _record_notes(report, args)
     _emit(report, args)
@@ -275,9 +314,11 @@ def _policy(args: argparse.Namespace) -> int:
     if not target.is_file():
         raise UsageError(f"no policy file {target}", hint="name one: verifier policy check FILE")
     policy = build_policy(file_layers(target, root, args.org_policy))
-    print(f"{target}: valid (coverage threshold {policy.coverage_threshold:g}%, "
-          f"wall limit {policy.limits.wall_seconds:g}s, {len(policy.overrides)} override(s), "
-          f"{len(policy.waivers)} waiver(s))")
+    print(
+        f"{target}: valid (coverage threshold {policy.coverage_threshold:g}%, "
+        f"wall limit {policy.limits.wall_seconds:g}s, {len(policy.overrides)} override(s), "
+        f"{len(policy.waivers)} waiver(s))"
+    )
     return 0
 
 
@@ -352,4 +393,3 @@ def _sandbox(args: argparse.Namespace) -> int:
 
 if __name__ == "__main__":  # pragma: no cover - python -m verifier.cli.main
     sys.exit(main())
-

@@ -28,7 +28,7 @@ def price(weight_kg: float) -> float:
     return round(BASE_RATE + PER_KG * weight_kg, 2)
 '''
 
-TEST_RATES = '''from parcelkit.rates import price
+TEST_RATES = """from parcelkit.rates import price
 import pytest
 
 
@@ -39,7 +39,7 @@ def test_price_of_one_kilo():
 def test_rejects_empty_parcels():
     with pytest.raises(ValueError):
         price(0)
-'''
+"""
 
 VOLUME = '''"""Volumetric weight: bulky parcels are priced by size, not mass."""
 
@@ -51,12 +51,12 @@ def volumetric_weight(length_cm: float, width_cm: float, height_cm: float) -> fl
     return round(length_cm * width_cm * height_cm / DIVISOR, 2)
 '''
 
-TEST_VOLUME = '''from parcelkit.volume import volumetric_weight
+TEST_VOLUME = """from parcelkit.volume import volumetric_weight
 
 
 def test_volumetric_weight_of_a_shoebox():
     assert volumetric_weight(30, 20, 10) == 1.2
-'''
+"""
 
 ZONES = '''"""Surcharges by delivery zone."""
 
@@ -74,7 +74,7 @@ def ferry_fee() -> float:
     return 3.25
 '''
 
-TEST_ZONES = '''from parcelkit.zones import surcharge
+TEST_ZONES = """from parcelkit.zones import surcharge
 
 
 def test_city_is_free():
@@ -83,7 +83,7 @@ def test_city_is_free():
 
 def test_rural_costs_two():
     assert surcharge("rural") == 2.0
-'''
+"""
 
 ROUNDING = RATES.replace("round(BASE_RATE + PER_KG * weight_kg, 2)", "int(BASE_RATE + PER_KG * weight_kg)")
 
@@ -95,14 +95,21 @@ def machine_message(title: str) -> str:
 def build(path: Path) -> tuple[ScratchRepo, list[tuple[str, str]]]:
     """Create the demo repository; return it and the (commit, what it shows) pairs to check."""
     repo = ScratchRepo(path)
-    repo.commit("Start parcelkit: price by weight", {
-        "parcelkit/__init__.py": "", "parcelkit/rates.py": RATES, "tests/test_rates.py": TEST_RATES,
-        "README.md": "# parcelkit\n\nParcel pricing for Quillfeather Logistics.\n",
-    })
-    tested = repo.commit(machine_message("Add volumetric weight"),
-                         {"parcelkit/volume.py": VOLUME, "tests/test_volume.py": TEST_VOLUME})
-    uncovered = repo.commit(machine_message("Add zone surcharges"),
-                            {"parcelkit/zones.py": ZONES, "tests/test_zones.py": TEST_ZONES})
+    repo.commit(
+        "Start parcelkit: price by weight",
+        {
+            "parcelkit/__init__.py": "",
+            "parcelkit/rates.py": RATES,
+            "tests/test_rates.py": TEST_RATES,
+            "README.md": "# parcelkit\n\nParcel pricing for Quillfeather Logistics.\n",
+        },
+    )
+    tested = repo.commit(
+        machine_message("Add volumetric weight"), {"parcelkit/volume.py": VOLUME, "tests/test_volume.py": TEST_VOLUME}
+    )
+    uncovered = repo.commit(
+        machine_message("Add zone surcharges"), {"parcelkit/zones.py": ZONES, "tests/test_zones.py": TEST_ZONES}
+    )
     broken = repo.commit(machine_message("Simplify price rounding"), {"parcelkit/rates.py": ROUNDING})
     return repo, [
         (tested, "a tested assistant commit: expect PASS"),
@@ -147,6 +154,8 @@ def _demo_sandbox(requested: str) -> str:
         return requested
     backend = choose("auto", allow_process=True)
     if backend.name == "process":
-        print("note: no isolating sandbox works here ('verifier sandbox doctor' says why); the demo's own sample "
-              "code runs in the process sandbox, which isolates nothing. 'verifier check' never falls back so.\n")
+        print(
+            "note: no isolating sandbox works here ('verifier sandbox doctor' says why); the demo's own sample "
+            "code runs in the process sandbox, which isolates nothing. 'verifier check' never falls back so.\n"
+        )
     return backend.name

@@ -34,8 +34,12 @@ class ScratchRepo:
     def git(self, *args: str, env: Mapping[str, str] | None = None, input: bytes | None = None) -> str:
         """Run git in the repository; raise with git's message when it fails."""
         done = subprocess.run(
-            ["git", *args], cwd=self.path, capture_output=True, input=input,
-            env={**os.environ, **IDENTITY, **(env or {})}, check=False,
+            ["git", *args],
+            cwd=self.path,
+            capture_output=True,
+            input=input,
+            env={**os.environ, **IDENTITY, **(env or {})},
+            check=False,
         )
         if done.returncode != 0:
             raise RuntimeError(f"git {' '.join(args)}: {done.stderr.decode(errors='replace')}")
@@ -51,8 +55,12 @@ class ScratchRepo:
                 target.write_text(content, encoding="utf-8")
 
     def commit(
-        self, message: str, files: Mapping[str, str | bytes] | None = None, date: str | None = None,
-        remove: tuple[str, ...] = (), author: tuple[str, str] | None = None,
+        self,
+        message: str,
+        files: Mapping[str, str | bytes] | None = None,
+        date: str | None = None,
+        remove: tuple[str, ...] = (),
+        author: tuple[str, str] | None = None,
     ) -> str:
         """Write ``files``, remove ``remove``, commit everything with ``message``; return the new sha."""
         self.write(files or {})

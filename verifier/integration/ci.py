@@ -15,8 +15,9 @@ from verifier.gitio import Git
 DEFAULT_ROUNDS = 10
 
 
-def deepen_for(git: Git, spec: str | None, step: int, rounds: int = DEFAULT_ROUNDS,
-               say: Callable[[str], None] = lambda _text: None) -> int:
+def deepen_for(
+    git: Git, spec: str | None, step: int, rounds: int = DEFAULT_ROUNDS, say: Callable[[str], None] = lambda _text: None
+) -> int:
     """Deepen a shallow clone until ``spec`` can be checked; return how many fetches it took."""
     fetches = 0
     while git.is_shallow() and not history_ready(git, spec) and fetches < rounds:

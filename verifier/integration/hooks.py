@@ -56,8 +56,9 @@ def package_home() -> Path:
 def hook_text(name: str, python: str | None = None, home: str | None = None) -> str:
     """The shim ``name`` with the interpreter and package folder written in."""
     template = (shipped_dir() / name).read_text(encoding="utf-8")
-    return (template.replace("@VERIFIER_PYTHON@", _sh_quote(python or sys.executable))
-            .replace("@VERIFIER_HOME@", _sh_quote(home or str(package_home()))))
+    return template.replace("@VERIFIER_PYTHON@", _sh_quote(python or sys.executable)).replace(
+        "@VERIFIER_HOME@", _sh_quote(home or str(package_home()))
+    )
 
 
 def _sh_quote(text: str) -> str:
@@ -113,12 +114,16 @@ def install(git: Git, names: Sequence[str] = HOOK_NAMES, python: str | None = No
             continue
         if _present(target):
             if _present(chained):
-                raise UsageError(f"{target} exists and so does {chained}",
-                                 hint="decide which of the two to keep, remove the other, and install again")
+                raise UsageError(
+                    f"{target} exists and so does {chained}",
+                    hint="decide which of the two to keep, remove the other, and install again",
+                )
             os.rename(target, chained)
         _write_executable(target, wanted)
-        done.append(f"{name}: installed" + (f" (runs the existing hook first, kept as {chained.name})"
-                                           if _present(chained) else ""))
+        done.append(
+            f"{name}: installed"
+            + (f" (runs the existing hook first, kept as {chained.name})" if _present(chained) else "")
+        )
     return done
 
 
@@ -280,8 +285,10 @@ def _push_line(line: str) -> tuple[str, str]:
     """``<local ref> <local sha> <remote ref> <remote sha>`` (githooks(5), pre-push) -> (local sha, remote sha)."""
     fields = line.split()
     if len(fields) != 4:
-        raise UsageError(f"unexpected pre-push input line: {line.strip()!r}",
-                         hint="git gives '<local ref> <local sha> <remote ref> <remote sha>' per line")
+        raise UsageError(
+            f"unexpected pre-push input line: {line.strip()!r}",
+            hint="git gives '<local ref> <local sha> <remote ref> <remote sha>' per line",
+        )
     return fields[1], fields[3]
 
 
@@ -355,4 +362,3 @@ def _exit_code(report: Report) -> int:
     from verifier.verdict.decision import EXIT_CODES
 
     return EXIT_CODES[report.verdict] if report.verdict != "pass" else EXIT_PASS
-

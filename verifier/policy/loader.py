@@ -259,8 +259,9 @@ def file_layers(path: Path, root: Path, org_policy: str | os.PathLike[str] | Non
     )
 
 
-def load_policy_file(path: Path, root: Path | None = None, org_policy: str | None = None,
-                     today: date | None = None) -> Policy:
+def load_policy_file(
+    path: Path, root: Path | None = None, org_policy: str | None = None, today: date | None = None
+) -> Policy:
     """Validate a policy file on disk and return it merged with the layers below it."""
     return build_policy(file_layers(path, root or path.parent, org_policy), today)
 
@@ -350,8 +351,13 @@ def parse_layer(text: str, source: str) -> dict[str, Any]:
     except yaml.YAMLError as error:
         mark = getattr(error, "problem_mark", None)
         problem = getattr(error, "problem", None) or str(error)
-        raise PolicyError(source, mark.line + 1 if mark else None, None, f"not valid YAML: {problem}",
-                          column=mark.column + 1 if mark else None) from error
+        raise PolicyError(
+            source,
+            mark.line + 1 if mark else None,
+            None,
+            f"not valid YAML: {problem}",
+            column=mark.column + 1 if mark else None,
+        ) from error
     if node is None:
         return {}
     if not isinstance(node, yaml.MappingNode):
@@ -484,8 +490,12 @@ def _rule_mapping(node: yaml.MappingNode, registered: Any, source: str, key: str
             section["severity"] = _severity(value_node, registered, source, f"{key}.severity")
             continue
         if name not in registered.options:
-            raise _node_error(source, name_node, f"{key}.{name}",
-                              _unknown(name, ["severity", *registered.options]).replace("key", "option", 1))
+            raise _node_error(
+                source,
+                name_node,
+                f"{key}.{name}",
+                _unknown(name, ["severity", *registered.options]).replace("key", "option", 1),
+            )
         if name in section["options"]:
             raise _node_error(source, name_node, f"{key}.{name}", "given twice")
         value = _construct(value_node, source, f"{key}.{name}")
@@ -687,9 +697,12 @@ def _refuse_expired(waivers: tuple[Waiver, ...], entries: list[Mapping[str, Any]
     tempt people to drop the gate)."""
     for waiver, entry in zip(waivers, entries, strict=True):
         if date.fromisoformat(waiver.expires) < today:
-            raise _error_at(entry["expires"], f"waivers[{entry['_at'].value}].expires",
-                            f"the waiver of {waiver.rule} for '{waiver.path}' (owner {waiver.owner}) expired on "
-                            f"{waiver.expires}; renew it with a later date or remove it")
+            raise _error_at(
+                entry["expires"],
+                f"waivers[{entry['_at'].value}].expires",
+                f"the waiver of {waiver.rule} for '{waiver.path}' (owner {waiver.owner}) expired on "
+                f"{waiver.expires}; renew it with a later date or remove it",
+            )
 
 
 # --- applying the policy to a path or a finding -------------------------------------------------------
@@ -766,8 +779,14 @@ def judge_finding(policy: Policy, rule_id: str, default: RuleSetting, fixed: boo
 
 
 def waiver_record(waiver: Waiver) -> dict[str, str]:
-    return {"rule": waiver.rule, "path": waiver.path, "reason": waiver.reason, "owner": waiver.owner,
-            "expires": waiver.expires, "source": waiver.source}
+    return {
+        "rule": waiver.rule,
+        "path": waiver.path,
+        "reason": waiver.reason,
+        "owner": waiver.owner,
+        "expires": waiver.expires,
+        "source": waiver.source,
+    }
 
 
 def waivers_used(policy: Policy, findings: Iterable[Finding]) -> tuple[Waiver, ...]:

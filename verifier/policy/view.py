@@ -127,8 +127,12 @@ def render_explain(rule_id: str) -> str | None:
     if rule is None:
         return None
     fixed = " (cannot be switched off or waived: it is how the gate fails closed)" if rule.fixed else ""
-    lines = [f"{rule.id}: {rule.summary}", f"default: {rule.default}{fixed}; stage: {rule.stage}", "",
-             textwrap.fill(rule.explanation, width=100)]
+    lines = [
+        f"{rule.id}: {rule.summary}",
+        f"default: {rule.default}{fixed}; stage: {rule.stage}",
+        "",
+        textwrap.fill(rule.explanation, width=100),
+    ]
     if rule.options:
         lines += ["", "options (policy: rules: {" + rule.id + ": {severity: ..., <option>: <value>}}):"]
         lines += [f"  {name} = {_text(default)}" for name, default in rule.options.items()]

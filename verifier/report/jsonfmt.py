@@ -42,22 +42,46 @@ def as_dict(report: Report) -> dict[str, Any]:
             "threshold": coverage.threshold if coverage else None,
             "uncovered": {p: list(lines) for p, lines in coverage.uncovered.items()} if coverage else {},
             "separate": [
-                {"path": t.path, "threshold": t.threshold, "executable": t.executable, "covered": t.covered,
-                 "percent": t.percent, "uncovered": list(t.uncovered)}
+                {
+                    "path": t.path,
+                    "threshold": t.threshold,
+                    "executable": t.executable,
+                    "covered": t.covered,
+                    "percent": t.percent,
+                    "uncovered": list(t.uncovered),
+                }
                 for t in (coverage.separate if coverage else ())
             ],
         },
-        "run": {"status": run.status, "pytest_exit": run.pytest_exit, "wall_seconds": round(run.wall_seconds, 3),
-                "limit_hit": run.limit_hit} if run else None,
+        "run": {
+            "status": run.status,
+            "pytest_exit": run.pytest_exit,
+            "wall_seconds": round(run.wall_seconds, 3),
+            "limit_hit": run.limit_hit,
+        }
+        if run
+        else None,
         "findings": [
-            {"rule": f.rule, "severity": f.severity, "path": f.path, "line": f.line, "message": f.message,
-             **({"details": to_plain(f.details)} if f.details else {})}
+            {
+                "rule": f.rule,
+                "severity": f.severity,
+                "path": f.path,
+                "line": f.line,
+                "message": f.message,
+                **({"details": to_plain(f.details)} if f.details else {}),
+            }
             for f in report.findings
         ],
         "notes": list(report.notes),
         "waivers_used": [
-            {"rule": w.rule, "path": w.path, "reason": w.reason, "owner": w.owner, "expires": w.expires,
-             "source": w.source}
+            {
+                "rule": w.rule,
+                "path": w.path,
+                "reason": w.reason,
+                "owner": w.owner,
+                "expires": w.expires,
+                "source": w.source,
+            }
             for w in report.waivers_used
         ],
         **({"shard": _shard(report)} if report.selection and report.selection.shard and run else {}),
@@ -119,11 +143,17 @@ def _shard(report: Report) -> dict[str, Any]:
         "status": run.status,
         "tests": [to_plain(test) for test in run.tests],
         "baseline": dict(run.baseline) if run.baseline is not None else None,
-        "coverage": {path: {"executed": sorted(c.executed), "missing": sorted(c.missing),
-                            "excluded": sorted(c.excluded)} for path, c in measured.items()},
+        "coverage": {
+            path: {"executed": sorted(c.executed), "missing": sorted(c.missing), "excluded": sorted(c.excluded)}
+            for path, c in measured.items()
+        },
         "collection_errors": list(run.collection_errors),
-        "selection": {"whole_suite": report.selection.whole_suite, "node_ids": list(report.selection.node_ids),
-                      "files": list(report.selection.files), "reason": report.selection.reason},
+        "selection": {
+            "whole_suite": report.selection.whole_suite,
+            "node_ids": list(report.selection.node_ids),
+            "files": list(report.selection.files),
+            "reason": report.selection.reason,
+        },
     }
 
 

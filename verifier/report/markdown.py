@@ -31,15 +31,21 @@ def _summary(report: Report) -> str:
     base = change.base[:12] if change.base else "the empty tree"
     head = change.head[:12] if change.head != "index" else "the index"
     agents = ", ".join(f"`{agent}`" for agent in report.provenance.agents) or "none"
-    rows = [f"Change `{_inline(change.spec)}` ({base} → {head}): {len(change.commits)} commit(s), agents {agents}, "
-            f"{report.provenance.machine_line_count} machine-written line(s)."]
+    rows = [
+        f"Change `{_inline(change.spec)}` ({base} → {head}): {len(change.commits)} commit(s), agents {agents}, "
+        f"{report.provenance.machine_line_count} machine-written line(s)."
+    ]
     if run is not None:
-        rows.append(f"Tests in the `{run.backend}` sandbox: {len(run.tests)} run, {run.count('passed')} passed, "
-                    f"{run.count('failed')} failed, {run.count('error')} errors, {run.count('skipped')} skipped "
-                    f"({run.status}, {run.wall_seconds:.1f}s).")
+        rows.append(
+            f"Tests in the `{run.backend}` sandbox: {len(run.tests)} run, {run.count('passed')} passed, "
+            f"{run.count('failed')} failed, {run.count('error')} errors, {run.count('skipped')} skipped "
+            f"({run.status}, {run.wall_seconds:.1f}s)."
+        )
     if cov is not None and cov.percent is not None:
-        rows.append(f"Coverage of the executable machine-written lines: {cov.covered}/{cov.executable} = "
-                    f"{cov.percent:.1f}% (the policy asks for {cov.threshold:g}%).")
+        rows.append(
+            f"Coverage of the executable machine-written lines: {cov.covered}/{cov.executable} = "
+            f"{cov.percent:.1f}% (the policy asks for {cov.threshold:g}%)."
+        )
     rows.append(f"Policy: {_inline(report.policy_source)}.")
     return "\n".join(rows)
 
@@ -50,8 +56,7 @@ def _file_table(report: Report) -> str:
         return "No machine-written lines in this change: nothing to verify."
     uncovered = report.coverage.uncovered if report.coverage else {}
     measured = report.run.coverage if report.run else {}
-    rows = ["| File | Machine-written lines | Executed by the tests | Uncovered (counted) |",
-            "|---|---:|---:|---|"]
+    rows = ["| File | Machine-written lines | Executed by the tests | Uncovered (counted) |", "|---|---:|---:|---|"]
     for path, lines in machine.items():
         executed = measured.get(path)
         ran = str(len(set(lines) & executed.executed)) if executed is not None else "–"
@@ -75,8 +80,12 @@ def _findings(report: Report) -> str:
     rows += [_finding(f, report) for f in shown]
     uncovered = [f for f in report.findings if f.rule == "coverage.new-lines" and f.line is not None]
     if uncovered:
-        rows.append(_details(f"{len(uncovered)} uncovered machine-written line(s), with their code",
-                             "\n\n".join(_finding(f, report) for f in uncovered)))
+        rows.append(
+            _details(
+                f"{len(uncovered)} uncovered machine-written line(s), with their code",
+                "\n\n".join(_finding(f, report) for f in uncovered),
+            )
+        )
     return "\n\n".join(rows)
 
 
@@ -111,8 +120,9 @@ def _test_details(report: Report) -> str:
     failing = [t for t in run.tests if t.outcome in ("failed", "error")]
     parts = []
     if failing:
-        body = "\n\n".join(f"`{_inline(t.node_id)}` ({t.outcome})\n\n{_fence(t.message.strip() or 'no message')}"
-                           for t in failing)
+        body = "\n\n".join(
+            f"`{_inline(t.node_id)}` ({t.outcome})\n\n{_fence(t.message.strip() or 'no message')}" for t in failing
+        )
         parts.append(_details(f"{len(failing)} failing test(s)", body))
     if run.collection_errors:
         parts.append(_details("collection errors", _fence("\n".join(run.collection_errors))))
@@ -163,4 +173,3 @@ def _cell(text: str) -> str:
 
 def _html(text: str) -> str:
     return text.replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
-

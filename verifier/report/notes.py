@@ -75,8 +75,10 @@ def note_body(report: Report, commit: str, checked_at: str | None = None) -> dic
             "covered": coverage.covered if coverage else 0,
             "percent": coverage.percent if coverage else None,
         },
-        "tests": {"run": len(run.tests) if run else 0,
-                  "failed": (run.count("failed") + run.count("error")) if run else 0},
+        "tests": {
+            "run": len(run.tests) if run else 0,
+            "failed": (run.count("failed") + run.count("error")) if run else 0,
+        },
         "findings": [
             {"rule": f.rule, "severity": f.severity, "path": f.path, "line": f.line, "message": f.message}
             for f in report.findings

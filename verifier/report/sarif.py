@@ -29,10 +29,16 @@ def as_dict(report: Report) -> dict[str, Any]:
 
     rules, index = _rules(report.findings)
     run = {
-        "tool": {"driver": {"name": "verifier", "version": __version__, "semanticVersion": __version__,
-                            "rules": rules}},
-        "invocations": [{"executionSuccessful": report.verdict != "error", "exitCode": EXIT_CODES[report.verdict],
-                         "properties": {"verdict": report.verdict, "policy": report.policy_source}}],
+        "tool": {
+            "driver": {"name": "verifier", "version": __version__, "semanticVersion": __version__, "rules": rules}
+        },
+        "invocations": [
+            {
+                "executionSuccessful": report.verdict != "error",
+                "exitCode": EXIT_CODES[report.verdict],
+                "properties": {"verdict": report.verdict, "policy": report.policy_source},
+            }
+        ],
         "originalUriBaseIds": {SRCROOT: {"description": {"text": "the top folder of the repository checked"}}},
         "results": [_result(finding, index, report) for finding in report.findings],
         "properties": {
@@ -63,7 +69,8 @@ def _rule(rule: Any) -> dict[str, Any]:
     sources = list(rule.sources)
     help_text = rule.explanation + (f"\n\nSources: {'; '.join(sources)}" if sources else "")
     help_markdown = rule.explanation + (
-        "\n\n**Sources:**\n" + "".join(f"\n- {source}" for source in sources) if sources else "")
+        "\n\n**Sources:**\n" + "".join(f"\n- {source}" for source in sources) if sources else ""
+    )
     help_text += f"\n\nExplain it locally: verifier rules {rule.id}"
     return {
         "id": rule.id,
@@ -71,8 +78,12 @@ def _rule(rule: Any) -> dict[str, Any]:
         "fullDescription": {"text": rule.explanation or rule.summary},
         "help": {"text": help_text, "markdown": help_markdown or rule.summary},
         "defaultConfiguration": {"level": LEVELS[rule.default], "enabled": rule.default != "off"},
-        "properties": {"stage": rule.stage, "fixed": rule.fixed, "sources": sources,
-                       "options": {key: value for key, value in rule.options.items()}},
+        "properties": {
+            "stage": rule.stage,
+            "fixed": rule.fixed,
+            "sources": sources,
+            "options": {key: value for key, value in rule.options.items()},
+        },
     }
 
 
@@ -111,8 +122,10 @@ def _provenance(report: Report) -> dict[str, Any]:
     marks = report.provenance.marks
     return {
         "agents": list(report.provenance.agents),
-        "commits": [{"sha": c.sha, "author": c.author, "agent": marks[c.sha].agent if c.sha in marks else None}
-                    for c in report.change.commits],
+        "commits": [
+            {"sha": c.sha, "author": c.author, "agent": marks[c.sha].agent if c.sha in marks else None}
+            for c in report.change.commits
+        ],
         "machineLines": {path: list(lines) for path, lines in report.provenance.machine_lines.items()},
         "machineLineCount": report.provenance.machine_line_count,
     }
@@ -122,11 +135,18 @@ def _tests(run: RunResult | None) -> dict[str, Any]:
     if run is None:
         return {"ran": False}
     return {
-        "ran": True, "status": run.status, "sandbox": run.backend, "isolation": run.isolation,
-        "run": len(run.tests), "passed": run.count("passed"), "failed": run.count("failed"),
-        "errors": run.count("error"), "skipped": run.count("skipped"),
+        "ran": True,
+        "status": run.status,
+        "sandbox": run.backend,
+        "isolation": run.isolation,
+        "run": len(run.tests),
+        "passed": run.count("passed"),
+        "failed": run.count("failed"),
+        "errors": run.count("error"),
+        "skipped": run.count("skipped"),
         "failedIds": [t.node_id for t in run.tests if t.outcome in ("failed", "error")],
-        "collectionErrors": list(run.collection_errors), "wallSeconds": round(run.wall_seconds, 3),
+        "collectionErrors": list(run.collection_errors),
+        "wallSeconds": round(run.wall_seconds, 3),
     }
 
 
@@ -134,8 +154,14 @@ def _coverage(report: Report) -> dict[str, Any]:
     cov = report.coverage
     if cov is None:
         return {"measured": False}
-    return {"measured": True, "executable": cov.executable, "covered": cov.covered, "percent": cov.percent,
-            "threshold": cov.threshold, "uncovered": {path: list(lines) for path, lines in cov.uncovered.items()}}
+    return {
+        "measured": True,
+        "executable": cov.executable,
+        "covered": cov.covered,
+        "percent": cov.percent,
+        "threshold": cov.threshold,
+        "uncovered": {path: list(lines) for path, lines in cov.uncovered.items()},
+    }
 
 
 def render(report: Report) -> str:

@@ -44,8 +44,10 @@ def _read(path: Path) -> dict[str, Any]:
     except ValueError as error:
         raise UsageError(f"{path} is not a JSON report: {error}") from error
     if not isinstance(data, dict) or not isinstance(data.get("shard"), dict):
-        raise UsageError(f"{path} is not the JSON report of a sharded check",
-                         hint="write each shard's report with: verifier check --shard K/N --format json --output F")
+        raise UsageError(
+            f"{path} is not the JSON report of a sharded check",
+            hint="write each shard's report with: verifier check --shard K/N --format json --output F",
+        )
     return data
 
 
@@ -58,8 +60,10 @@ def _check_together(reports: list[dict[str, Any]], paths: Sequence[Path]) -> dic
             if report.get(key) != first.get(key):
                 raise UsageError(f"{path} checked another change ({key} {report.get(key)} vs {first.get(key)})")
         if report["shard"]["total"] != total or report["shard"]["selection"] != first["shard"]["selection"]:
-            raise UsageError(f"{path} comes from another split of the tests than {paths[0]}",
-                             hint="all shards must run with the same policy, cache state and --shard N")
+            raise UsageError(
+                f"{path} comes from another split of the tests than {paths[0]}",
+                hint="all shards must run with the same policy, cache state and --shard N",
+            )
         index = report["shard"]["index"]
         if index in seen:
             raise UsageError(f"shard {index}/{total} is given twice ({seen[index]} and {path})")
@@ -92,7 +96,9 @@ def joined_run(reports: list[dict[str, Any]]) -> tuple[Selection, RunResult]:
     )
     chosen = shards[0]["selection"]
     selection = Selection(
-        whole_suite=chosen["whole_suite"], node_ids=tuple(chosen["node_ids"]), files=tuple(chosen["files"]),
+        whole_suite=chosen["whole_suite"],
+        node_ids=tuple(chosen["node_ids"]),
+        files=tuple(chosen["files"]),
         reason=f"{chosen['reason']} (joined from {len(shards)} shards)",
         reasons=reports[0].get("selection", {}).get("selected", {}),
         map_status=reports[0].get("selection", {}).get("map", "not used"),
@@ -102,8 +108,11 @@ def joined_run(reports: list[dict[str, Any]]) -> tuple[Selection, RunResult]:
 
 def _outcome(data: Mapping[str, Any]) -> TestOutcome:
     return TestOutcome(
-        node_id=data["node_id"], outcome=data["outcome"], message=data.get("message", ""),
-        duration=float(data.get("duration", 0.0)), attempts=int(data.get("attempts", 1)),
+        node_id=data["node_id"],
+        outcome=data["outcome"],
+        message=data.get("message", ""),
+        duration=float(data.get("duration", 0.0)),
+        attempts=int(data.get("attempts", 1)),
         fixtures=tuple(data.get("fixtures", ())),
     )
 

@@ -91,8 +91,10 @@ def _selection(report: Report) -> list[str]:
     shard = f", shard {selection.shard[0]}/{selection.shard[1]}" if selection.shard else ""
     if selection.whole_suite:
         return [f"selection: every test ({selection.reason}; map: {selection.map_status}{shard})"]
-    rows = [f"selection: {selection.reason}; {selection.left_out} of {selection.known_tests} known tests left out "
-            f"(map: {selection.map_status}{shard})"]
+    rows = [
+        f"selection: {selection.reason}; {selection.left_out} of {selection.known_tests} known tests left out "
+        f"(map: {selection.map_status}{shard})"
+    ]
     for key, reasons in sorted(selection.reasons.items())[:40]:
         rows.append(f"  {key}: {'; '.join(reasons)}")
     if len(selection.reasons) > 40:
@@ -117,11 +119,17 @@ def _coverage(report: Report, paint) -> list[str]:  # type: ignore[no-untyped-de
         return []
     if cov.percent is None and not cov.separate:
         return ["coverage of machine-written lines: no executable machine-written lines"]
-    rows = [f"coverage of machine-written lines: {cov.covered}/{cov.executable} = {cov.percent:.1f}% "
-            f"(threshold {cov.threshold:g}%)" if cov.percent is not None else
-            "coverage of machine-written lines: none outside the files with their own threshold"]
-    rows += [f"  {t.path}: {t.covered}/{t.executable} = {t.percent:.1f}% (its own threshold {t.threshold:g}%)"
-             for t in cov.separate if t.percent is not None]
+    rows = [
+        f"coverage of machine-written lines: {cov.covered}/{cov.executable} = {cov.percent:.1f}% "
+        f"(threshold {cov.threshold:g}%)"
+        if cov.percent is not None
+        else "coverage of machine-written lines: none outside the files with their own threshold"
+    ]
+    rows += [
+        f"  {t.path}: {t.covered}/{t.executable} = {t.percent:.1f}% (its own threshold {t.threshold:g}%)"
+        for t in cov.separate
+        if t.percent is not None
+    ]
     uncovered = {**cov.uncovered, **{t.path: t.uncovered for t in cov.separate if t.uncovered}}
     for path, lines in uncovered.items():
         source = report.sources.get(path, {})
@@ -152,8 +160,10 @@ def _waivers(report: Report) -> list[str]:
     if not report.waivers_used:
         return []
     rows = [f"waivers used: {len(report.waivers_used)}"]
-    rows += [f"  {w.rule} on {w.path} (owner {w.owner}, until {w.expires}, {w.source}): {w.reason}"
-             for w in report.waivers_used]
+    rows += [
+        f"  {w.rule} on {w.path} (owner {w.owner}, until {w.expires}, {w.source}): {w.reason}"
+        for w in report.waivers_used
+    ]
     return rows
 
 

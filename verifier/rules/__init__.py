@@ -15,9 +15,17 @@ from typing import Any
 from verifier.models import Change, CoverageSummary, Finding, Policy, Provenance, RuleSetting, RunResult
 
 _FAMILIES = (
-    "verifier.rules.tests", "verifier.rules.coverage", "verifier.rules.code",
-    "verifier.rules.calls", "verifier.rules.paths", "verifier.rules.weakened", "verifier.rules.harness",
-    "verifier.rules.size", "verifier.rules.deps", "verifier.rules.secrets", "verifier.rules.regressions",
+    "verifier.rules.tests",
+    "verifier.rules.coverage",
+    "verifier.rules.code",
+    "verifier.rules.calls",
+    "verifier.rules.paths",
+    "verifier.rules.weakened",
+    "verifier.rules.harness",
+    "verifier.rules.size",
+    "verifier.rules.deps",
+    "verifier.rules.secrets",
+    "verifier.rules.regressions",
 )
 
 

@@ -68,8 +68,9 @@ def entry_problems(value: Any) -> list[str]:
     """What is wrong with one policy entry (empty when it is valid); for the policy's validation."""
     if not isinstance(value, Mapping):
         return [f"an entry must be a mapping with 'call' or 'assign', got {value!r}"]
-    problems = [f"unknown key '{key}' (expected one of {', '.join(_ENTRY_KEYS)})" for key in value
-                if key not in _ENTRY_KEYS]
+    problems = [
+        f"unknown key '{key}' (expected one of {', '.join(_ENTRY_KEYS)})" for key in value if key not in _ENTRY_KEYS
+    ]
     kinds = [k for k in ("call", "assign") if k in value]
     if len(kinds) != 1:
         problems.append("an entry needs exactly one of 'call' or 'assign'")
@@ -91,15 +92,19 @@ def entry_problems(value: Any) -> list[str]:
 def _condition_problems(condition: Any, on_assignment: bool) -> list[str]:
     if not isinstance(condition, Mapping):
         return [f"a condition must be a mapping, got {condition!r}"]
-    problems = [f"unknown key '{key}' (expected one of {', '.join(_CONDITION_KEYS)})" for key in condition
-                if key not in _CONDITION_KEYS]
+    problems = [
+        f"unknown key '{key}' (expected one of {', '.join(_CONDITION_KEYS)})"
+        for key in condition
+        if key not in _CONDITION_KEYS
+    ]
     tests = [k for k in ("is", "in", "not-in") if k in condition]
     if len(tests) != 1:
         problems.append("a condition needs exactly one of 'is', 'in' or 'not-in'")
     elif tests[0] == "is" and condition["is"] not in TESTS:
         problems.append(f"'is' must be one of {', '.join(TESTS)}, got {condition['is']!r}")
-    elif tests[0] != "is" and not (isinstance(condition[tests[0]], list)
-                                   and all(isinstance(v, str) for v in condition[tests[0]])):
+    elif tests[0] != "is" and not (
+        isinstance(condition[tests[0]], list) and all(isinstance(v, str) for v in condition[tests[0]])
+    ):
         problems.append(f"'{tests[0]}' must be a list of names or strings")
     arg, keyword = condition.get("arg"), condition.get("keyword")
     if arg is not None and (isinstance(arg, bool) or not isinstance(arg, int) or arg < 0):
@@ -134,28 +139,46 @@ def _parse_condition(value: Mapping[str, Any]) -> Condition:
 # The documentation warnings below are quoted from memory of the Python documentation (and of PyYAML's
 # and Requests' documentation for the two third-party entries); the wording may differ slightly.
 
-_EVAL_DOC = ("Python docs, Built-in Functions, eval() and exec(): 'Warning: This function executes arbitrary "
-             "code. Calling it with user-supplied input may lead to security vulnerabilities.'")
-_SHELL_DOC = ("Python docs, subprocess module, Security Considerations: 'it is the application's "
-              "responsibility to ensure that all whitespace and metacharacters are quoted appropriately to "
-              "avoid shell injection vulnerabilities' when shell=True")
-_OS_SHELL_DOC = ("Python docs, os module, Process Management, os.system(): runs the command in a subshell; "
-                 "'using the subprocess module is preferable'; see subprocess, Security Considerations")
+_EVAL_DOC = (
+    "Python docs, Built-in Functions, eval() and exec(): 'Warning: This function executes arbitrary "
+    "code. Calling it with user-supplied input may lead to security vulnerabilities.'"
+)
+_SHELL_DOC = (
+    "Python docs, subprocess module, Security Considerations: 'it is the application's "
+    "responsibility to ensure that all whitespace and metacharacters are quoted appropriately to "
+    "avoid shell injection vulnerabilities' when shell=True"
+)
+_OS_SHELL_DOC = (
+    "Python docs, os module, Process Management, os.system(): runs the command in a subshell; "
+    "'using the subprocess module is preferable'; see subprocess, Security Considerations"
+)
 _PICKLE_DOC = "Python docs, pickle module: 'Warning: The pickle module is not secure. Only unpickle data you trust.'"
-_MARSHAL_DOC = ("Python docs, marshal module: 'Warning: The marshal module is not intended to be secure against "
-                "erroneous or maliciously constructed data. Never unmarshal data received from an untrusted or "
-                "unauthenticated source.'")
-_SHELVE_DOC = ("Python docs, shelve module: 'Warning: Because the shelve module is backed by pickle, it is "
-               "insecure to load a shelf from an untrusted source.'")
-_YAML_DOC = ("PyYAML documentation, Loading YAML: 'Warning: It is not safe to call yaml.load with any data "
-             "received from an untrusted source!'")
-_MKTEMP_DOC = ("Python docs, tempfile module, Deprecated functions and variables, mktemp(): 'Warning: Use of "
-               "this function may introduce a security hole in your program.'")
-_TLS_DOC = ("Python docs, ssl module, Security considerations: certificate validation and hostname checking "
-            "must stay on for client sockets (CERT_REQUIRED, check_hostname=True); Requests documentation, "
-            "SSL Cert Verification: verify=False makes the application vulnerable to man-in-the-middle attacks")
-_IMPORT_DOC = ("Python docs, Built-in Functions, __import__() and importlib.import_module(): the name decides "
-               "which module's code runs on import")
+_MARSHAL_DOC = (
+    "Python docs, marshal module: 'Warning: The marshal module is not intended to be secure against "
+    "erroneous or maliciously constructed data. Never unmarshal data received from an untrusted or "
+    "unauthenticated source.'"
+)
+_SHELVE_DOC = (
+    "Python docs, shelve module: 'Warning: Because the shelve module is backed by pickle, it is "
+    "insecure to load a shelf from an untrusted source.'"
+)
+_YAML_DOC = (
+    "PyYAML documentation, Loading YAML: 'Warning: It is not safe to call yaml.load with any data "
+    "received from an untrusted source!'"
+)
+_MKTEMP_DOC = (
+    "Python docs, tempfile module, Deprecated functions and variables, mktemp(): 'Warning: Use of "
+    "this function may introduce a security hole in your program.'"
+)
+_TLS_DOC = (
+    "Python docs, ssl module, Security considerations: certificate validation and hostname checking "
+    "must stay on for client sockets (CERT_REQUIRED, check_hostname=True); Requests documentation, "
+    "SSL Cert Verification: verify=False makes the application vulnerable to man-in-the-middle attacks"
+)
+_IMPORT_DOC = (
+    "Python docs, Built-in Functions, __import__() and importlib.import_module(): the name decides "
+    "which module's code runs on import"
+)
 
 _SAFE_YAML_LOADERS = ["yaml.SafeLoader", "yaml.CSafeLoader", "yaml.BaseLoader", "yaml.CBaseLoader"]
 _NON_LITERAL_SOURCE = [{"arg": 0, "keyword": "source", "is": "non-literal"}]
@@ -166,58 +189,141 @@ def _always(target: str, cwe: str, why: str, doc: str, kind: str = "call") -> di
 
 
 DEFAULT_ENTRIES: tuple[dict[str, Any], ...] = (
-    {"call": "eval", "when": {"arg": 0, "is": "non-literal"}, "cwe": "CWE-95",
-     "why": "evaluates code built at run time", "doc": _EVAL_DOC},
-    {"call": "exec", "when": {"arg": 0, "is": "non-literal"}, "cwe": "CWE-95",
-     "why": "executes code built at run time", "doc": _EVAL_DOC},
-    {"call": "compile", "when": _NON_LITERAL_SOURCE, "cwe": "CWE-95",
-     "why": "compiles code built at run time", "doc": _EVAL_DOC},
+    {
+        "call": "eval",
+        "when": {"arg": 0, "is": "non-literal"},
+        "cwe": "CWE-95",
+        "why": "evaluates code built at run time",
+        "doc": _EVAL_DOC,
+    },
+    {
+        "call": "exec",
+        "when": {"arg": 0, "is": "non-literal"},
+        "cwe": "CWE-95",
+        "why": "executes code built at run time",
+        "doc": _EVAL_DOC,
+    },
+    {
+        "call": "compile",
+        "when": _NON_LITERAL_SOURCE,
+        "cwe": "CWE-95",
+        "why": "compiles code built at run time",
+        "doc": _EVAL_DOC,
+    },
     _always("os.system", "CWE-78", "runs a command through the shell", _OS_SHELL_DOC),
     _always("os.popen", "CWE-78", "runs a command through the shell", _OS_SHELL_DOC),
     _always("subprocess.getoutput", "CWE-78", "runs a command through the shell", _SHELL_DOC),
     _always("subprocess.getstatusoutput", "CWE-78", "runs a command through the shell", _SHELL_DOC),
     _always("asyncio.create_subprocess_shell", "CWE-78", "runs a command through the shell", _SHELL_DOC),
-    {"call": "subprocess.*", "when": {"keyword": "shell", "is": "not-false"}, "cwe": "CWE-78",
-     "why": "runs a command through the shell (shell=True)", "doc": _SHELL_DOC},
+    {
+        "call": "subprocess.*",
+        "when": {"keyword": "shell", "is": "not-false"},
+        "cwe": "CWE-78",
+        "why": "runs a command through the shell (shell=True)",
+        "doc": _SHELL_DOC,
+    },
     _always("pickle.load", "CWE-502", "unpickling can run arbitrary code", _PICKLE_DOC),
     _always("pickle.loads", "CWE-502", "unpickling can run arbitrary code", _PICKLE_DOC),
     _always("pickle.Unpickler", "CWE-502", "unpickling can run arbitrary code", _PICKLE_DOC),
     _always("marshal.load", "CWE-502", "marshal is not safe against malicious data", _MARSHAL_DOC),
     _always("marshal.loads", "CWE-502", "marshal is not safe against malicious data", _MARSHAL_DOC),
     _always("shelve.open", "CWE-502", "a shelf is unpickled when read", _SHELVE_DOC),
-    {"call": "yaml.load", "when": {"arg": 1, "keyword": "Loader", "not-in": _SAFE_YAML_LOADERS},
-     "cwe": "CWE-502", "why": "yaml.load without a safe Loader can build arbitrary objects", "doc": _YAML_DOC},
-    {"call": "yaml.load_all", "when": {"arg": 1, "keyword": "Loader", "not-in": _SAFE_YAML_LOADERS},
-     "cwe": "CWE-502", "why": "yaml.load_all without a safe Loader can build arbitrary objects", "doc": _YAML_DOC},
+    {
+        "call": "yaml.load",
+        "when": {"arg": 1, "keyword": "Loader", "not-in": _SAFE_YAML_LOADERS},
+        "cwe": "CWE-502",
+        "why": "yaml.load without a safe Loader can build arbitrary objects",
+        "doc": _YAML_DOC,
+    },
+    {
+        "call": "yaml.load_all",
+        "when": {"arg": 1, "keyword": "Loader", "not-in": _SAFE_YAML_LOADERS},
+        "cwe": "CWE-502",
+        "why": "yaml.load_all without a safe Loader can build arbitrary objects",
+        "doc": _YAML_DOC,
+    },
     _always("yaml.unsafe_load", "CWE-502", "the unsafe loader can build arbitrary objects", _YAML_DOC),
     _always("yaml.unsafe_load_all", "CWE-502", "the unsafe loader can build arbitrary objects", _YAML_DOC),
-    _always("tempfile.mktemp", "CWE-377", "the name can be taken by another process before use; "
-            "use tempfile.mkstemp or NamedTemporaryFile", _MKTEMP_DOC),
-    {"call": "*", "when": {"keyword": "verify", "is": "false"}, "cwe": "CWE-295",
-     "why": "turns TLS certificate verification off (verify=False)", "doc": _TLS_DOC},
-    {"call": "*", "when": {"keyword": "cert_reqs", "in": ["ssl.CERT_NONE", "CERT_NONE"]}, "cwe": "CWE-295",
-     "why": "turns TLS certificate verification off (CERT_NONE)", "doc": _TLS_DOC},
+    _always(
+        "tempfile.mktemp",
+        "CWE-377",
+        "the name can be taken by another process before use; use tempfile.mkstemp or NamedTemporaryFile",
+        _MKTEMP_DOC,
+    ),
+    {
+        "call": "*",
+        "when": {"keyword": "verify", "is": "false"},
+        "cwe": "CWE-295",
+        "why": "turns TLS certificate verification off (verify=False)",
+        "doc": _TLS_DOC,
+    },
+    {
+        "call": "*",
+        "when": {"keyword": "cert_reqs", "in": ["ssl.CERT_NONE", "CERT_NONE"]},
+        "cwe": "CWE-295",
+        "why": "turns TLS certificate verification off (CERT_NONE)",
+        "doc": _TLS_DOC,
+    },
     _always("ssl._create_unverified_context", "CWE-295", "makes a TLS context that verifies nothing", _TLS_DOC),
-    _always("ssl._create_default_https_context", "CWE-295", "replaces the default TLS context for every "
-            "HTTPS connection of the process", _TLS_DOC, kind="assign"),
-    {"assign": "*.check_hostname", "when": {"is": "false"}, "cwe": "CWE-295",
-     "why": "turns TLS hostname checking off", "doc": _TLS_DOC},
-    {"assign": "*.verify_mode", "when": {"in": ["ssl.CERT_NONE"]}, "cwe": "CWE-295",
-     "why": "turns TLS certificate verification off", "doc": _TLS_DOC},
-    {"assign": "*.verify", "when": {"is": "false"}, "cwe": "CWE-295",
-     "why": "turns TLS certificate verification off for a session", "doc": _TLS_DOC},
-    {"call": "__import__", "when": {"arg": 0, "keyword": "name", "is": "non-literal"}, "cwe": "CWE-470",
-     "why": "imports a module whose name is computed at run time", "doc": _IMPORT_DOC},
-    {"call": "importlib.import_module", "when": {"arg": 0, "keyword": "name", "is": "non-literal"},
-     "cwe": "CWE-470", "why": "imports a module whose name is computed at run time", "doc": _IMPORT_DOC},
+    _always(
+        "ssl._create_default_https_context",
+        "CWE-295",
+        "replaces the default TLS context for every HTTPS connection of the process",
+        _TLS_DOC,
+        kind="assign",
+    ),
+    {
+        "assign": "*.check_hostname",
+        "when": {"is": "false"},
+        "cwe": "CWE-295",
+        "why": "turns TLS hostname checking off",
+        "doc": _TLS_DOC,
+    },
+    {
+        "assign": "*.verify_mode",
+        "when": {"in": ["ssl.CERT_NONE"]},
+        "cwe": "CWE-295",
+        "why": "turns TLS certificate verification off",
+        "doc": _TLS_DOC,
+    },
+    {
+        "assign": "*.verify",
+        "when": {"is": "false"},
+        "cwe": "CWE-295",
+        "why": "turns TLS certificate verification off for a session",
+        "doc": _TLS_DOC,
+    },
+    {
+        "call": "__import__",
+        "when": {"arg": 0, "keyword": "name", "is": "non-literal"},
+        "cwe": "CWE-470",
+        "why": "imports a module whose name is computed at run time",
+        "doc": _IMPORT_DOC,
+    },
+    {
+        "call": "importlib.import_module",
+        "when": {"arg": 0, "keyword": "name", "is": "non-literal"},
+        "cwe": "CWE-470",
+        "why": "imports a module whose name is computed at run time",
+        "doc": _IMPORT_DOC,
+    },
 )
 
 _SOURCES = (
-    "CWE-95", "CWE-78", "CWE-502", "CWE-377", "CWE-295", "CWE-470",
-    "Python docs: Built-in Functions (eval, exec, compile, __import__)", "Python docs: subprocess, Security "
-    "Considerations", "Python docs: os, Process Management", "Python docs: pickle, marshal, shelve (Warnings)",
-    "Python docs: tempfile.mktemp (Warning)", "Python docs: ssl, Security considerations",
-    "PyYAML documentation: Loading YAML", "Requests documentation: SSL Cert Verification",
+    "CWE-95",
+    "CWE-78",
+    "CWE-502",
+    "CWE-377",
+    "CWE-295",
+    "CWE-470",
+    "Python docs: Built-in Functions (eval, exec, compile, __import__)",
+    "Python docs: subprocess, Security Considerations",
+    "Python docs: os, Process Management",
+    "Python docs: pickle, marshal, shelve (Warnings)",
+    "Python docs: tempfile.mktemp (Warning)",
+    "Python docs: ssl, Security considerations",
+    "PyYAML documentation: Loading YAML",
+    "Requests documentation: SSL Cert Verification",
 )
 
 
@@ -239,8 +345,14 @@ def effective_entries(context: RuleContext) -> tuple[tuple[Entry, ...], list[str
 # --- the rule -----------------------------------------------------------------------------------------
 
 
-@rule(RULE_ID, default="block", summary="dangerous calls on machine-written lines (eval, shell, pickle, ...)",
-      stage="static", options={"entries": [], "ignore": []}, sources=_SOURCES)
+@rule(
+    RULE_ID,
+    default="block",
+    summary="dangerous calls on machine-written lines (eval, shell, pickle, ...)",
+    stage="static",
+    options={"entries": [], "ignore": []},
+    sources=_SOURCES,
+)
 def banned_calls(context: RuleContext) -> Iterator[Finding]:
     """Machine-written Python must not call what turns data into code or commands, or switch a safety
     check off: eval/exec/compile on computed input, a shell (os.system, os.popen, shell=True), pickle,
@@ -340,8 +452,9 @@ class _EntryTable:
                     yield name, entry
 
 
-def _check_module(module: ModuleIndex, path: str, lines: frozenset[int], calls: _EntryTable,
-                  assigns: _EntryTable) -> Iterator[Finding]:
+def _check_module(
+    module: ModuleIndex, path: str, lines: frozenset[int], calls: _EntryTable, assigns: _EntryTable
+) -> Iterator[Finding]:
     first, last = min(lines), max(lines)
     for node in module.calls if calls else ():
         if node.lineno <= last and (node.end_lineno or node.lineno) >= first:
@@ -351,8 +464,9 @@ def _check_module(module: ModuleIndex, path: str, lines: frozenset[int], calls: 
             yield from _check_assignment(assignment, path, lines, module.names, assigns)
 
 
-def _check_call(node: ast.Call, path: str, lines: frozenset[int], names: Names,
-                entries: _EntryTable) -> Iterator[Finding]:
+def _check_call(
+    node: ast.Call, path: str, lines: frozenset[int], names: Names, entries: _EntryTable
+) -> Iterator[Finding]:
     candidates = tuple(canonical(n) for n in resolve(node.func, names)) or ("?",)
     for name, entry in entries.matching(candidates):
         deciding = [node.func]
@@ -363,8 +477,9 @@ def _check_call(node: ast.Call, path: str, lines: frozenset[int], names: Names,
             return
 
 
-def _check_assignment(node: ast.Assign | ast.AnnAssign, path: str, lines: frozenset[int], names: Names,
-                      entries: _EntryTable) -> Iterator[Finding]:
+def _check_assignment(
+    node: ast.Assign | ast.AnnAssign, path: str, lines: frozenset[int], names: Names, entries: _EntryTable
+) -> Iterator[Finding]:
     targets = node.targets if isinstance(node, ast.Assign) else [node.target]
     assert node.value is not None
     for target in targets:
@@ -380,8 +495,14 @@ def _check_assignment(node: ast.Assign | ast.AnnAssign, path: str, lines: frozen
 
 def _finding(entry: Entry, what: str, path: str, line: int) -> Finding:
     cwe = f" ({entry.cwe})" if entry.cwe else ""
-    return Finding(RULE_ID, "block", f"{what}: {entry.why}{cwe}", path=path, line=line,
-                   details={"cwe": entry.cwe, "entry": entry.target, "doc": entry.doc})
+    return Finding(
+        RULE_ID,
+        "block",
+        f"{what}: {entry.why}{cwe}",
+        path=path,
+        line=line,
+        details={"cwe": entry.cwe, "entry": entry.target, "doc": entry.doc},
+    )
 
 
 _MISSING = object()  # the argument is definitely not passed

@@ -8,8 +8,7 @@ from verifier.models import CoverageSummary, Finding
 from verifier.rules import RuleContext, rule
 
 
-@rule("coverage.new-lines", default="block", summary="machine-written lines the tests never execute",
-      stage="dynamic")
+@rule("coverage.new-lines", default="block", summary="machine-written lines the tests never execute", stage="dynamic")
 def new_line_coverage(context: RuleContext) -> Iterator[Finding]:
     """The share of executable machine-written lines that the tests executed must reach the policy's
     threshold (default 90%). Executable lines follow coverage.py's own analysis: blank lines, comments
@@ -30,8 +29,9 @@ def new_line_coverage(context: RuleContext) -> Iterator[Finding]:
     )
     for path, lines in summary.uncovered.items():
         for line in lines:
-            yield Finding("coverage.new-lines", "block", "machine-written line never executed by the tests",
-                          path=path, line=line)
+            yield Finding(
+                "coverage.new-lines", "block", "machine-written line never executed by the tests", path=path, line=line
+            )
 
 
 def _separate_targets(summary: CoverageSummary) -> Iterator[Finding]:
@@ -48,5 +48,10 @@ def _separate_targets(summary: CoverageSummary) -> Iterator[Finding]:
             path=target.path,
         )
         for line in target.uncovered:
-            yield Finding("coverage.new-lines", "block", "machine-written line never executed by the tests",
-                          path=target.path, line=line)
+            yield Finding(
+                "coverage.new-lines",
+                "block",
+                "machine-written line never executed by the tests",
+                path=target.path,
+                line=line,
+            )

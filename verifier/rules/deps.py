@@ -72,15 +72,29 @@ def _mapping(value: Any) -> Mapping[str, Any]:
 
 def _line_of(text: str, name: str) -> int | None:
     """The first line of a pyproject.toml that declares ``name`` (as a quoted requirement or a table key)."""
-    pattern = re.compile(r"""(["']\s*|^\s*)""" + r"[-_.]?".join(re.escape(p) for p in re.split(r"-", name))
-                         + r"""\s*(?:[\[<>=!~;@ "']|$)""", re.IGNORECASE)
+    pattern = re.compile(
+        r"""(["']\s*|^\s*)"""
+        + r"[-_.]?".join(re.escape(p) for p in re.split(r"-", name))
+        + r"""\s*(?:[\[<>=!~;@ "']|$)""",
+        re.IGNORECASE,
+    )
     return next((n for n, line in enumerate(text.split("\n"), start=1) if pattern.search(line)), None)
 
 
-@rule(RULE_ID, default="warn", summary="new dependencies declared by machine-written lines", stage="static",
-      options={"requirement_files": list(DEFAULT_REQUIREMENT_FILES)},
-      sources=("PEP 503 (name normalisation)", "PEP 621 ([project] dependencies)", "PEP 735 ([dependency-groups])",
-               "pip documentation: requirements file format", "CWE-1357"))
+@rule(
+    RULE_ID,
+    default="warn",
+    summary="new dependencies declared by machine-written lines",
+    stage="static",
+    options={"requirement_files": list(DEFAULT_REQUIREMENT_FILES)},
+    sources=(
+        "PEP 503 (name normalisation)",
+        "PEP 621 ([project] dependencies)",
+        "PEP 735 ([dependency-groups])",
+        "pip documentation: requirements file format",
+        "CWE-1357",
+    ),
+)
 def added_dependencies(context: RuleContext) -> Iterator[Finding]:
     """Every dependency a model adds is code the project will run without having reviewed it (and a
     name a model may have made up). New requirements in requirements files and in pyproject.toml
@@ -118,5 +132,11 @@ def _new_pyproject_dependencies(context: RuleContext, file: FileChange) -> Itera
 
 
 def _finding(requirement: str, path: str, line: int | None) -> Finding:
-    return Finding(RULE_ID, "warn", f"new dependency declared: {requirement}", path=path, line=line,
-                   details={"requirement": requirement})
+    return Finding(
+        RULE_ID,
+        "warn",
+        f"new dependency declared: {requirement}",
+        path=path,
+        line=line,
+        details={"requirement": requirement},
+    )

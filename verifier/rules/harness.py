@@ -22,8 +22,15 @@ from verifier.tomlfile import load_toml
 RULE_ID = "config.harness"
 # Files that change how pytest or Python start up, wholly: conftest.py plugins and fixtures, pytest's own
 # ini files, coverage.py's rc file, the site module's startup hooks and path files.
-HARNESS_FILES = ["**/conftest.py", "**/pytest.ini", "**/.pytest.ini", "**/.coveragerc", "**/sitecustomize.py",
-                 "**/usercustomize.py", "**/*.pth"]
+HARNESS_FILES = [
+    "**/conftest.py",
+    "**/pytest.ini",
+    "**/.pytest.ini",
+    "**/.coveragerc",
+    "**/sitecustomize.py",
+    "**/usercustomize.py",
+    "**/*.pth",
+]
 # coverage.py's default exclusion pattern (the same text as coverage.config.DEFAULT_EXCLUDE[0]).
 DEFAULT_PRAGMA = r"#\s*(pragma|PRAGMA)[:\s]?\s*(no|NO)\s*(cover|COVER)"
 COVERAGE_CONFIGS = (".coveragerc", "setup.cfg", "tox.ini", "pyproject.toml")
@@ -38,7 +45,8 @@ def harness_section(file_name: str, section: str, line: str) -> bool:
         if section.startswith(("tool.pytest", "tool.coverage")):
             return True
         return (section == "tool" and key.startswith(("pytest", "coverage"))) or (
-            section == "" and key.startswith(("tool.pytest", "tool.coverage")))
+            section == "" and key.startswith(("tool.pytest", "tool.coverage"))
+        )
     if file_name == "setup.cfg":
         return section == "tool:pytest" or section.startswith("coverage:")
     if file_name == "tox.ini":
@@ -64,8 +72,11 @@ def _lines_in_harness(file_name: str, text: str | None, numbers: frozenset[int])
         return []
     rows = text.split("\n")
     sections = sections_by_line(file_name, text)
-    return [(n, sections[n - 1]) for n in sorted(numbers) if 0 < n <= len(rows)
-            and harness_section(file_name, sections[n - 1], rows[n - 1])]
+    return [
+        (n, sections[n - 1])
+        for n in sorted(numbers)
+        if 0 < n <= len(rows) and harness_section(file_name, sections[n - 1], rows[n - 1])
+    ]
 
 
 def exclusion_patterns(config_texts: dict[str, str]) -> list[str]:
@@ -74,7 +85,7 @@ def exclusion_patterns(config_texts: dict[str, str]) -> list[str]:
     patterns: list[str] = []
     for name, text in config_texts.items():
         if name == "pyproject.toml":
-            report = ((load_toml(text) or {}).get("tool", {}).get("coverage", {}).get("report", {}))
+            report = (load_toml(text) or {}).get("tool", {}).get("coverage", {}).get("report", {})
             values = [*report.get("exclude_lines", []), *report.get("exclude_also", [])]
         else:
             values = _ini_values(text, "report" if name == ".coveragerc" else "coverage:report")
@@ -106,11 +117,19 @@ def _compile(patterns: list[str]) -> list[re.Pattern[str]]:
     return compiled
 
 
-@rule(RULE_ID, default="block", summary="machine-written change to the test or coverage harness",
-      stage="static", options={"files": list(HARNESS_FILES), "exclusion_patterns": []},
-      sources=("pytest documentation: conftest.py plugins; configuration files (pytest.ini, pyproject.toml, "
-               "tox.ini, setup.cfg)", "coverage.py documentation: configuration reference; excluding code",
-               "Python docs: site module (sitecustomize, usercustomize, .pth files)"))
+@rule(
+    RULE_ID,
+    default="block",
+    summary="machine-written change to the test or coverage harness",
+    stage="static",
+    options={"files": list(HARNESS_FILES), "exclusion_patterns": []},
+    sources=(
+        "pytest documentation: conftest.py plugins; configuration files (pytest.ini, pyproject.toml, "
+        "tox.ini, setup.cfg)",
+        "coverage.py documentation: configuration reference; excluding code",
+        "Python docs: site module (sitecustomize, usercustomize, .pth files)",
+    ),
+)
 def harness_changes(context: RuleContext) -> Iterator[Finding]:
     """The gate trusts pytest and coverage.py to tell the truth, so a model must not change how they run:
     conftest.py files, pytest's and coverage.py's configuration (pytest.ini, .coveragerc, the pytest and
@@ -123,8 +142,13 @@ def harness_changes(context: RuleContext) -> Iterator[Finding]:
     for file in context.change.files:
         names = [p for p in (file.path, file.old_path) if p]
         if any(is_harness(p) for p in names) and machine_changed(context, file):
-            yield Finding(RULE_ID, "block", f"harness file {_verb(file)} by machine-written change",
-                          path=file.path, line=min(machine_lines(context, file.path), default=None))
+            yield Finding(
+                RULE_ID,
+                "block",
+                f"harness file {_verb(file)} by machine-written change",
+                path=file.path,
+                line=min(machine_lines(context, file.path), default=None),
+            )
             continue
         yield from _config_sections(context, file)
     yield from _exclusions(context)
@@ -143,9 +167,14 @@ def _config_sections(context: RuleContext, file: FileChange) -> Iterator[Finding
     removed = _lines_in_harness(name, base_text(context, file), removed_numbers)
     if added or removed:
         sections = sorted({s for _, s in added + removed})
-        yield Finding(RULE_ID, "block", f"pytest or coverage configuration changed by machine-written lines "
-                      f"([{'], ['.join(sections)}])", path=file.path, line=added[0][0] if added else None,
-                      details={"added": [n for n, _ in added], "removed": [n for n, _ in removed]})
+        yield Finding(
+            RULE_ID,
+            "block",
+            f"pytest or coverage configuration changed by machine-written lines ([{'], ['.join(sections)}])",
+            path=file.path,
+            line=added[0][0] if added else None,
+            details={"added": [n for n, _ in added], "removed": [n for n, _ in removed]},
+        )
 
 
 def _exclusions(context: RuleContext) -> Iterator[Finding]:
@@ -162,8 +191,14 @@ def _exclusions(context: RuleContext) -> Iterator[Finding]:
             text = rows[number - 1] if 0 < number <= len(rows) else ""
             hit = next((p for p in present if p.search(text)), None)
             if hit is not None:
-                yield Finding(RULE_ID, "block", "coverage exclusion on a machine-written line: coverage.py will "
-                              "not measure it", path=path, line=number, details={"pattern": hit.pattern})
+                yield Finding(
+                    RULE_ID,
+                    "block",
+                    "coverage exclusion on a machine-written line: coverage.py will not measure it",
+                    path=path,
+                    line=number,
+                    details={"pattern": hit.pattern},
+                )
 
 
 def _base_config(context: RuleContext, name: str) -> str | None:

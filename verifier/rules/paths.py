@@ -12,26 +12,61 @@ RULE_ID = "paths.protected"
 
 DEFAULT_PROTECTED: tuple[str, ...] = (
     # continuous integration
-    ".github/workflows/**", ".github/actions/**", ".gitlab-ci.yml", ".gitlab/ci/**", ".ci/**", "Jenkinsfile",
-    "**/Jenkinsfile", ".circleci/**", "azure-pipelines.yml", ".buildkite/**", ".travis.yml", ".drone.yml",
+    ".github/workflows/**",
+    ".github/actions/**",
+    ".gitlab-ci.yml",
+    ".gitlab/ci/**",
+    ".ci/**",
+    "Jenkinsfile",
+    "**/Jenkinsfile",
+    ".circleci/**",
+    "azure-pipelines.yml",
+    ".buildkite/**",
+    ".travis.yml",
+    ".drone.yml",
     # the gate's own policy
-    "verifier.yaml", "policies/**",
+    "verifier.yaml",
+    "policies/**",
     # git hooks and ownership
-    ".githooks/**", "hooks/**", ".github/CODEOWNERS", "CODEOWNERS",
+    ".githooks/**",
+    "hooks/**",
+    ".github/CODEOWNERS",
+    "CODEOWNERS",
     # deployment
-    "Dockerfile", "**/Dockerfile", "**/Dockerfile.*", "**/*.dockerfile", "docker-compose*.yml",
-    "deploy/**", "k8s/**", "helm/**", "**/*.tf", "**/*.tfvars",
+    "Dockerfile",
+    "**/Dockerfile",
+    "**/Dockerfile.*",
+    "**/*.dockerfile",
+    "docker-compose*.yml",
+    "deploy/**",
+    "k8s/**",
+    "helm/**",
+    "**/*.tf",
+    "**/*.tfvars",
     # lock files (pinned, hashed dependency sets)
-    "**/poetry.lock", "**/Pipfile.lock", "**/uv.lock", "**/pdm.lock", "**/package-lock.json", "**/yarn.lock",
-    "**/pnpm-lock.yaml", "**/Cargo.lock", "**/requirements*.lock",
+    "**/poetry.lock",
+    "**/Pipfile.lock",
+    "**/uv.lock",
+    "**/pdm.lock",
+    "**/package-lock.json",
+    "**/yarn.lock",
+    "**/pnpm-lock.yaml",
+    "**/Cargo.lock",
+    "**/requirements*.lock",
     # database migrations
-    "**/migrations/**", "**/alembic/versions/**",
+    "**/migrations/**",
+    "**/alembic/versions/**",
 )
 
 
-@rule(RULE_ID, default="block", summary="machine-written change to CI, policy, hooks, deployment, locks, migrations",
-      stage="static", options={"paths": list(DEFAULT_PROTECTED), "extra": []},
-      sources=("the gate's trust model: a change must not edit what builds, judges or ships it",))
+@rule(
+    RULE_ID,
+    default="block",
+    summary="machine-written change to CI, policy, hooks, deployment, locks, migrations",
+    stage="static",
+    options={"paths": list(DEFAULT_PROTECTED), "extra": []},
+    sources=("the gate's trust model: a change must not edit what builds, judges or ships it",),
+)
 def protected_paths(context: RuleContext) -> Iterator[Finding]:
     """Some files decide how every other change is built, checked, deployed or migrated: CI
     configuration, this gate's policy (verifier.yaml, policies/), git hooks, deployment files (Dockerfile,
@@ -47,9 +82,20 @@ def protected_paths(context: RuleContext) -> Iterator[Finding]:
             continue
         added = sorted(machine_lines(context, file.path))
         if added:
-            yield Finding(RULE_ID, "block", f"protected file changed by machine-written lines ({len(added)} added)",
-                          path=file.path, line=added[0], details={"lines": added})
+            yield Finding(
+                RULE_ID,
+                "block",
+                f"protected file changed by machine-written lines ({len(added)} added)",
+                path=file.path,
+                line=added[0],
+                details={"lines": added},
+            )
         elif machine_removed(context, file):
             what = {"added": "added", "deleted": "deleted", "renamed": f"renamed from {file.old_path}"}
-            yield Finding(RULE_ID, "block", f"protected file {what.get(file.status, 'edited')} by a machine commit",
-                          path=file.path, details={"status": file.status, "removed_lines": len(file.removed_lines)})
+            yield Finding(
+                RULE_ID,
+                "block",
+                f"protected file {what.get(file.status, 'edited')} by a machine commit",
+                path=file.path,
+                details={"status": file.status, "removed_lines": len(file.removed_lines)},
+            )

@@ -10,8 +10,9 @@ from verifier.rules.tests import _gist
 from verifier.testrun.differential import classify, regressions
 
 
-@rule("tests.broken", default="block", summary="a test the change breaks (passed at base, fails at head)",
-      stage="dynamic")
+@rule(
+    "tests.broken", default="block", summary="a test the change breaks (passed at base, fails at head)", stage="dynamic"
+)
 def broken_tests(context: RuleContext) -> Iterator[Finding]:
     """For a repository whose main branch already has failing tests: with the policy's
     ``selection.differential: true``, the selected tests also run at the base revision, and this rule
@@ -27,10 +28,18 @@ def broken_tests(context: RuleContext) -> Iterator[Finding]:
         return
     for test in regressions(run.tests, run.baseline):
         kind = classify(run.baseline.get(test.node_id), test.outcome) if run.baseline is not None else "unknown"
-        why = {"broken": "passed at base, fails at head", "new": "a new test that fails",
-               "unknown": "no baseline to compare with"}[kind]
-        yield Finding("tests.broken", "block", f"{test.node_id} {test.outcome} ({why}): {_gist(test.message)}",
-                      path=test.node_id.split("::", 1)[0], details={"class": kind, "message": test.message})
+        why = {
+            "broken": "passed at base, fails at head",
+            "new": "a new test that fails",
+            "unknown": "no baseline to compare with",
+        }[kind]
+        yield Finding(
+            "tests.broken",
+            "block",
+            f"{test.node_id} {test.outcome} ({why}): {_gist(test.message)}",
+            path=test.node_id.split("::", 1)[0],
+            details={"class": kind, "message": test.message},
+        )
 
 
 @rule("tests.flaky", default="warn", summary="a test failed, then passed when run again", stage="dynamic")
@@ -44,7 +53,10 @@ def flaky_tests(context: RuleContext) -> Iterator[Finding]:
         return
     for test in run.tests:
         if test.outcome == "flaky":
-            yield Finding("tests.flaky", "warn",
-                          f"{test.node_id} is flaky: failed, then passed on re-run ({test.attempts} runs): "
-                          f"{_gist(test.message)}", path=test.node_id.split("::", 1)[0],
-                          details={"attempts": test.attempts, "message": test.message})
+            yield Finding(
+                "tests.flaky",
+                "warn",
+                f"{test.node_id} is flaky: failed, then passed on re-run ({test.attempts} runs): {_gist(test.message)}",
+                path=test.node_id.split("::", 1)[0],
+                details={"attempts": test.attempts, "message": test.message},
+            )

@@ -23,21 +23,39 @@ SHAPES: tuple[tuple[str, re.Pattern[str]], ...] = (
     ("JSON Web Token", re.compile(r"\b(eyJ[A-Za-z0-9_-]{8,}\.eyJ[A-Za-z0-9_-]{8,}\.[A-Za-z0-9_-]{8,})")),
 )
 _SECRET_NAME = r"[A-Za-z0-9_.-]*(?:key|token|secret|passw(?:or)?d|passwd|pwd|credential|auth)[A-Za-z0-9_]*"
-ASSIGNED = re.compile(
-    r"(?i)\b(" + _SECRET_NAME + r")[\"']?\s*(?:=|:=|:|=>)\s*[rbuRBU]?([\"'])([^\"'\s]+)\2"
-)
+ASSIGNED = re.compile(r"(?i)\b(" + _SECRET_NAME + r")[\"']?\s*(?:=|:=|:|=>)\s*[rbuRBU]?([\"'])([^\"'\s]+)\2")
 # Values that say they are not real: documentation examples (AWS's end in EXAMPLE), templates, stars.
 _PLACEHOLDERS = re.compile(r"(?i)example|dummy|changeme|placeholder|xxxx|your[_-]|redacted|\$\{|\{\{|<|\*\*\*")
 
 
 # Every shape and name above contains one of these; a line without any is skipped cheaply.
-_PREFILTER = re.compile(r"(?i)-----BEGIN|AKIA|ASIA|gh[pousr]_|github_pat_|xox|eyJ|key|token|secret|passw|pwd"
-                        r"|credential|auth")
+_PREFILTER = re.compile(
+    r"(?i)-----BEGIN|AKIA|ASIA|gh[pousr]_|github_pat_|xox|eyJ|key|token|secret|passw|pwd"
+    r"|credential|auth"
+)
 # The same alternatives as plain lower-case texts: for ASCII text, ``text.lower()`` holding one of them
 # is what the case-insensitive search finds, at a fraction of its cost (a regex alternation ignoring case
 # tries every branch at every character).
-_PREFILTER_TEXTS = ("-----begin", "akia", "asia", "ghp_", "gho_", "ghu_", "ghs_", "ghr_", "github_pat_", "xox",
-                    "eyj", "key", "token", "secret", "passw", "pwd", "credential", "auth")
+_PREFILTER_TEXTS = (
+    "-----begin",
+    "akia",
+    "asia",
+    "ghp_",
+    "gho_",
+    "ghu_",
+    "ghs_",
+    "ghr_",
+    "github_pat_",
+    "xox",
+    "eyj",
+    "key",
+    "token",
+    "secret",
+    "passw",
+    "pwd",
+    "credential",
+    "auth",
+)
 
 
 def might_hold_secret(text: str) -> bool:
@@ -68,14 +86,28 @@ def find_secrets(
         value = match.group(3)
         if len(value) >= min_length and entropy(value) >= min_entropy:
             found.append((f"high-entropy string assigned to '{match.group(1)}'", value))
-    return [(kind, secret) for kind, secret in found
-            if not _PLACEHOLDERS.search(secret) and not any(a.search(secret) for a in allowed)]
+    return [
+        (kind, secret)
+        for kind, secret in found
+        if not _PLACEHOLDERS.search(secret) and not any(a.search(secret) for a in allowed)
+    ]
 
 
-@rule(RULE_ID, default="block", summary="credential-like literals on machine-written lines", stage="static",
-      options={"allow": [], "min_length": 16, "min_entropy": 3.5},
-      sources=("CWE-798", "CWE-321", "RFC 7468 (PEM armour)", "RFC 7519 (JWT compact serialisation)",
-               "AWS documentation: access key id format", "GitHub documentation: token prefixes"))
+@rule(
+    RULE_ID,
+    default="block",
+    summary="credential-like literals on machine-written lines",
+    stage="static",
+    options={"allow": [], "min_length": 16, "min_entropy": 3.5},
+    sources=(
+        "CWE-798",
+        "CWE-321",
+        "RFC 7468 (PEM armour)",
+        "RFC 7519 (JWT compact serialisation)",
+        "AWS documentation: access key id format",
+        "GitHub documentation: token prefixes",
+    ),
+)
 def literal_secrets(context: RuleContext) -> Iterator[Finding]:
     """A credential in the source is a credential leaked to everyone who can read the repository, and
     a model may copy one from its context. Machine-written lines are searched for private key blocks,
@@ -95,5 +127,11 @@ def literal_secrets(context: RuleContext) -> Iterator[Finding]:
             text = rows[number - 1] if 0 < number <= len(rows) else ""
             for kind, secret in find_secrets(text, min_length, min_entropy, allowed):
                 cwe = "CWE-321" if kind == "private key block" else "CWE-798"
-                yield Finding(RULE_ID, "block", f"{kind} in a machine-written line: {mask(secret)} ({cwe})",
-                              path=path, line=number, details={"kind": kind, "cwe": cwe, "masked": mask(secret)})
+                yield Finding(
+                    RULE_ID,
+                    "block",
+                    f"{kind} in a machine-written line: {mask(secret)} ({cwe})",
+                    path=path,
+                    line=number,
+                    details={"kind": kind, "cwe": cwe, "masked": mask(secret)},
+                )

@@ -11,9 +11,14 @@ from verifier.rules.machine import matches, option
 RULE_ID = "patch.size"
 
 
-@rule(RULE_ID, default="warn", summary="more machine-written lines in one change than the policy allows",
-      stage="static", options={"max_lines": 1000, "exclude": []},
-      sources=("the gate's review model: a human reviews what the model wrote",))
+@rule(
+    RULE_ID,
+    default="warn",
+    summary="more machine-written lines in one change than the policy allows",
+    stage="static",
+    options={"max_lines": 1000, "exclude": []},
+    sources=("the gate's review model: a human reviews what the model wrote",),
+)
 def patch_size(context: RuleContext) -> Iterator[Finding]:
     """A change whose machine-written lines exceed the policy's ``max_lines`` (default 1000) is too big
     to review with care, whatever its tests say. Lines in paths matching option ``exclude`` (for example
@@ -21,10 +26,15 @@ def patch_size(context: RuleContext) -> Iterator[Finding]:
     its own."""
     limit = option(context, RULE_ID, "max_lines")
     excluded = option(context, RULE_ID, "exclude")
-    counts = {path: len(lines) for path, lines in context.provenance.machine_lines.items()
-              if not matches(path, excluded)}
+    counts = {
+        path: len(lines) for path, lines in context.provenance.machine_lines.items() if not matches(path, excluded)
+    }
     total = sum(counts.values())
     if total > limit:
         largest = sorted(counts.items(), key=lambda item: (-item[1], item[0]))[:5]
-        yield Finding(RULE_ID, "warn", f"{total} machine-written lines in {len(counts)} files; the policy allows "
-                      f"{limit} per change", details={"lines": total, "limit": limit, "largest": dict(largest)})
+        yield Finding(
+            RULE_ID,
+            "warn",
+            f"{total} machine-written lines in {len(counts)} files; the policy allows {limit} per change",
+            details={"lines": total, "limit": limit, "largest": dict(largest)},
+        )

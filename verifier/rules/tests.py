@@ -27,8 +27,13 @@ def failing_tests(context: RuleContext) -> Iterator[Finding]:
     for test in run.tests:
         if test.outcome in ("failed", "error"):
             path = test.node_id.split("::", 1)[0]
-            yield Finding("tests.failing", "block", f"{test.node_id} {test.outcome}: {_gist(test.message)}",
-                          path=path, details={"message": test.message})
+            yield Finding(
+                "tests.failing",
+                "block",
+                f"{test.node_id} {test.outcome}: {_gist(test.message)}",
+                path=path,
+                details={"message": test.message},
+            )
 
 
 def _gist(message: str) -> str:
@@ -38,8 +43,7 @@ def _gist(message: str) -> str:
     return errors[0] if errors else (lines[-1] if lines else "no message")
 
 
-@rule("run.incomplete", default="block", summary="the tests could not be run to the end", stage="dynamic",
-      fixed=True)
+@rule("run.incomplete", default="block", summary="the tests could not be run to the end", stage="dynamic", fixed=True)
 def incomplete_run(context: RuleContext) -> Iterator[Finding]:
     """The gate verifies only what it saw run. A timeout, a crash, a collection error or an empty test
     run means the change was not verified; the gate says so and exits 3, never passing by default. The

@@ -21,10 +21,17 @@ from verifier.rules.machine import base_text, glob_matcher, head_text, machine_l
 
 RULE_ID = "tests.weakened"
 DEFAULT_TEST_GLOBS = ["tests/**/*.py", "test/**/*.py", "**/test_*.py", "**/*_test.py"]
-SKIP_MARKERS = frozenset({
-    "pytest.mark.skip", "pytest.mark.skipif", "pytest.mark.xfail",
-    "unittest.skip", "unittest.skipIf", "unittest.skipUnless", "unittest.expectedFailure",
-})
+SKIP_MARKERS = frozenset(
+    {
+        "pytest.mark.skip",
+        "pytest.mark.skipif",
+        "pytest.mark.xfail",
+        "unittest.skip",
+        "unittest.skipIf",
+        "unittest.skipUnless",
+        "unittest.expectedFailure",
+    }
+)
 SKIP_CALLS = frozenset({"pytest.skip", "pytest.xfail", "pytest.importorskip", "self.skipTest"})
 RAISES_CALLS = frozenset({"pytest.raises", "self.assertRaises", "self.assertRaisesRegex"})
 _SAME_VALUE_OPS = (ast.Eq, ast.Is, ast.LtE, ast.GtE)
@@ -53,8 +60,26 @@ def fingerprint(node: object, mask_constants: bool = False) -> str:
 
 
 # Fields that never hold a node that can hold an assertion or a call: names, flags, operators, contexts.
-_LEAF_FIELDS = frozenset({"ctx", "id", "attr", "arg", "name", "names", "asname", "module", "level", "kind",
-                          "type_comment", "op", "ops", "is_async", "conversion", "tag"})
+_LEAF_FIELDS = frozenset(
+    {
+        "ctx",
+        "id",
+        "attr",
+        "arg",
+        "name",
+        "names",
+        "asname",
+        "module",
+        "level",
+        "kind",
+        "type_comment",
+        "op",
+        "ops",
+        "is_async",
+        "conversion",
+        "tag",
+    }
+)
 
 
 @functools.cache
@@ -193,10 +218,17 @@ def _keyword(call: ast.Call, name: str) -> ast.expr | None:
 # --- the rule -----------------------------------------------------------------------------------------
 
 
-@rule(RULE_ID, default="block", summary="the change loosens the tests (deleted tests, skips, weaker asserts)",
-      stage="static", options={"test_paths": list(DEFAULT_TEST_GLOBS), "changed_expectations": True},
-      sources=("Python docs: Built-in Exceptions, Exception hierarchy (for widened pytest.raises)",
-               "pytest documentation: skip and xfail; parametrizing tests"))
+@rule(
+    RULE_ID,
+    default="block",
+    summary="the change loosens the tests (deleted tests, skips, weaker asserts)",
+    stage="static",
+    options={"test_paths": list(DEFAULT_TEST_GLOBS), "changed_expectations": True},
+    sources=(
+        "Python docs: Built-in Exceptions, Exception hierarchy (for widened pytest.raises)",
+        "pytest documentation: skip and xfail; parametrizing tests",
+    ),
+)
 def weakened_tests(context: RuleContext) -> Iterator[Finding]:
     """A machine-written change must not make the tests easier to pass. Compared between base and head,
     test function by test function: deleted test functions or test files, fewer assertions, new skip or
@@ -224,16 +256,22 @@ def _compare_file(context: RuleContext, file: FileChange, at_base: bool, at_head
     head_index = module_index(head_source, file.path, keep=False) if head_source is not None else None
     base = read_module(base_index.tree, base_index.names) if base_index is not None else None
     if base is not None and base.functions and head_source is None and removed_by_machine:
-        yield Finding(RULE_ID, "block", f"test file deleted ({len(base.functions)} test functions)",
-                      path=file.path, details={"functions": sorted(base.functions)})
+        yield Finding(
+            RULE_ID,
+            "block",
+            f"test file deleted ({len(base.functions)} test functions)",
+            path=file.path,
+            details={"functions": sorted(base.functions)},
+        )
         return
     if head_index is None:
         return
     head = read_module(head_index.tree, head_index.names)
     added = frozenset(machine_lines(context, file.path))
     removed = frozenset(file.removed_lines) if removed_by_machine else frozenset()
-    comparison = _FileComparison(file.path, base, head, added, removed,
-                                 option(context, RULE_ID, "changed_expectations"))
+    comparison = _FileComparison(
+        file.path, base, head, added, removed, option(context, RULE_ID, "changed_expectations")
+    )
     yield from comparison.findings()
 
 
@@ -271,8 +309,7 @@ class _FileComparison:
         for function in gone:
             renamed = fingerprint(function.node.body) in new_bodies
             if not renamed and any(n in self.removed for n in _lines(function.node)):
-                yield self.finding(f"test function {function.qualname} deleted", None,
-                                   base_line=function.node.lineno)
+                yield self.finding(f"test function {function.qualname} deleted", None, base_line=function.node.lineno)
 
     def _scope_markers(self) -> Iterator[Finding]:
         assert self.base is not None
@@ -296,8 +333,10 @@ class _FileComparison:
         for call in _new_items(before.skip_calls, now.skip_calls):
             yield self.finding(f"skip call added to {name}", call.lineno)
         if len(now.asserts) < len(before.asserts):
-            yield self.finding(f"{name}: {len(before.asserts) - len(now.asserts)} of {len(before.asserts)} "
-                               "assertions removed", now.node.lineno)
+            yield self.finding(
+                f"{name}: {len(before.asserts) - len(now.asserts)} of {len(before.asserts)} assertions removed",
+                now.node.lineno,
+            )
         yield from self._raises(before, now)
         for argnames, (count, line) in now.params.items():
             old = before.params.get(argnames)
@@ -314,8 +353,7 @@ class _FileComparison:
             if broader:
                 yield self.finding(f"{now.qualname}: pytest.raises widened to {broader}", new.lineno)
             if _keyword(old, "match") is not None and _keyword(new, "match") is None:
-                yield self.finding(f"{now.qualname}: pytest.raises no longer checks the message (match=)",
-                                   new.lineno)
+                yield self.finding(f"{now.qualname}: pytest.raises no longer checks the message (match=)", new.lineno)
 
     def _changed_expectations(self, before: TestFunction, now: TestFunction) -> Iterator[Finding]:
         shapes: dict[int, str] = {}  # id -> fingerprint, each assertion's computed once (all stay alive here)
@@ -334,8 +372,9 @@ class _FileComparison:
             if old is not None and node.lineno in self.added:
                 change = _constant_change(old, node)
                 finding = self.finding(f"{now.qualname}: expected value changed ({change})", node.lineno)
-                yield Finding(finding.rule, "warn", finding.message, finding.path, finding.line,
-                              {"max_severity": "warn"})
+                yield Finding(
+                    finding.rule, "warn", finding.message, finding.path, finding.line, {"max_severity": "warn"}
+                )
 
     def _trivial_asserts(self, base_functions: dict[str, TestFunction]) -> Iterator[Finding]:
         for qualname, function in self.head.functions.items():
@@ -383,8 +422,12 @@ def _is_trivial(node: ast.AST) -> bool:
         test = node.test
         if isinstance(test, ast.Constant):
             return bool(test.value)
-        return (isinstance(test, ast.Compare) and len(test.ops) == 1 and isinstance(test.ops[0], _SAME_VALUE_OPS)
-                and _same_shape(test.left, test.comparators[0]))
+        return (
+            isinstance(test, ast.Compare)
+            and len(test.ops) == 1
+            and isinstance(test.ops[0], _SAME_VALUE_OPS)
+            and _same_shape(test.left, test.comparators[0])
+        )
     if isinstance(node, ast.Call) and isinstance(node.func, ast.Attribute):
         args = node.args
         if node.func.attr == "assertTrue" and args and isinstance(args[0], ast.Constant):

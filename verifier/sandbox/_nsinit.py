@@ -63,8 +63,8 @@ STATUS_FILE = "status.json"
 ETC_COPIES = ("ld.so.cache", "ld.so.conf", "ld.so.conf.d", "localtime", "alternatives")
 ETC_WRITTEN = {
     "passwd": "root:x:0:0:root:/root:/usr/sbin/nologin\n"
-              f"sandbox:x:{SANDBOX_ID}:{SANDBOX_ID}:sandbox:{HOME}:/bin/sh\n"
-              "nobody:x:65534:65534:nobody:/nonexistent:/usr/sbin/nologin\n",
+    f"sandbox:x:{SANDBOX_ID}:{SANDBOX_ID}:sandbox:{HOME}:/bin/sh\n"
+    "nobody:x:65534:65534:nobody:/nonexistent:/usr/sbin/nologin\n",
     "group": f"root:x:0:\nsandbox:x:{SANDBOX_ID}:\nnogroup:x:65534:\n",
     "hosts": "127.0.0.1\tlocalhost sandbox\n::1\tlocalhost\n",
     "hostname": "sandbox\n",
@@ -86,8 +86,10 @@ def _mount(source: str | None, target: str, fstype: str | None, flags: int, data
     def encode(text: str | None) -> bytes | None:
         return None if text is None else text.encode()
 
-    _check(_libc.mount(encode(source), encode(target), encode(fstype), ctypes.c_ulong(flags), encode(data)),
-           f"mount {fstype or source} on {target}")
+    _check(
+        _libc.mount(encode(source), encode(target), encode(fstype), ctypes.c_ulong(flags), encode(data)),
+        f"mount {fstype or source} on {target}",
+    )
 
 
 def _make_read_only(target: str) -> None:
@@ -97,8 +99,10 @@ def _make_read_only(target: str) -> None:
     """
     attr = struct.pack("QQQQ", MOUNT_ATTR_RDONLY | MOUNT_ATTR_NOSUID | MOUNT_ATTR_NODEV, 0, 0, 0)
     buffer = ctypes.create_string_buffer(attr, len(attr))
-    _check(_libc.syscall(SYS_MOUNT_SETATTR, AT_FDCWD, target.encode(), AT_RECURSIVE, buffer, len(attr)),
-           f"make {target} read-only")
+    _check(
+        _libc.syscall(SYS_MOUNT_SETATTR, AT_FDCWD, target.encode(), AT_RECURSIVE, buffer, len(attr)),
+        f"make {target} read-only",
+    )
 
 
 def _bind(source: str, target: str, read_only: bool = True) -> None:
@@ -304,8 +308,12 @@ def _populate_dev(dev: str) -> None:
     os.makedirs(dev)
     for name in DEVICES:
         _bind(f"/dev/{name}", f"{dev}/{name}", read_only=False)
-    for name, target in (("fd", "/proc/self/fd"), ("stdin", "/proc/self/fd/0"),
-                         ("stdout", "/proc/self/fd/1"), ("stderr", "/proc/self/fd/2")):
+    for name, target in (
+        ("fd", "/proc/self/fd"),
+        ("stdin", "/proc/self/fd/0"),
+        ("stdout", "/proc/self/fd/1"),
+        ("stderr", "/proc/self/fd/2"),
+    ):
         os.symlink(target, f"{dev}/{name}")
 
 

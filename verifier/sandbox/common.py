@@ -122,8 +122,9 @@ def apply_limits(limits: Limits, processes: int | None) -> None:
     """
     _soft_cpu, hard_cpu = resource.getrlimit(resource.RLIMIT_CPU)
     wanted = limits.cpu_seconds if hard_cpu == resource.RLIM_INFINITY else min(limits.cpu_seconds, hard_cpu)
-    resource.setrlimit(resource.RLIMIT_CPU, (wanted, wanted + 1 if hard_cpu == resource.RLIM_INFINITY
-                                             else min(wanted + 1, hard_cpu)))
+    resource.setrlimit(
+        resource.RLIMIT_CPU, (wanted, wanted + 1 if hard_cpu == resource.RLIM_INFINITY else min(wanted + 1, hard_cpu))
+    )
     _lower_limit(resource.RLIMIT_AS, limits.memory_mb << 20)
     _lower_limit(resource.RLIMIT_FSIZE, limits.file_size_mb << 20)
     _lower_limit(resource.RLIMIT_CORE, 0)
@@ -223,8 +224,9 @@ def end_group(group: int, timeout: float = STOP_GRACE_SECONDS) -> None:
 class _Supervision:
     """One run of one process: reads its output under the cap, enforces the wall time, reaps it."""
 
-    def __init__(self, process: subprocess.Popen[bytes], limits: Limits,
-                 stop: Callable[[subprocess.Popen[bytes]], None]) -> None:
+    def __init__(
+        self, process: subprocess.Popen[bytes], limits: Limits, stop: Callable[[subprocess.Popen[bytes]], None]
+    ) -> None:
         self.process = process
         self.limits = limits
         self.stop = stop
@@ -317,17 +319,31 @@ class _Supervision:
         return outcome
 
 
-def supervise(argv: Sequence[str], *, cwd: str, env: Mapping[str, str], limits: Limits,
-              preexec: Callable[[], None], stop: Callable[[subprocess.Popen[bytes]], None] = kill_group,
-              pass_fds: Sequence[int] = ()) -> Outcome:
+def supervise(
+    argv: Sequence[str],
+    *,
+    cwd: str,
+    env: Mapping[str, str],
+    limits: Limits,
+    preexec: Callable[[], None],
+    stop: Callable[[subprocess.Popen[bytes]], None] = kill_group,
+    pass_fds: Sequence[int] = (),
+) -> Outcome:
     """Run ``argv`` in its own session with stdin from /dev/null and stdout+stderr captured and capped.
 
     ``stop`` ends the run when a limit is hit (or on Ctrl-C); afterwards the whole process group is
     killed and waited for in any case, so nothing the run started outlives this call.
     """
     process = subprocess.Popen(
-        list(argv), cwd=cwd, env=dict(env), stdin=subprocess.DEVNULL, stdout=subprocess.PIPE,
-        stderr=subprocess.STDOUT, start_new_session=True, preexec_fn=preexec, close_fds=True,
+        list(argv),
+        cwd=cwd,
+        env=dict(env),
+        stdin=subprocess.DEVNULL,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.STDOUT,
+        start_new_session=True,
+        preexec_fn=preexec,
+        close_fds=True,
         pass_fds=tuple(pass_fds),
     )
     supervision = _Supervision(process, limits, stop)
@@ -396,8 +412,9 @@ def read_capped(handle: int, cap: int = COLLECT_CAP_BYTES) -> bytes | None:
     return None if len(data) > cap else data
 
 
-def collect_files(root: str | Path, paths: Iterable[str], cap: int = COLLECT_CAP_BYTES
-                  ) -> tuple[dict[str, bytes], list[str]]:
+def collect_files(
+    root: str | Path, paths: Iterable[str], cap: int = COLLECT_CAP_BYTES
+) -> tuple[dict[str, bytes], list[str]]:
     """Read the workspace-relative ``paths`` below ``root``; missing ones are absent.
 
     Returns the files and the paths left behind for being larger than ``cap``.
@@ -429,8 +446,16 @@ def too_large_note(paths: Iterable[str]) -> str:
 def sandbox_result(backend: str, isolation: str, outcome: Outcome, files: Mapping[str, bytes]) -> SandboxResult:
     """The backend-neutral result of a supervised run."""
     return SandboxResult(
-        backend=backend, isolation=isolation, exit_status=outcome.exit_status, signal=outcome.signal,
-        timed_out=outcome.timed_out, output=outcome.output, output_truncated=outcome.output_truncated,
-        files=dict(files), wall_seconds=outcome.wall_seconds, cpu_seconds=outcome.cpu_seconds,
-        max_rss_kb=outcome.max_rss_kb, limit_hit=limit_hit(outcome),
+        backend=backend,
+        isolation=isolation,
+        exit_status=outcome.exit_status,
+        signal=outcome.signal,
+        timed_out=outcome.timed_out,
+        output=outcome.output,
+        output_truncated=outcome.output_truncated,
+        files=dict(files),
+        wall_seconds=outcome.wall_seconds,
+        cpu_seconds=outcome.cpu_seconds,
+        max_rss_kb=outcome.max_rss_kb,
+        limit_hit=limit_hit(outcome),
     )

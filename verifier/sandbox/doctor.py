@@ -38,6 +38,8 @@ def _facts(name: str) -> list[tuple[str, str]]:
         from pathlib import Path
 
         limit = Path("/proc/sys/user/max_user_namespaces")
-        return [("kernel", platform.release()),
-                ("user namespaces allowed", limit.read_text().strip() if limit.exists() else "unknown")]
+        return [
+            ("kernel", platform.release()),
+            ("user namespaces allowed", limit.read_text().strip() if limit.exists() else "unknown"),
+        ]
     return []

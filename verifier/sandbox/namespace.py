@@ -26,18 +26,25 @@ from verifier.errors import CannotVerify
 from verifier.models import Limits, SandboxRequest, SandboxResult
 from verifier.sandbox import _nsinit, common
 
-_BOOT = ("import sys; sys.path.insert(0, sys.argv[1]); from verifier.sandbox._nsinit import main; "
-         "main(sys.argv[2])")
+_BOOT = "import sys; sys.path.insert(0, sys.argv[1]); from verifier.sandbox._nsinit import main; main(sys.argv[2])"
 _HOST_FOLDERS = ("/usr", "/bin", "/sbin", "/lib", "/lib32", "/lib64", "/libx32")
-_HINT = ("the namespace sandbox needs unprivileged user namespaces (sysctl user.max_user_namespaces > 0; "
-         "on some systems kernel.unprivileged_userns_clone=1 or an AppArmor profile allowing them); "
-         "otherwise use --sandbox docker")
+_HINT = (
+    "the namespace sandbox needs unprivileged user namespaces (sysctl user.max_user_namespaces > 0; "
+    "on some systems kernel.unprivileged_userns_clone=1 or an AppArmor profile allowing them); "
+    "otherwise use --sandbox docker"
+)
 
 
 def interpreter_paths() -> list[str]:
     """The folders the sandboxed interpreter needs, besides what the new root shows of the host anyway."""
-    candidates = {sys.prefix, sys.base_prefix, sys.exec_prefix, sys.base_exec_prefix,
-                  os.path.dirname(os.path.realpath(sys.executable)), *site.getsitepackages()}
+    candidates = {
+        sys.prefix,
+        sys.base_prefix,
+        sys.exec_prefix,
+        sys.base_exec_prefix,
+        os.path.dirname(os.path.realpath(sys.executable)),
+        *site.getsitepackages(),
+    }
     real = sorted({os.path.realpath(path) for path in candidates if os.path.isdir(path)})
     needed: list[str] = []
     for path in real:
@@ -62,9 +69,11 @@ class NamespaceBackend:
     """Isolation by Linux namespaces, built with unshare(2), pivot_root(2) and rlimits; needs no daemon."""
 
     name = "namespace"
-    isolation = ("Linux namespaces: own user (unprivileged id, no capabilities), PID, network (none), mount "
-                 "(minimal read-only root, writable workspace and /tmp only), IPC, UTS and cgroup; shares "
-                 "the host kernel")
+    isolation = (
+        "Linux namespaces: own user (unprivileged id, no capabilities), PID, network (none), mount "
+        "(minimal read-only root, writable workspace and /tmp only), IPC, UTS and cgroup; shares "
+        "the host kernel"
+    )
 
     def problem(self) -> str | None:
         return _probe()
@@ -82,10 +91,15 @@ class NamespaceBackend:
         out_dir.mkdir(mode=0o700)
         new_root.mkdir(mode=0o700)
         config = {
-            "tree": os.path.realpath(request.tree), "out_dir": str(out_dir), "new_root": str(new_root),
-            "python": sys.executable, "args": list(request.python_args), "collect": list(request.collect),
+            "tree": os.path.realpath(request.tree),
+            "out_dir": str(out_dir),
+            "new_root": str(new_root),
+            "python": sys.executable,
+            "args": list(request.python_args),
+            "collect": list(request.collect),
             "env": common.sandbox_env(request.env, _nsinit.HOME, "/tmp"),
-            "limits": dataclasses.asdict(request.limits), "interpreter_paths": interpreter_paths(),
+            "limits": dataclasses.asdict(request.limits),
+            "interpreter_paths": interpreter_paths(),
         }
         config_file = folder / "config.json"
         config_file.touch(mode=0o600)
@@ -93,18 +107,21 @@ class NamespaceBackend:
         package_parent = str(Path(__file__).resolve().parents[2])
         outcome = common.supervise(
             [sys.executable, "-I", "-S", "-c", _BOOT, package_parent, str(config_file)],
-            cwd=str(folder), env={"PATH": "/usr/bin:/bin", "LANG": "C.UTF-8"}, limits=request.limits,
-            preexec=functools.partial(_start_init, os.getpid()), stop=_ask_init_to_stop,
+            cwd=str(folder),
+            env={"PATH": "/usr/bin:/bin", "LANG": "C.UTF-8"},
+            limits=request.limits,
+            preexec=functools.partial(_start_init, os.getpid()),
+            stop=_ask_init_to_stop,
         )
         status = _read_status(out_dir)
         if "error" in status:
-            raise CannotVerify(f"the namespace sandbox could not be set up ({status.get('stage')}): "
-                               f"{status['error']}", hint=_HINT)
+            raise CannotVerify(
+                f"the namespace sandbox could not be set up ({status.get('stage')}): {status['error']}", hint=_HINT
+            )
         if "exit_status" not in status and not (outcome.timed_out or outcome.output_killed):
             tail = outcome.output[-2000:].strip() or "no output"
             raise CannotVerify(f"the namespace sandbox's init ended without a report: {tail}", hint=_HINT)
-        return common.sandbox_result(self.name, self.isolation, _merge(outcome, status),
-                                     _collected(out_dir, status))
+        return common.sandbox_result(self.name, self.isolation, _merge(outcome, status), _collected(out_dir, status))
 
 
 def _read_status(out_dir: Path) -> dict[str, Any]:
@@ -130,8 +147,11 @@ def _merge(outcome: common.Outcome, status: dict[str, Any]) -> common.Outcome:
     if "exit_status" not in status:  # stopped by a limit before the command ended: it was killed
         return dataclasses.replace(outcome, exit_status=None, signal=int(signal.SIGKILL))
     return dataclasses.replace(
-        outcome, exit_status=status["exit_status"], signal=status["signal"],
-        cpu_seconds=status["cpu_seconds"], max_rss_kb=status["max_rss_kb"],
+        outcome,
+        exit_status=status["exit_status"],
+        signal=status["signal"],
+        cpu_seconds=status["cpu_seconds"],
+        max_rss_kb=status["max_rss_kb"],
         output=outcome.output + common.too_large_note(status.get("too_large", ())),
     )
 
@@ -173,8 +193,13 @@ def _probe_now() -> str | None:
         return f"does not know pivot_root(2) on {platform.machine()}; use --sandbox docker"
     tree = common.make_temp_dir("probe")
     try:
-        request = SandboxRequest(tree=str(tree), python_args=("-c", "print('sandbox-ok')"), env={},
-                                 limits=Limits(wall_seconds=60), collect=())
+        request = SandboxRequest(
+            tree=str(tree),
+            python_args=("-c", "print('sandbox-ok')"),
+            env={},
+            limits=Limits(wall_seconds=60),
+            collect=(),
+        )
         result = NamespaceBackend().run(request)
     except CannotVerify as error:
         return str(error).replace("\n  hint: ", "; ")

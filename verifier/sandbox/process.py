@@ -41,8 +41,10 @@ class ProcessBackend:
     """No isolation: a child process with rlimits, a scrubbed environment and a temp workspace."""
 
     name = "process"
-    isolation = ("none: an ordinary child process with rlimits and a scrubbed environment; it can read and "
-                 "write what the user can and reach the network")
+    isolation = (
+        "none: an ordinary child process with rlimits and a scrubbed environment; it can read and "
+        "write what the user can and reach the network"
+    )
 
     def problem(self) -> str | None:
         if not sys.platform.startswith("linux"):
@@ -59,7 +61,10 @@ class ProcessBackend:
             (folder / "tmp").mkdir()
             env = common.sandbox_env(request.env, str(folder / "home"), str(folder / "tmp"))
             outcome = common.supervise(
-                [sys.executable, *request.python_args], cwd=str(workspace), env=env, limits=request.limits,
+                [sys.executable, *request.python_args],
+                cwd=str(workspace),
+                env=env,
+                limits=request.limits,
                 preexec=_child_setup(request.limits),
             )
             files, too_large = common.collect_files(workspace, request.collect)

@@ -52,7 +52,7 @@ class ImpactMap:
         fixtures: set[str] = set()
         for context in contexts:
             if context.startswith(FIXTURE):
-                fixtures.add(context[len(FIXTURE):])
+                fixtures.add(context[len(FIXTURE) :])
             elif context != IMPORT_TIME:
                 tests.add(context)
         if fixtures:
@@ -89,8 +89,9 @@ def from_run(tree: str, environment: str, run: RunResult) -> ImpactMap | None:
     )
 
 
-def build(git: Git, revision: str, policy: Policy, backend: Backend, environment: str) -> tuple[ImpactMap | None,
-                                                                                                   RunResult]:
+def build(
+    git: Git, revision: str, policy: Policy, backend: Backend, environment: str
+) -> tuple[ImpactMap | None, RunResult]:
     """Run the whole suite at ``revision`` in the sandbox and make its map (None when the run failed)."""
     from verifier.testrun import harness as testrun
 

@@ -8,8 +8,23 @@ import io
 from verifier.audit.build import Audit
 
 COLUMNS = (
-    "sha", "date", "agent", "marked", "committer", "author", "subject", "status", "verified", "verdict",
-    "coverage_percent", "lines_added", "machine_lines", "lines_alive", "lines_churned", "findings", "waivers",
+    "sha",
+    "date",
+    "agent",
+    "marked",
+    "committer",
+    "author",
+    "subject",
+    "status",
+    "verified",
+    "verdict",
+    "coverage_percent",
+    "lines_added",
+    "machine_lines",
+    "lines_alive",
+    "lines_churned",
+    "findings",
+    "waivers",
     "reverted_by",
 )
 
@@ -19,10 +34,26 @@ def render(audit: Audit) -> str:
     writer = csv.writer(out, lineterminator="\n")
     writer.writerow(COLUMNS)
     for c in audit.commits:
-        writer.writerow([
-            c.sha, c.date, c.agent, "yes" if c.marked else "no", c.committer, c.author, c.subject, c.status,
-            "yes" if c.verified else "no", c.verdict or "", "" if c.coverage_percent is None else c.coverage_percent,
-            c.lines_added, c.machine_lines, c.lines_alive, c.lines_churned, len(c.findings), len(c.waivers),
-            c.reverted_by or "",
-        ])
+        writer.writerow(
+            [
+                c.sha,
+                c.date,
+                c.agent,
+                "yes" if c.marked else "no",
+                c.committer,
+                c.author,
+                c.subject,
+                c.status,
+                "yes" if c.verified else "no",
+                c.verdict or "",
+                "" if c.coverage_percent is None else c.coverage_percent,
+                c.lines_added,
+                c.machine_lines,
+                c.lines_alive,
+                c.lines_churned,
+                len(c.findings),
+                len(c.waivers),
+                c.reverted_by or "",
+            ]
+        )
     return out.getvalue()

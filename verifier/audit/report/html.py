@@ -62,17 +62,24 @@ document.addEventListener('DOMContentLoaded', function () {
 def render(audit: Audit) -> str:
     w = audit.window
     parts = [
-        "<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
+        "<!DOCTYPE html>",
+        '<html lang="en"><head><meta charset="utf-8">',
         f"<title>Audit of {escape(audit.ref)} {w.since[:10]} to {w.until[:10]}</title>",
         f"<style>{_STYLE}</style><script>{_SCRIPT}</script></head><body>",
         f"<h1>Machine-written code on <code>{escape(audit.ref)}</code>, {w.since[:10]} to {w.until[:10]}</h1>",
         *[f"<p><strong>{escape(p)}</strong></p>" for p in audit.problems],
         _cards(w, audit),
-        '<h2>Trend</h2><div class="charts">', *_charts(audit.trend), "</div>",
+        '<h2>Trend</h2><div class="charts">',
+        *_charts(audit.trend),
+        "</div>",
         _attention(audit),
-        "<h2>Machine-written commits</h2>", _commit_table(audit.commits),
-        _group_table("By agent", audit.agents), _group_table("By person (committer)", audit.people),
-        _counts(audit), _findings(audit.commits), "</body></html>",
+        "<h2>Machine-written commits</h2>",
+        _commit_table(audit.commits),
+        _group_table("By agent", audit.agents),
+        _group_table("By person (committer)", audit.people),
+        _counts(audit),
+        _findings(audit.commits),
+        "</body></html>",
     ]
     return "\n".join(parts) + "\n"
 
@@ -82,24 +89,32 @@ def _card(label: str, value: object, bad: bool = False) -> str:
 
 
 def _cards(w: Period, audit: Audit) -> str:
-    return '<div class="cards">' + "".join([
-        _card("machine commits", f"{w.machine_commits} / {w.commits}"),
-        _card("machine share of added lines", percent(w.machine_share)),
-        _card("verified", percent(w.verified_share)),
-        _card("unverified", w.unverified, bad=w.unverified > 0),
-        _card("merged although blocked", w.blocked_merged, bad=w.blocked_merged > 0),
-        _card("machine lines alive at the end", f"{w.machine_lines_alive} / {w.machine_lines_added}"),
-        _card(f"rewritten within {audit.churn_days} days", w.machine_lines_churned),
-        _card("reverts of machine commits", len(audit.reverts)),
-    ]) + "</div>"
+    return (
+        '<div class="cards">'
+        + "".join(
+            [
+                _card("machine commits", f"{w.machine_commits} / {w.commits}"),
+                _card("machine share of added lines", percent(w.machine_share)),
+                _card("verified", percent(w.verified_share)),
+                _card("unverified", w.unverified, bad=w.unverified > 0),
+                _card("merged although blocked", w.blocked_merged, bad=w.blocked_merged > 0),
+                _card("machine lines alive at the end", f"{w.machine_lines_alive} / {w.machine_lines_added}"),
+                _card(f"rewritten within {audit.churn_days} days", w.machine_lines_churned),
+                _card("reverts of machine commits", len(audit.reverts)),
+            ]
+        )
+        + "</div>"
+    )
 
 
 def _charts(trend: tuple[Period, ...]) -> list[str]:
     try:
         import matplotlib
     except ImportError as error:
-        raise UsageError("the html format draws its charts with matplotlib, which is not installed",
-                         hint="pip install 'verifier[audit]' (or pip install matplotlib)") from error
+        raise UsageError(
+            "the html format draws its charts with matplotlib, which is not installed",
+            hint="pip install 'verifier[audit]' (or pip install matplotlib)",
+        ) from error
 
     matplotlib.use("Agg")
     from matplotlib import pyplot
@@ -134,21 +149,31 @@ def _attention(audit: Audit) -> str:
 
 
 def _commit_table(commits: tuple[AuditCommit, ...]) -> str:
-    head = ("commit", "date", "status", "agent", "committer", "subject", "machine lines", "alive", "churned",
-            "coverage", "findings")
+    head = (
+        "commit",
+        "date",
+        "status",
+        "agent",
+        "committer",
+        "subject",
+        "machine lines",
+        "alive",
+        "churned",
+        "coverage",
+        "findings",
+    )
     rows = []
     for c in commits:
         link = f'<a href="#findings-{c.sha}"><code>{c.sha[:12]}</code></a>'
         coverage = "" if c.coverage_percent is None else f"{c.coverage_percent:g}%"
-        cells = [link, escape(c.date[:10]), escape(c.status), escape(c.agent), escape(c.committer),
-                 escape(c.subject)]
+        cells = [link, escape(c.date[:10]), escape(c.status), escape(c.agent), escape(c.committer), escape(c.subject)]
         numbers = [c.machine_lines, c.lines_alive, c.lines_churned]
         rows.append(
-            f'<tr class="{escape(c.status)}">' + "".join(f"<td>{cell}</td>" for cell in cells)
+            f'<tr class="{escape(c.status)}">'
+            + "".join(f"<td>{cell}</td>" for cell in cells)
             + "".join(f'<td class="n">{n}</td>' for n in numbers)
             + f'<td class="n" data-value="{c.coverage_percent if c.coverage_percent is not None else -1}">'
-            f"{coverage}</td>"
-            + f'<td class="n">{len(c.findings)}</td></tr>'
+            f"{coverage}</td>" + f'<td class="n">{len(c.findings)}</td></tr>'
         )
     return _table(head, rows)
 
@@ -161,11 +186,20 @@ def _table(head: tuple[str, ...], rows: list[str]) -> str:
 def _group_table(title: str, groups: tuple[Group, ...]) -> str:
     head = ("name", "commits", "machine lines", "alive", "churned", "unverified", "blocked-merged", "reverted")
     rows = [
-        f"<tr><td>{escape(g.name)}</td>" + "".join(
+        f"<tr><td>{escape(g.name)}</td>"
+        + "".join(
             f'<td class="n">{n}</td>'
-            for n in (g.commits, g.machine_lines, g.lines_alive, g.lines_churned, g.unverified, g.blocked_merged,
-                      g.reverted)
-        ) + "</tr>"
+            for n in (
+                g.commits,
+                g.machine_lines,
+                g.lines_alive,
+                g.lines_churned,
+                g.unverified,
+                g.blocked_merged,
+                g.reverted,
+            )
+        )
+        + "</tr>"
         for g in groups
     ]
     return f"<h2>{escape(title)}</h2>" + _table(head, rows)
@@ -174,22 +208,28 @@ def _group_table(title: str, groups: tuple[Group, ...]) -> str:
 def _counts(audit: Audit) -> str:
     parts = []
     if audit.findings_by_rule:
-        rows = [f'<tr><td>{escape(r)}</td><td>{escape(s)}</td><td class="n">{n}</td></tr>'
-                for r, s, n in audit.findings_by_rule]
+        rows = [
+            f'<tr><td>{escape(r)}</td><td>{escape(s)}</td><td class="n">{n}</td></tr>'
+            for r, s, n in audit.findings_by_rule
+        ]
         parts.append("<h2>Findings by rule</h2>" + _table(("rule", "severity", "count"), rows))
     if audit.waivers_by_rule:
         rows = [f'<tr><td>{escape(r)}</td><td class="n">{n}</td></tr>' for r, n in audit.waivers_by_rule]
         parts.append("<h2>Waivers used</h2>" + _table(("rule", "count"), rows))
     if audit.expiring_waivers:
-        rows = [f"<tr><td>{escape(e.waiver.rule)}</td><td>{escape(e.waiver.path)}</td>"
-                f"<td>{escape(e.waiver.owner)}</td><td>{escape(e.waiver.expires)}</td>"
-                f'<td class="n">{e.days_left}</td></tr>' for e in audit.expiring_waivers]
-        parts.append("<h2>Waivers expiring soon</h2>"
-                     + _table(("rule", "path", "owner", "expires", "days left"), rows))
+        rows = [
+            f"<tr><td>{escape(e.waiver.rule)}</td><td>{escape(e.waiver.path)}</td>"
+            f"<td>{escape(e.waiver.owner)}</td><td>{escape(e.waiver.expires)}</td>"
+            f'<td class="n">{e.days_left}</td></tr>'
+            for e in audit.expiring_waivers
+        ]
+        parts.append("<h2>Waivers expiring soon</h2>" + _table(("rule", "path", "owner", "expires", "days left"), rows))
     if audit.reverts:
-        rows = [f"<tr><td><code>{r.sha[:12]}</code></td><td><a href=\"#findings-{r.reverted}\"><code>"
-                f"{r.reverted[:12]}</code></a></td><td>{escape(r.agent)}</td><td>{escape(r.committer)}</td></tr>"
-                for r in audit.reverts]
+        rows = [
+            f'<tr><td><code>{r.sha[:12]}</code></td><td><a href="#findings-{r.reverted}"><code>'
+            f"{r.reverted[:12]}</code></a></td><td>{escape(r.agent)}</td><td>{escape(r.committer)}</td></tr>"
+            for r in audit.reverts
+        ]
         parts.append("<h2>Reverts of machine commits</h2>" + _table(("revert", "reverted", "agent", "by"), rows))
     return "\n".join(parts)
 
@@ -198,8 +238,11 @@ def _findings(commits: tuple[AuditCommit, ...]) -> str:
     parts = ["<h2>Gate records</h2>"]
     for c in commits:
         parts.append(f'<section id="findings-{c.sha}"><h3><code>{c.sha[:12]}</code> {escape(c.subject)}</h3>')
-        parts.append(f"<p>verdict: {escape(c.verdict or 'none')}"
-                     + (f"; {escape(c.note_problem)}" if c.note_problem else "") + "</p>")
+        parts.append(
+            f"<p>verdict: {escape(c.verdict or 'none')}"
+            + (f"; {escape(c.note_problem)}" if c.note_problem else "")
+            + "</p>"
+        )
         if c.findings:
             items = "".join(
                 f"<li><code>{escape(str(f.get('rule')))}</code> ({escape(str(f.get('severity')))}) "
@@ -209,8 +252,11 @@ def _findings(commits: tuple[AuditCommit, ...]) -> str:
             )
             parts.append(f"<ul>{items}</ul>")
         if c.waivers:
-            items = "".join(f"<li>waiver <code>{escape(str(w.get('rule')))}</code> {escape(str(w.get('path')))}: "
-                            f"{escape(str(w.get('reason')))} ({escape(str(w.get('owner')))})</li>" for w in c.waivers)
+            items = "".join(
+                f"<li>waiver <code>{escape(str(w.get('rule')))}</code> {escape(str(w.get('path')))}: "
+                f"{escape(str(w.get('reason')))} ({escape(str(w.get('owner')))})</li>"
+                for w in c.waivers
+            )
             parts.append(f"<ul>{items}</ul>")
         parts.append("</section>")
     return "\n".join(parts)

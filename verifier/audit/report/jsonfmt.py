@@ -31,8 +31,14 @@ def as_dict(audit: Audit) -> dict[str, Any]:
         "findings_by_rule": [{"rule": r, "severity": s, "count": n} for r, s, n in audit.findings_by_rule],
         "waivers_by_rule": [{"rule": r, "count": n} for r, n in audit.waivers_by_rule],
         "expiring_waivers": [
-            {"rule": e.waiver.rule, "path": e.waiver.path, "owner": e.waiver.owner, "reason": e.waiver.reason,
-             "expires": e.waiver.expires, "days_left": e.days_left}
+            {
+                "rule": e.waiver.rule,
+                "path": e.waiver.path,
+                "owner": e.waiver.owner,
+                "reason": e.waiver.reason,
+                "expires": e.waiver.expires,
+                "days_left": e.days_left,
+            }
             for e in audit.expiring_waivers
         ],
         "reverts": [
@@ -88,9 +94,14 @@ def commit_dict(commit: AuditCommit) -> dict[str, Any]:
 
 def group_dict(group: Group) -> dict[str, Any]:
     return {
-        "name": group.name, "commits": group.commits, "machine_lines": group.machine_lines,
-        "lines_alive": group.lines_alive, "lines_churned": group.lines_churned, "unverified": group.unverified,
-        "blocked_merged": group.blocked_merged, "reverted": group.reverted,
+        "name": group.name,
+        "commits": group.commits,
+        "machine_lines": group.machine_lines,
+        "lines_alive": group.lines_alive,
+        "lines_churned": group.lines_churned,
+        "unverified": group.unverified,
+        "blocked_merged": group.blocked_merged,
+        "reverted": group.reverted,
     }
 
 
@@ -109,8 +120,10 @@ def indented(value: Any, margin: str = "\n") -> str:
             return "{}"
         inner = margin + "  "
         keys = _KEYS
-        parts = [(keys.get(k) or _key(k)) + (_LEAVES[type(v)](v) if type(v) in _LEAVES else indented(v, inner))
-                 for k, v in value.items()]
+        parts = [
+            (keys.get(k) or _key(k)) + (_LEAVES[type(v)](v) if type(v) in _LEAVES else indented(v, inner))
+            for k, v in value.items()
+        ]
         return "{" + inner + ("," + inner).join(parts) + margin + "}"
     if kind is list or kind is tuple:
         if not value:

@@ -36,18 +36,27 @@ def _attention(audit: Audit) -> list[str]:
     if not audit.attention:
         return ["## Needs attention", "", "Nothing: every machine commit was verified and none was blocked.", ""]
     rows = ["## Needs attention", "", "| commit | status | agent | committer | subject |", "|---|---|---|---|---|"]
-    rows += [f"| `{c.sha[:12]}` | {c.status} | {_cell(c.agent)} | {_cell(c.committer)} | {_cell(c.subject)} |"
-             for c in audit.attention]
+    rows += [
+        f"| `{c.sha[:12]}` | {c.status} | {_cell(c.agent)} | {_cell(c.committer)} | {_cell(c.subject)} |"
+        for c in audit.attention
+    ]
     return [*rows, ""]
 
 
 def _groups(title: str, groups: tuple[Group, ...]) -> list[str]:
     if not groups:
         return []
-    rows = [f"## {title}", "", "| name | commits | machine lines | alive | churned | unverified | blocked-merged |",
-            "|---|---:|---:|---:|---:|---:|---:|"]
-    rows += [f"| {_cell(g.name)} | {g.commits} | {g.machine_lines} | {g.lines_alive} | {g.lines_churned} | "
-             f"{g.unverified} | {g.blocked_merged} |" for g in groups]
+    rows = [
+        f"## {title}",
+        "",
+        "| name | commits | machine lines | alive | churned | unverified | blocked-merged |",
+        "|---|---:|---:|---:|---:|---:|---:|",
+    ]
+    rows += [
+        f"| {_cell(g.name)} | {g.commits} | {g.machine_lines} | {g.lines_alive} | {g.lines_churned} | "
+        f"{g.unverified} | {g.blocked_merged} |"
+        for g in groups
+    ]
     return [*rows, ""]
 
 
@@ -60,20 +69,35 @@ def _counts(audit: Audit) -> list[str]:
         rows += ["## Waivers used", "", "| rule | count |", "|---|---:|"]
         rows += [f"| {rule} | {count} |" for rule, count in audit.waivers_by_rule] + [""]
     if audit.expiring_waivers:
-        rows += ["## Waivers expiring soon", "", "| rule | path | owner | expires | days left |",
-                 "|---|---|---|---|---:|"]
-        rows += [f"| {e.waiver.rule} | {_cell(e.waiver.path)} | {_cell(e.waiver.owner)} | {e.waiver.expires} | "
-                 f"{e.days_left} |" for e in audit.expiring_waivers] + [""]
+        rows += [
+            "## Waivers expiring soon",
+            "",
+            "| rule | path | owner | expires | days left |",
+            "|---|---|---|---|---:|",
+        ]
+        rows += [
+            f"| {e.waiver.rule} | {_cell(e.waiver.path)} | {_cell(e.waiver.owner)} | {e.waiver.expires} | "
+            f"{e.days_left} |"
+            for e in audit.expiring_waivers
+        ] + [""]
     if audit.reverts:
         rows += ["## Reverts of machine commits", "", "| revert | reverted | agent | by |", "|---|---|---|---|"]
-        rows += [f"| `{r.sha[:12]}` | `{r.reverted[:12]}` | {_cell(r.agent)} | {_cell(r.committer)} |"
-                 for r in audit.reverts] + [""]
+        rows += [
+            f"| `{r.sha[:12]}` | `{r.reverted[:12]}` | {_cell(r.agent)} | {_cell(r.committer)} |" for r in audit.reverts
+        ] + [""]
     return rows
 
 
 def _trend(audit: Audit) -> list[str]:
-    rows = ["## Trend", "", "| week from | machine commits | machine share | verified share | unverified | alive |",
-            "|---|---:|---:|---:|---:|---:|"]
-    rows += [f"| {p.since[:10]} | {p.machine_commits} | {percent(p.machine_share)} | {percent(p.verified_share)} | "
-             f"{p.unverified} | {percent(p.survival)} |" for p in audit.trend]
+    rows = [
+        "## Trend",
+        "",
+        "| week from | machine commits | machine share | verified share | unverified | alive |",
+        "|---|---:|---:|---:|---:|---:|",
+    ]
+    rows += [
+        f"| {p.since[:10]} | {p.machine_commits} | {percent(p.machine_share)} | {percent(p.verified_share)} | "
+        f"{p.unverified} | {percent(p.survival)} |"
+        for p in audit.trend
+    ]
     return [*rows, ""]
