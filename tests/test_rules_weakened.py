@@ -135,7 +135,9 @@ CASES = {
         "line 11 can no longer fail (under 'if False:' (line 10))",
     ),
     "assertion under contextlib.suppress": (
-        weaken("    assert rate(1) > 0\n", "    with contextlib.suppress(AssertionError):\n        assert rate(1) > 0\n"),
+        weaken(
+            "    assert rate(1) > 0\n", "    with contextlib.suppress(AssertionError):\n        assert rate(1) > 0\n"
+        ),
         "(under contextlib.suppress on line 10)",
     ),
     "== 5 becomes != 6": (
@@ -165,7 +167,10 @@ CASES = {
         "autouse fixture _maintenance skips",
     ),
     "no-op decorator": (
-        weaken("@pytest.mark.parametrize", "def quiet(test):\n    return lambda *a: None\n\n\n@quiet\n@pytest.mark.parametrize"),
+        weaken(
+            "@pytest.mark.parametrize",
+            "def quiet(test):\n    return lambda *a: None\n\n\n@quiet\n@pytest.mark.parametrize",
+        ),
         "decorator @quiet added to test_table never runs the test",
     ),
     "test class renamed": (
@@ -252,7 +257,8 @@ def test_assert_not_equal_flipped_to_assert_equal(repo: ScratchRepo) -> None:
     head = UNITTEST_BASE.replace("assertNotEqual", "assertEqual")
     context = machine_change(repo, {"tests/test_zones.py": UNITTEST_BASE}, {"tests/test_zones.py": head})
     found = [(f.line, f.message) for f in findings("tests.weakened", context)]
-    assert found == [(8, "RateCase.test_zones_differ: the assertion's comparison changed (assertNotEqual -> assertEqual)")]
+    message = "RateCase.test_zones_differ: the assertion's comparison changed (assertNotEqual -> assertEqual)"
+    assert found == [(8, message)]
 
 
 def test_unittest_class_renamed_stays_collected(repo: ScratchRepo) -> None:
