@@ -21,6 +21,7 @@ _FAMILIES = (
     "verifier.rules.calls",
     "verifier.rules.paths",
     "verifier.rules.weakened",
+    "verifier.rules.strength",
     "verifier.rules.harness",
     "verifier.rules.size",
     "verifier.rules.deps",

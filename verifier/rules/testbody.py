@@ -134,8 +134,11 @@ def _same(one: ast.AST, other: ast.AST) -> bool:
 
 
 class _Walker:
-    def __init__(self, names: Names, helpers: frozenset[str], referenced: frozenset[str]) -> None:
+    def __init__(
+        self, names: Names, helpers: frozenset[str], referenced: frozenset[str], reads: frozenset[str]
+    ) -> None:
         self.names = names
+        self.reads = reads
         self.helpers = helpers
         self.referenced = referenced
         self.found: list[Check] = []
@@ -203,7 +206,7 @@ class _Walker:
         return isinstance(node, (ast.Return, ast.Continue, ast.Break)) or is_ending_call(node, self.names)
 
     def try_statement(self, node: ast.Try, state: State) -> bool:
-        swallowing = next((h for h in node.handlers if _swallows(h, self.names)), None)
+        swallowing = next((h for h in node.handlers if _swallows(h, self.names, self.reads)), None)
         body_state = state or (
             (
                 "swallowed",
@@ -288,15 +291,20 @@ def catches_everything(handler: ast.ExceptHandler, names: Names) -> bool:
     return any(canonical(n) in ("Exception", "BaseException") for item in items for n in resolve(item, names))
 
 
-def inert(body: Iterable[ast.stmt], names: Names) -> bool:
+def inert(body: list[ast.stmt], names: Names, check_reads: frozenset[str] = frozenset()) -> bool:
     """A handler body that does nothing about the exception: ``pass``, ``...``, a constant, ``continue``,
-    ``break``, a bare or constant ``return``, printing or logging. Anything else (a re-raise, a failure, an
-    assignment another check may read) counts as handling it."""
+    ``break``, a bare or constant ``return``, printing or logging, a constant assigned to a name no check
+    reads (or then a return). Anything else (a re-raise, a failure, a flag a later check reads) handles it."""
+    leaves = bool(body) and isinstance(body[-1], (ast.Return, ast.Continue, ast.Break))
     for statement in body:
         if isinstance(statement, (ast.Pass, ast.Continue, ast.Break)):
             continue
         if isinstance(statement, ast.Return) and (statement.value is None or isinstance(statement.value, ast.Constant)):
             continue
+        if isinstance(statement, ast.Assign) and isinstance(statement.value, ast.Constant):
+            targets = {t.id for t in statement.targets if isinstance(t, ast.Name)}
+            if len(targets) == len(statement.targets) and (leaves or not targets & check_reads):
+                continue
         if isinstance(statement, ast.Expr):
             value = statement.value
             if isinstance(value, ast.Constant):
@@ -307,8 +315,17 @@ def inert(body: Iterable[ast.stmt], names: Names) -> bool:
     return True
 
 
-def _swallows(handler: ast.ExceptHandler, names: Names) -> bool:
-    return _catches_assertion(handler.type, names) and inert(handler.body, names)
+def check_reads(function: ast.AST, names: Names) -> frozenset[str]:
+    """The names the function's assertions (and assertion-helper calls) read."""
+    found: set[str] = set()
+    for node in ast.walk(function):
+        if isinstance(node, ast.Assert) or (isinstance(node, ast.Call) and _is_assert_helper(node, names, frozenset())):
+            found.update(n.id for n in ast.walk(node) if isinstance(n, ast.Name))
+    return frozenset(found)
+
+
+def _swallows(handler: ast.ExceptHandler, names: Names, reads: frozenset[str]) -> bool:
+    return _catches_assertion(handler.type, names) and inert(handler.body, names, reads)
 
 
 def referenced_names(function: ast.AST) -> frozenset[str]:
@@ -320,7 +337,7 @@ def checks_of(
     function: ast.FunctionDef | ast.AsyncFunctionDef, names: Names, helpers: frozenset[str] = frozenset()
 ) -> list[Check]:
     """Every check of ``function`` with its status, in source order."""
-    walker = _Walker(names, helpers, referenced_names(function))
+    walker = _Walker(names, helpers, referenced_names(function), check_reads(function, names))
     walker.block(function.body, None)
     walker.found.sort(key=lambda c: (c.line, getattr(c.node, "col_offset", 0)))
     return walker.found

@@ -71,7 +71,7 @@ def fingerprint(node: object, mask_constants: bool = False, mask_operators: bool
     if mask_operators and isinstance(node, ast.Attribute) and node.attr.startswith("assert"):
         return f"(Attribute {fingerprint(node.value, mask_constants, mask_operators)} O)"
     if isinstance(node, ast.AST):
-        values = (getattr(node, name, _UNSET) for name in _compared_fields(type(node)))
+        values = (getattr(node, name, _UNSET) for name in _compared_fields(type(node)))  # type: ignore[arg-type]  # an AST class is hashable
         fields = [fingerprint(value, mask_constants, mask_operators) for value in values if value is not _UNSET]
         return f"({type(node).__name__} {' '.join(fields)})"
     if isinstance(node, list):
@@ -119,7 +119,7 @@ def _checks_in(node: ast.AST) -> list[ast.AST]:
         node = queue.popleft()
         if isinstance(node, wanted):
             found.append(node)
-        for name in _branch_fields(type(node)):
+        for name in _branch_fields(type(node)):  # type: ignore[arg-type]  # an AST class is hashable
             value = getattr(node, name, None)
             if isinstance(value, node_type):
                 queue.append(value)
