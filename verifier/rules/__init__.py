@@ -26,6 +26,7 @@ _FAMILIES = (
     "verifier.rules.size",
     "verifier.rules.deps",
     "verifier.rules.secrets",
+    "verifier.rules.tampering",
     "verifier.rules.regressions",
 )
 
