@@ -21,6 +21,8 @@ STATIC_RULES = [
     "patch.size",
     "deps.added",
     "secrets.literal",
+    "tamper.means",
+    "tamper.hidden-code",
     "code.syntax",
 ]
 
