@@ -23,6 +23,8 @@ STATIC_RULES = [
     "secrets.literal",
     "tamper.means",
     "tamper.hidden-code",
+    "marks.misplaced",
+    "marks.scope-unmatched",
     "code.syntax",
 ]
 

@@ -27,6 +27,7 @@ _FAMILIES = (
     "verifier.rules.deps",
     "verifier.rules.secrets",
     "verifier.rules.tampering",
+    "verifier.rules.marks",
     "verifier.rules.regressions",
 )
 
