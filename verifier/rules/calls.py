@@ -408,7 +408,24 @@ def required_text(entry: Entry) -> tuple[tuple[str, ...], ...]:
 
 # Texts through which code reaches a function without writing its name, or runs a shell from an argument
 # list: a source holding one is always checked.
-_DYNAMIC_TEXTS = ("getattr", "__dict__", "vars", "modules", "__builtins__", "partial", "import", "-c", "/c")
+_DYNAMIC_TEXTS = (
+    "getattr",
+    "__dict__",
+    "vars(",
+    "modules",
+    "__builtins__",
+    "partial",
+    "import_module",
+    "__import__",
+    "sh'",
+    'sh"',
+    "cmd",
+    "pwsh",
+    "busybox",
+)
+# string pieces joined by the parser or at run time ('sys' 'tem', "ev" + "al", "".join(...)): a name or a
+# shell may be spelt in pieces, so a source holding such pieces is always checked
+_PIECES = re.compile(r"""['"](?:[ \t]|\\?\n)+[rbuRBUfF]{0,2}['"]|['"]\s*\+\s*[rbuRBUfF]{0,2}['"]|['"]\.join\(""")
 
 
 class _Needs:
@@ -430,6 +447,8 @@ class _Needs:
         Outside ASCII the parser normalises identifiers (NFKC), so a name may be spelled otherwise in
         the text; ``getattr(obj, "na" "me")`` builds an attribute from a string; both are always checked."""
         if self.always or not source.isascii() or any(text in source for text in _DYNAMIC_TEXTS):
+            return True
+        if _PIECES.search(source):
             return True
         present = {text for text in self.texts if text in source}
         for first in present.intersection(self.by_first):
