@@ -85,6 +85,54 @@ CASES: dict[str, tuple[str, list[tuple[int, str]]]] = {
         "import subprocess\nsubprocess.run(\n    'ls',\n    shell=True,\n)\n",
         [(2, "CWE-78")],
     ),
+    # issue 16: dangerous calls hidden behind dynamic access, partial application, argument lists, values
+    "getattr with a concatenated name": ("import os\ngetattr(os, 'sys' + 'tem')('ls')\n", [(2, "CWE-78")]),
+    "getattr with a computed name": (
+        "import os\ndef f(name, c):\n    return getattr(os, name)(c)\n",
+        [(3, "CWE-470")],
+    ),
+    "vars of os": ("import os\ndef f(c):\n    vars(os)['sys' 'tem'](c)\n", [(3, "CWE-78")]),
+    "vars of os by a computed key": ("import os\ndef f(k, c):\n    vars(os)[k](c)\n", [(3, "CWE-470")]),
+    "os.__dict__": ("import os\nrun = os.__dict__.get('system')\nrun('ls')\n", [(2, "CWE-470"), (3, "CWE-78")]),
+    "os.__dict__ read whole": ("import os\ntable = dict(os.__dict__)\n", [(2, "CWE-470")]),
+    "sys.modules of os": ("import sys\ndef f(c):\n    sys.modules['os'].system(c)\n", [(3, "CWE-78")]),
+    "sys.modules by a computed name": (
+        "import sys\ndef f(m, c):\n    getattr(sys.modules[m], 'system')(c)\n",
+        [(3, "CWE-470")],
+    ),
+    "builtins.__dict__ eval": (
+        "import builtins\ndef f(s):\n    return builtins.__dict__['eval'](s)\n",
+        [(3, "CWE-95")],
+    ),
+    "__builtins__ mapping": ("def f(s):\n    return __builtins__['ev' + 'al'](s)\n", [(2, "CWE-95")]),
+    "import_module of os, literal": (
+        "import importlib\ndef f(c):\n    importlib.import_module('os').system(c)\n",
+        [(3, "CWE-78")],
+    ),
+    "posix.system": ("import posix\nposix.system('ls')\n", [(2, "CWE-78")]),
+    "partial of subprocess.run with shell": (
+        "import functools, subprocess\nrun = functools.partial(subprocess.run, shell=True)\n",
+        [(2, "CWE-78")],
+    ),
+    "partial of os.system": (
+        "from functools import partial\nimport os\nrun = partial(os.system, 'ls')\n",
+        [(3, "CWE-78")],
+    ),
+    "partial of subprocess.run without a shell": (
+        "import functools, subprocess\nrun = functools.partial(subprocess.run, check=True)\n",
+        [],
+    ),
+    "sh -c list": ("import subprocess\ndef f(c):\n    subprocess.run(['sh', '-c', c])\n", [(3, "CWE-78")]),
+    "bash -c list in a variable": ("def f(c):\n    argv = ['/bin/bash', '-c', c]\n    return argv\n", [(2, "CWE-78")]),
+    "exec family with a shell": ("import os\ndef f(c):\n    os.execl('/bin/sh', 'sh', '-c', c)\n", [(3, "CWE-78")]),
+    "execv with sh -c": ("import os\ndef f(c):\n    os.execv('/bin/sh', ['sh', '-c', c])\n", [(3, "CWE-78")]),
+    "exec family without a shell": ("import os\ndef f(p):\n    os.execv('/usr/bin/git', ['git', 'status', p])\n", []),
+    "eval passed as a value": ("def f(rows):\n    return list(map(eval, rows))\n", [(2, "CWE-95")]),
+    "os.system as a callback": ("import os\ndef f(run=os.system):\n    return run\n", [(2, "CWE-78")]),
+    "subprocess.run passed as a value": ("import subprocess\ndef f(runner=subprocess.run):\n    return runner\n", []),
+    "getattr with a literal default": ("import os\nflag = getattr(os, 'O_BINARY', 0)\n", []),
+    "vars of a local object": ("def f(obj):\n    return vars(obj)['name']\n", []),
+    "ordinary git call": ("import subprocess\nout = subprocess.run(['git', 'log', '-c'], capture_output=True)\n", []),
 }
 
 

@@ -14,10 +14,17 @@ STATIC_RULES = [
     "calls.banned",
     "paths.protected",
     "tests.weakened",
+    "tests.cannot-fail",
+    "tests.dead-check",
+    "tests.swallowed-errors",
     "config.harness",
     "patch.size",
     "deps.added",
     "secrets.literal",
+    "tamper.means",
+    "tamper.hidden-code",
+    "marks.misplaced",
+    "marks.scope-unmatched",
     "code.syntax",
 ]
 

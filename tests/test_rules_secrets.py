@@ -93,3 +93,35 @@ def test_entropy_of_known_strings() -> None:
     # Shannon entropy by hand: 4 equally likely symbols carry 2 bits each; one symbol carries none.
     assert entropy("abcd") == 2.0
     assert entropy("aaaa") == 0.0
+
+
+SPLIT = {
+    "adjacent pieces": f'AWS_ID = "{AWS[:8]}" "{AWS[8:]}"\n',
+    "adjacent pieces over lines": f'AWS_ID = (\n    "{AWS[:8]}"\n    "{AWS[8:]}"\n)\n',
+    "concatenated pieces": f'TOKEN = "{GITHUB[:10]}" + "{GITHUB[10:]}"\n',
+    "joined pieces": f'SLACK = "".join(["{SLACK[:9]}", "{SLACK[9:]}"])\n',
+    "generic key in pieces": f'api_key = "{GENERIC[:16]}" \\\n    "{GENERIC[16:]}"\n',
+    "keyword argument in pieces": f'connect(password="{GENERIC[:10]}" + "{GENERIC[10:]}")\n',
+}
+
+
+@pytest.mark.parametrize("name", list(SPLIT))
+def test_secret_split_into_pieces_is_found_once(repo: ScratchRepo, name: str) -> None:
+    found = findings("secrets.literal", machine_change(repo, None, {"parcelkit/settings.py": SPLIT[name]}))
+    assert len(found) == 1, [f.message for f in found]
+    assert found[0].line == (2 if name == "adjacent pieces over lines" else 1)  # where the literal begins
+
+
+def test_one_literal_secret_gives_one_finding(repo: ScratchRepo) -> None:
+    # the AWS shape and the name rule both match this one value: one finding, the more specific kind
+    found = findings("secrets.literal", machine_change(repo, None, {"parcelkit/settings.py": f'api_key = "{AWS}"\n'}))
+    assert [f.details["kind"] for f in found] == ["AWS access key id"]
+
+
+def test_ordinary_joined_strings_are_not_secrets(repo: ScratchRepo) -> None:
+    source = (
+        'GREETING = "Parcel " + "tracking " + "for quill-assist"\n'
+        'token_url = "https://parcels.example/" "oauth/token"\n'
+        'password_hint = "".join(["at least ", "twelve characters"])\n'
+    )
+    assert findings("secrets.literal", machine_change(repo, None, {"parcelkit/settings.py": source})) == []

@@ -3,13 +3,16 @@
 from __future__ import annotations
 
 import pytest
-from test_rules_support import findings, machine_change
+from conftest import machine
+from test_rules_support import context_for, findings, machine_change
 
 from verifier.demo.scratch import ScratchRepo
 from verifier.rules import apply_rules
 from verifier.rules.weakened import _widened
 
-BASE = """import pytest
+BASE = """import contextlib
+
+import pytest
 
 from parcelkit.rates import rate, ParcelError
 
@@ -62,7 +65,7 @@ CASES = {
     ),
     "skip call added": (
         weaken("    assert rate(1) == 4.5\n", "    pytest.skip('later')\n    assert rate(1) == 4.5\n"),
-        "skip call added to test_rate_for_one_kilo",
+        "skip added to test_rate_for_one_kilo",
     ),
     "module pytestmark": (
         weaken("from parcelkit", "pytestmark = pytest.mark.skip\nfrom parcelkit"),
@@ -72,12 +75,12 @@ CASES = {
         weaken("class TestZones:", "@pytest.mark.skip\nclass TestZones:"),
         "pytest.mark.skip added to class TestZones",
     ),
-    "assert True": (weaken("    assert rate(1) > 0\n", "    assert True\n"), "assertion that cannot fail"),
+    "assert True": (weaken("    assert rate(1) > 0\n", "    assert True\n"), "line 10 can no longer fail (asserts a"),
     "assert x == x": (
         weaken("    assert rate(1) > 0\n", "    assert rate(1) == rate(1)\n"),
-        "assertion that cannot fail",
+        "line 10 can no longer fail (compares a value with itself)",
     ),
-    "assert a string": (weaken("    assert rate(1) > 0\n", "    assert 'checked'\n"), "assertion that cannot fail"),
+    "assert a string": (weaken("    assert rate(1) > 0\n", "    assert 'checked'\n"), "can no longer fail (asserts a"),
     "raises widened": (
         weaken('pytest.raises(ValueError, match="negative")', 'pytest.raises(Exception, match="negative")'),
         "pytest.raises widened to Exception",
@@ -106,6 +109,85 @@ CASES = {
     "expected literal changed": (
         weaken("assert rate(1) == 4.5\n    assert", "assert rate(1) == 5.0\n    assert"),
         "expected value changed (4.5 -> 5.0)",
+    ),
+    # issue 16: existing assertions made dead, comparisons flipped, skips and collection tricks
+    "assertion wrapped in try/except": (
+        weaken(
+            "    assert rate(1) > 0\n",
+            "    try:\n        assert rate(1) > 0\n    except AssertionError:\n        pass\n",
+        ),
+        "line 11 can no longer fail (inside the try whose 'except' on line 12 ignores a failed assert)",
+    ),
+    "assertion or True": (
+        weaken("    assert rate(1) > 0\n", "    assert rate(1) > 0 or True\n"),
+        "line 10 can no longer fail (is joined by 'or' to something always true)",
+    ),
+    "assertion moved after a return": (
+        weaken("    assert rate(1) > 0\n", "    return\n    assert rate(1) > 0\n"),
+        "line 11 can no longer fail (after the return on line 10)",
+    ),
+    "assertion moved into an uncalled nested function": (
+        weaken("    assert rate(1) > 0\n", "    def later():\n        assert rate(1) > 0\n"),
+        "(in the nested function later (line 10), which is never called)",
+    ),
+    "assertion under if False": (
+        weaken("    assert rate(1) > 0\n", "    if False:\n        assert rate(1) > 0\n"),
+        "line 11 can no longer fail (under 'if False:' (line 10))",
+    ),
+    "assertion under contextlib.suppress": (
+        weaken(
+            "    assert rate(1) > 0\n", "    with contextlib.suppress(AssertionError):\n        assert rate(1) > 0\n"
+        ),
+        "(under contextlib.suppress on line 10)",
+    ),
+    "== 5 becomes != 6": (
+        weaken("    assert rate(1) == 4.5\n", "    assert rate(1) != 6.0\n"),
+        "the assertion's comparison changed (== -> !=)",
+    ),
+    "skip raised from the body": (
+        weaken("    assert rate(1) == 4.5\n", "    raise pytest.skip.Exception('later')\n    assert rate(1) == 4.5\n"),
+        "skip added to test_rate_for_one_kilo",
+    ),
+    "unittest SkipTest raised": (
+        weaken("import pytest\n", "import pytest\nimport unittest\n").replace(
+            "        rate(-1)\n", "        raise unittest.SkipTest('no')\n        rate(-1)\n"
+        ),
+        "skip added to test_rejects_negative_weight",
+    ),
+    "module-level skip": (
+        weaken("from parcelkit", "pytest.skip('maintenance', allow_module_level=True)\nfrom parcelkit"),
+        "module-level skip added",
+    ),
+    "module-level importorskip": (
+        weaken("from parcelkit", "pytest.importorskip('parcelkit_missing')\nfrom parcelkit"),
+        "module-level skip added",
+    ),
+    "autouse fixture that skips": (
+        BASE + "\n\n@pytest.fixture(autouse=True)\ndef _maintenance():\n    pytest.skip('maintenance')\n",
+        "autouse fixture _maintenance skips",
+    ),
+    "no-op decorator": (
+        weaken(
+            "@pytest.mark.parametrize",
+            "def quiet(test):\n    return lambda *a: None\n\n\n@quiet\n@pytest.mark.parametrize",
+        ),
+        "decorator @quiet added to test_table never runs the test",
+    ),
+    "test class renamed": (
+        weaken("class TestZones:", "class Zones:"),
+        "test TestZones.test_home_zone moved to Zones.test_home_zone, which is not collected: class Zones does not",
+    ),
+    "test class given __test__ = False": (
+        weaken("class TestZones:\n", "class TestZones:\n    __test__ = False\n\n"),
+        "test TestZones.test_home_zone is no longer collected: class TestZones sets __test__ = False",
+    ),
+    "test class given an __init__": (
+        weaken("class TestZones:\n", "class TestZones:\n    def __init__(self):\n        self.zone = 'home'\n\n"),
+        "no longer collected: class TestZones has an __init__",
+    ),
+    "test function given __test__ = False": (
+        BASE + "\n\ntest_table.__test__ = False\n",
+        "test test_table is no longer collected: test_table.__test__ is set to False",
     ),
 }
 
@@ -158,3 +240,86 @@ def test_widened_follows_the_builtin_exception_hierarchy() -> None:
     assert _widened([ValueError], [TypeError]) is None  # different, not broader
     assert _widened([ValueError, TypeError], [Exception]) == "Exception"
     assert _widened([None], [ValueError]) is None  # a project error replaced by a builtin: unknown, not flagged
+
+
+UNITTEST_BASE = """import unittest
+
+from parcelkit.rates import rate
+
+
+class RateCase(unittest.TestCase):
+    def test_zones_differ(self):
+        self.assertNotEqual(rate(1, zone="home"), rate(1, zone="abroad"))
+"""
+
+
+def test_assert_not_equal_flipped_to_assert_equal(repo: ScratchRepo) -> None:
+    head = UNITTEST_BASE.replace("assertNotEqual", "assertEqual")
+    context = machine_change(repo, {"tests/test_zones.py": UNITTEST_BASE}, {"tests/test_zones.py": head})
+    found = [(f.line, f.message) for f in findings("tests.weakened", context)]
+    message = "RateCase.test_zones_differ: the assertion's comparison changed (assertNotEqual -> assertEqual)"
+    assert found == [(8, message)]
+
+
+def test_unittest_class_renamed_stays_collected(repo: ScratchRepo) -> None:
+    # pytest collects unittest.TestCase subclasses whatever their name (pytest documentation, "unittest.TestCase
+    # Support"), so this rename loses nothing.
+    head = UNITTEST_BASE.replace("class RateCase", "class ZoneRates")
+    context = machine_change(repo, {"tests/test_zones.py": UNITTEST_BASE}, {"tests/test_zones.py": head})
+    assert findings("tests.weakened", context) == []
+
+
+def test_test_file_renamed_outside_the_collection_pattern(repo: ScratchRepo) -> None:
+    repo.commit("Base", {"tests/test_rates.py": BASE, "parcelkit/__init__.py": ""})
+    repo.git("mv", "tests/test_rates.py", "tests/rates_checks.py")
+    sha = repo.commit(machine("Tidy the test names"))
+    found = findings("tests.weakened", context_for(repo, sha))
+    assert [f.message.split(":")[0] for f in found] == [
+        "test file renamed from tests/test_rates.py to a name pytest does not collect"
+    ]
+
+
+def test_test_file_renamed_inside_the_collection_pattern_is_fine(repo: ScratchRepo) -> None:
+    repo.commit("Base", {"tests/test_rates.py": BASE, "parcelkit/__init__.py": ""})
+    repo.git("mv", "tests/test_rates.py", "tests/test_parcel_rates.py")
+    sha = repo.commit(machine("Tidy the test names"))
+    assert findings("tests.weakened", context_for(repo, sha)) == []
+
+
+HONEST_REFACTORS = {
+    "assertions moved into a helper": weaken(
+        "def test_rate_for_one_kilo():\n    assert rate(1) == 4.5\n    assert rate(1) > 0\n",
+        "def check_price(weight, price):\n    assert rate(weight) == price\n\n\n"
+        "def test_rate_for_one_kilo():\n    check_price(1, 4.5)\n    assert rate(1) > 0\n",
+    ),
+    "assertions in a loop": weaken(
+        "    assert rate(1) == 4.5\n    assert rate(1) > 0\n",
+        "    for weight in (1,):\n        assert rate(weight) == 4.5\n        assert rate(weight) > 0\n",
+    ),
+    "a called nested check": weaken(
+        "    assert rate(1) > 0\n",
+        "    def positive(weight):\n        assert rate(weight) > 0\n\n    positive(1)\n",
+    ),
+    "an error turned into a failure": weaken(
+        "    assert rate(1) == 4.5\n",
+        "    try:\n        price = rate(1)\n    except ParcelError as error:\n        pytest.fail(str(error))\n"
+        "    assert price == 4.5\n",
+    ),
+    "an early return on a condition": weaken(
+        "    assert rate(1) == 4.5\n", "    if rate is None:\n        return\n    assert rate(1) == 4.5\n"
+    ),
+    "a mark that is not a skip": weaken("def test_table", "@pytest.mark.slow\ndef test_table"),
+    "a wrapping decorator": weaken(
+        "@pytest.mark.parametrize",
+        "def logged(test):\n    def run(*args, **kwargs):\n        return test(*args, **kwargs)\n\n    return run\n\n\n"
+        "@logged\n@pytest.mark.parametrize",
+    ),
+    "a fixture that is not autouse and skips": BASE
+    + "\n\n@pytest.fixture\ndef online():\n    pytest.skip('needs the network')\n",
+    "a new module-level constant": weaken("from parcelkit", "HOME = 'home'\nfrom parcelkit"),
+}
+
+
+@pytest.mark.parametrize("name", list(HONEST_REFACTORS))
+def test_honest_refactor_of_a_test_is_not_weakening(repo: ScratchRepo, name: str) -> None:
+    assert run(repo, HONEST_REFACTORS[name]) == []

@@ -86,6 +86,11 @@ CASES: list[tuple[str, str, list[tuple[str, str]]]] = [
         [("Model-Written", "quill-assist/2.4")],
     ),
     ("divider-hides-trailers", "Raise the rate\n---\n\nModel-Written: quill-assist/2.4\n", []),
+    (
+        "trailer-in-a-middle-paragraph",
+        "Raise the rate\n\nModel-Written: quill-assist/2.4\n\nThe zone table changed.\n",
+        [],
+    ),
     ("dashes-without-space-are-text", "Raise the rate\n\nModel-Written: quill-assist/2.4\n---x\n", []),
     (
         "signed-off-by-with-prose-25-percent",

@@ -193,8 +193,10 @@ def _collect_names(nodes: Iterable[ast.AST], assigns: list[ast.Assign | ast.AnnA
 
 def _resolve_assignments(names: Names, assignments: list[tuple[str, ast.expr]]) -> None:
     """``run = os.system`` aliases ``run``; any other assignment makes the name a local (not a builtin)."""
-    references = [(name, value) for name, value in assignments if isinstance(value, (ast.Name, ast.Attribute))]
-    names.local.update(name for name, value in assignments if not isinstance(value, (ast.Name, ast.Attribute)))
+    # a call or subscript counts when it resolves (``run = vars(os)["system"]``, ``m = importlib.import_module("os")``)
+    kinds = (ast.Name, ast.Attribute, ast.Call, ast.Subscript)
+    references = [(name, value) for name, value in assignments if isinstance(value, kinds)]
+    names.local.update(name for name, value in assignments if not isinstance(value, kinds))
     for _ in range(3):  # a few rounds settle chains like ``a = os; b = a.system``
         for name, value in references:
             meanings = [m for m in resolve(value, names) if not m.startswith((UNKNOWN, LOCAL))]
@@ -215,11 +217,85 @@ def resolve(node: ast.expr, names: Names) -> tuple[str, ...]:
         return _resolve_root(node.id, names)
     if isinstance(node, ast.Attribute):
         return tuple(f"{base}.{node.attr}" for base in (resolve(node.value, names) or (UNKNOWN,)))
-    if isinstance(node, ast.Call) and _is_literal_getattr(node, names):
-        obj, attr = node.args[0], node.args[1]
-        assert isinstance(attr, ast.Constant)
-        return tuple(f"{base}.{attr.value}" for base in (resolve(obj, names) or (UNKNOWN,)))
+    if isinstance(node, ast.Call):
+        return _resolve_call(node, names)
+    if isinstance(node, ast.Subscript):
+        key = constant_string(node.slice)
+        namespace = namespace_of(node.value, names)
+        if key is not None and namespace is not None:
+            return tuple(_member(base, key) for base in namespace)
     return ()
+
+
+def _member(namespace: str, key: str) -> str:
+    """``os`` + ``system`` -> ``os.system``; the namespace of ``sys.modules`` (``""``) holds modules."""
+    return f"{namespace}.{key}" if namespace else key
+
+
+def _resolve_call(node: ast.Call, names: Names) -> tuple[str, ...]:
+    """``getattr(o, "a" + "b")``, ``vars(m).get("k")``, ``sys.modules.get("os")``, ``importlib.import_module("os")``,
+    ``__import__("os")``: the dotted names they stand for when every name in them is fixed in the source."""
+    called = [canonical(n) for n in resolve(node.func, names)] if isinstance(node.func, ast.Name) else []
+    if "getattr" in called and len(node.args) >= 2 and (attr := constant_string(node.args[1])) is not None:
+        return tuple(f"{base}.{attr}" for base in (resolve(node.args[0], names) or (UNKNOWN,)))
+    if isinstance(node.func, ast.Attribute) and node.func.attr == "get" and node.args:
+        key = constant_string(node.args[0])
+        namespace = namespace_of(node.func.value, names)
+        if key is not None and namespace is not None:
+            return tuple(_member(base, key) for base in namespace)
+    meanings = called or [canonical(n) for n in resolve(node.func, names)]
+    if any(m in ("importlib.import_module", "__import__") for m in meanings) and node.args:
+        module = constant_string(node.args[0])
+        if module is not None:
+            return (module if "importlib.import_module" in meanings else module.split(".", 1)[0],)
+    return ()
+
+
+def namespace_of(node: ast.expr, names: Names) -> tuple[str, ...] | None:
+    """The modules whose attributes ``node`` maps by name: ``vars(os)``, ``os.__dict__``, ``builtins.__dict__``,
+    ``__builtins__`` (a dict in imported modules, Python docs, "builtins"), and ``sys.modules`` (whose names
+    are modules, given as ``""``); None for anything else."""
+    if (
+        isinstance(node, ast.Call)
+        and isinstance(node.func, ast.Name)
+        and len(node.args) == 1
+        and "vars" in _resolve_root(node.func.id, names)
+    ):
+        return resolve(node.args[0], names) or None
+    if isinstance(node, ast.Attribute) and node.attr == "__dict__":
+        return resolve(node.value, names) or None
+    meanings = resolve(node, names)
+    if "sys.modules" in meanings:
+        return ("",)
+    if "builtins" in meanings:
+        return ("builtins",)
+    return None
+
+
+def constant_string(node: ast.AST) -> str | None:
+    """The text of a string fixed in the source: a literal (adjacent pieces are one literal already), pieces
+    joined by ``+``, an f-string without fields, ``"".join`` of such pieces; None for anything else."""
+    if isinstance(node, ast.Constant):
+        return node.value if isinstance(node.value, str) else None
+    if isinstance(node, ast.BinOp) and isinstance(node.op, ast.Add):
+        left, right = constant_string(node.left), constant_string(node.right)
+        return left + right if left is not None and right is not None else None
+    if isinstance(node, ast.JoinedStr):
+        parts = [constant_string(v) for v in node.values]
+        return "".join(p for p in parts if p is not None) if all(p is not None for p in parts) else None
+    if (
+        isinstance(node, ast.Call)
+        and isinstance(node.func, ast.Attribute)
+        and node.func.attr == "join"
+        and len(node.args) == 1
+        and not node.keywords
+        and isinstance(node.args[0], (ast.List, ast.Tuple))
+    ):
+        separator = constant_string(node.func.value)
+        pieces = [constant_string(item) for item in node.args[0].elts]
+        if separator is not None and all(p is not None for p in pieces):
+            return separator.join(p for p in pieces if p is not None)
+    return None
 
 
 def _resolve_root(name: str, names: Names) -> tuple[str, ...]:
@@ -235,19 +311,13 @@ def _resolve_root(name: str, names: Names) -> tuple[str, ...]:
     return tuple(found)
 
 
-def _is_literal_getattr(node: ast.Call, names: Names) -> bool:
-    """``getattr(obj, "attr")``: the same as ``obj.attr`` for our purposes."""
-    return (
-        isinstance(node.func, ast.Name)
-        and "getattr" in _resolve_root(node.func.id, names)
-        and len(node.args) >= 2
-        and isinstance(node.args[1], ast.Constant)
-        and isinstance(node.args[1].value, str)
-    )
+_OS_TWINS = ("posix.", "nt.")  # the platform modules os re-exports (Python docs, os: "posix" / "nt")
 
 
 def canonical(dotted: str) -> str:
-    """``builtins.eval`` is ``eval``."""
+    """``builtins.eval`` is ``eval``; ``posix.system`` (what ``os.system`` is on POSIX) is ``os.system``."""
+    if dotted.startswith(_OS_TWINS):
+        return "os." + dotted.split(".", 1)[1]
     return dotted.removeprefix("builtins.")
 
 

@@ -171,7 +171,7 @@ class Git:
 
     def blame_porcelain(self, boundary: str | None, head: str, path: str, lines: Sequence[int]) -> bytes:
         """``git blame --porcelain`` of ``path`` at ``head`` for ``lines``, stopping at ``boundary``."""
-        args = ["blame", "--porcelain", "-M", "-C"]
+        args = ["blame", "--porcelain", "-w", "-M", "-C"]  # -w: a whitespace-only edit keeps the line's author
         args += [f"-L{start},{end}" for start, end in _runs(lines)]
         args += [f"{boundary}..{head}" if boundary else head, "--", path]
         return self.run(args)

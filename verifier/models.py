@@ -78,6 +78,8 @@ class Provenance:
     marks: Mapping[str, MachineMark]  # commit sha -> its mark, for the machine-written commits only
     # paths (old and new names) that a machine-written commit of the change touched, within its scope
     machine_touched: frozenset[str] = frozenset()
+    # machine-written commit sha -> the paths it touched, when its scope matches none of them
+    scope_misses: Mapping[str, tuple[str, ...]] = field(default_factory=dict)
 
     @property
     def machine_line_count(self) -> int:

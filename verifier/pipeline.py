@@ -17,7 +17,7 @@ from verifier.change.stage import RevisionSpec, read_change
 from verifier.gitio import Git
 from verifier.models import INDEX, Change, CoverageSummary, Finding, Policy, Provenance, Report, RunResult, Selection
 from verifier.policy.loader import load_policy, policy_for_path, waivers_used
-from verifier.provenance.attribution import attribute
+from verifier.provenance.attribution import attribute, has_mark_text
 from verifier.verdict.decision import decide
 
 Progress = Callable[[str], None]
@@ -45,7 +45,18 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
     provenance = attribute(git, change)
     policy = load_policy(git, change.base, options.org_policy)
     if not provenance.machine_lines:
-        return _report(change, provenance, policy, None, [], {}, notes=("no machine-written lines to verify",))
+        # a machine commit without added lines (a deletion, a scope matching nothing) or a mark written where
+        # the gate does not read it is still judged by the static rules (verifier.rules.marks and the rest)
+        findings: list[Finding] = []
+        if provenance.marks or has_mark_text(change):
+            from verifier.rules import RuleContext, apply_rules
+
+            base_sources, sources = _changed_sources(git, change)
+            reader = _base_reader(git, change)
+            findings = apply_rules(
+                "static", RuleContext(change, provenance, policy, sources, base_sources, read_base=reader)
+            )
+        return _report(change, provenance, policy, None, findings, {}, notes=("no machine-written lines to verify",))
     base_sources, sources = _changed_sources(git, change)
     from verifier.rules import RuleContext, apply_rules
 

@@ -21,10 +21,13 @@ _FAMILIES = (
     "verifier.rules.calls",
     "verifier.rules.paths",
     "verifier.rules.weakened",
+    "verifier.rules.strength",
     "verifier.rules.harness",
     "verifier.rules.size",
     "verifier.rules.deps",
     "verifier.rules.secrets",
+    "verifier.rules.tampering",
+    "verifier.rules.marks",
     "verifier.rules.regressions",
 )
 

@@ -21,13 +21,24 @@ from __future__ import annotations
 
 import ast
 import fnmatch
+import itertools
 import re
 from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from fnmatch import fnmatchcase
 from typing import Any
 
-from verifier.astnames import ModuleIndex, Names, canonical, is_literal, module_index, resolve, span
+from verifier.astnames import (
+    ModuleIndex,
+    Names,
+    canonical,
+    constant_string,
+    is_literal,
+    module_index,
+    namespace_of,
+    resolve,
+    span,
+)
 from verifier.models import Finding
 from verifier.rules import RuleContext, rule
 from verifier.rules.machine import option
@@ -388,11 +399,33 @@ def required_text(entry: Entry) -> tuple[tuple[str, ...], ...]:
     only where identifiers are written as they are read, which :meth:`_Needs.may_match` checks."""
     # a part between dots (or the ends) matches one whole part of the name; a '[...]' set may hold dots
     parts = [] if "[" in entry.target else entry.target.split(".")
-    groups = [(part,) for part in parts if part.isidentifier()]
+    groups: list[tuple[str, ...]] = [(part,) for part in parts if part.isidentifier()]
     for condition in entry.when:
         if condition.keyword is not None and condition.arg is None and condition.test not in ("missing", "not-in"):
             groups.append((condition.keyword, "**"))
     return tuple(sorted(groups, key=lambda group: -min(map(len, group))))  # longer texts are rarer: first
+
+
+# Texts through which code reaches a function without writing its name, or runs a shell from an argument
+# list: a source holding one is always checked.
+_DYNAMIC_TEXTS = (
+    "getattr",
+    "__dict__",
+    "vars(",
+    "modules",
+    "__builtins__",
+    "partial",
+    "import_module",
+    "__import__",
+    "sh'",
+    'sh"',
+    "cmd",
+    "pwsh",
+    "busybox",
+)
+# string pieces joined by the parser or at run time ('sys' 'tem', "ev" + "al", "".join(...)): a name or a
+# shell may be spelt in pieces, so a source holding such pieces is always checked
+_PIECES = re.compile(r"""['"](?:[ \t]|\\?\n)+[rbuRBUfF]{0,2}['"]|['"]\s*\+\s*[rbuRBUfF]{0,2}['"]|['"]\.join\(""")
 
 
 class _Needs:
@@ -413,7 +446,9 @@ class _Needs:
 
         Outside ASCII the parser normalises identifiers (NFKC), so a name may be spelled otherwise in
         the text; ``getattr(obj, "na" "me")`` builds an attribute from a string; both are always checked."""
-        if self.always or not source.isascii() or "getattr" in source:
+        if self.always or not source.isascii() or any(text in source for text in _DYNAMIC_TEXTS):
+            return True
+        if _PIECES.search(source):
             return True
         present = {text for text in self.texts if text in source}
         for first in present.intersection(self.by_first):
@@ -456,20 +491,35 @@ def _check_module(
     module: ModuleIndex, path: str, lines: frozenset[int], calls: _EntryTable, assigns: _EntryTable
 ) -> Iterator[Finding]:
     first, last = min(lines), max(lines)
+    reported: set[int] = set()
     for node in module.calls if calls else ():
         if node.lineno <= last and (node.end_lineno or node.lineno) >= first:
-            yield from _check_call(node, path, lines, module.names, calls)
+            for finding in _check_call(node, path, lines, module.names, calls):
+                reported.add(node.lineno)
+                yield finding
     for assignment in module.assignments if assigns else ():
         if assignment.lineno <= last and (assignment.end_lineno or assignment.lineno) >= first:
             yield from _check_assignment(assignment, path, lines, module.names, assigns)
+    for finding in hidden_calls(module, path, lines, calls):
+        if finding.line not in reported:
+            reported.add(finding.line or 0)
+            yield finding
 
 
 def _check_call(
     node: ast.Call, path: str, lines: frozenset[int], names: Names, entries: _EntryTable
 ) -> Iterator[Finding]:
     candidates = tuple(canonical(n) for n in resolve(node.func, names)) or ("?",)
+    if any(c in _PARTIALS for c in candidates) and node.args and not isinstance(node.args[0], ast.Starred):
+        # functools.partial(f, *args, **kwargs) is f called later with those arguments first (Python docs,
+        # functools.partial): judge it as that call
+        applied = ast.Call(func=node.args[0], args=node.args[1:], keywords=node.keywords)
+        ast.copy_location(applied, node)
+        applied.end_lineno, applied.end_col_offset = node.end_lineno, node.end_col_offset
+        yield from _check_call(applied, path, lines, names, entries)
+        return
     for name, entry in entries.matching(candidates):
-        deciding = [node.func]
+        deciding: list[ast.AST] = [node.func]
         if not all(_holds(c, _argument(node, c), names, deciding) for c in entry.when):
             continue
         if any(n in lines for part in deciding for n in span(part)):
@@ -502,6 +552,113 @@ def _finding(entry: Entry, what: str, path: str, line: int) -> Finding:
         path=path,
         line=line,
         details={"cwe": entry.cwe, "entry": entry.target, "doc": entry.doc},
+    )
+
+
+_PARTIALS = ("functools.partial", "functools.partialmethod")
+# Shells and the option that makes them run their next argument as a command line (sh, bash, ... -c;
+# cmd.exe /c; PowerShell -Command), common practice.
+_SHELLS = frozenset({"sh", "bash", "dash", "zsh", "ksh", "csh", "tcsh", "fish", "ash", "busybox", "cmd", "cmd.exe"})
+_SHELLS |= {"powershell", "powershell.exe", "pwsh"}
+_SHELL_COMMAND_FLAGS = frozenset({"-c", "/c", "/C", "-Command", "-command", "-lc", "-ic", "-ec", "-ce"})
+# Modules whose functions turn data into code or commands: reaching into them by a computed name hides which
+# function runs, so the rule cannot tell it safe.
+GUARDED_MODULES = frozenset(
+    {"os", "subprocess", "builtins", "pickle", "marshal", "shelve", "importlib", "ctypes", "pty", "runpy", "sys"}
+)
+
+
+def hidden_calls(module: ModuleIndex, path: str, lines: frozenset[int], calls: _EntryTable) -> Iterator[Finding]:
+    """What hides a dangerous call from the entries: a shell run from an argument list (``["sh", "-c", cmd]``,
+    in any call or list), a guarded module reached by a computed name (``getattr(os, name)``, ``vars(os)``,
+    ``os.__dict__``, ``sys.modules[name]``, ``__builtins__[name]``), and an entry's function passed on as a
+    value (``map(eval, rows)``, ``callback=os.system``), which the entry can no longer see called."""
+    names = module.names
+    called_funcs = {id(call.func) for call in module.calls}
+    alias_values = {id(a.value) for a in module.assignments if isinstance(a.value, (ast.Name, ast.Attribute))}
+    for node in ast.walk(module.tree):
+        if not isinstance(node, (ast.List, ast.Tuple, ast.Call, ast.Attribute, ast.Subscript, ast.Name)):
+            continue
+        if not any(n in lines for n in span(node)):
+            continue
+        if isinstance(node, (ast.List, ast.Tuple, ast.Call)) and _runs_a_shell(node):
+            yield _hidden(path, node.lineno, "a shell run from an argument list (sh -c ...)", "CWE-78", _SHELL_DOC)
+            continue
+        dynamic = _dynamic_access(node, names)
+        if dynamic:
+            yield _hidden(path, node.lineno, f"{dynamic}: the gate cannot see which function it reaches", "CWE-470")
+            continue
+        if isinstance(node, (ast.Name, ast.Attribute)) and id(node) not in called_funcs | alias_values:
+            yield from _passed_as_value(node, names, path, calls)
+
+
+def _runs_a_shell(node: ast.List | ast.Tuple | ast.Call) -> bool:
+    items = node.elts if isinstance(node, (ast.List, ast.Tuple)) else node.args
+    texts = [constant_string(item) for item in items]
+    for first, second in itertools.pairwise(texts):
+        if (
+            first is not None
+            and second in _SHELL_COMMAND_FLAGS
+            and first.replace("\\", "/").rsplit("/", 1)[-1] in _SHELLS
+        ):
+            return True
+    return False
+
+
+def _dynamic_access(node: ast.AST, names: Names) -> str:
+    """How ``node`` reaches into a guarded module by a name the source does not fix, or ''."""
+    if isinstance(node, ast.Call) and isinstance(node.func, ast.Name) and "getattr" in resolve(node.func, names):
+        if len(node.args) >= 2 and constant_string(node.args[1]) is None:
+            target = _guarded(resolve(node.args[0], names))
+            return f"getattr on {target} with a computed name" if target else ""
+        return ""
+    if _module_by_computed_name(node, names):
+        return "a module taken from sys.modules by a computed name"
+    namespace = namespace_of(node, names) if isinstance(node, (ast.Call, ast.Attribute, ast.Name)) else None
+    if namespace is None:
+        return ""
+    if namespace == ("",):  # sys.modules: only a computed module name hides anything
+        return ""
+    target = _guarded(namespace)
+    if not target or (namespace == ("builtins",) and isinstance(node, ast.Name)):
+        return ""
+    return f"the namespace of {target} read as a mapping ({ast.unparse(node)})"
+
+
+def _module_by_computed_name(node: ast.AST, names: Names) -> bool:
+    """``sys.modules[name]`` or ``sys.modules.get(name)`` with a name the source does not fix."""
+    if isinstance(node, ast.Subscript):
+        return namespace_of(node.value, names) == ("",) and constant_string(node.slice) is None
+    if isinstance(node, ast.Call) and isinstance(node.func, ast.Attribute) and node.func.attr == "get":
+        computed = not node.args or constant_string(node.args[0]) is None
+        return computed and namespace_of(node.func.value, names) == ("",)
+    return False
+
+
+def _guarded(meanings: Sequence[str]) -> str:
+    return next((m for m in meanings if canonical(m).split(".", 1)[0] in GUARDED_MODULES or m == "builtins"), "")
+
+
+def _passed_as_value(node: ast.Name | ast.Attribute, names: Names, path: str, calls: _EntryTable) -> Iterator[Finding]:
+    if isinstance(node.ctx, (ast.Store, ast.Del)):
+        return
+    candidates = tuple(canonical(n) for n in resolve(node, names))
+    for name, entry in calls.matching(candidates):
+        if any(char in entry.target for char in "*?["):
+            continue  # a pattern entry (subprocess.*) decides by the arguments of a call it sees
+        yield _hidden(path, node.lineno, f"{name} passed as a value: {entry.why}", entry.cwe, entry.doc)
+        return
+
+
+def _hidden(path: str, line: int, what: str, cwe: str | None, doc: str = "") -> Finding:
+    entry = Entry("call", "(hidden)", what, (), cwe, doc or _IMPORT_DOC)
+    return Finding(
+        RULE_ID,
+        "block",
+        f"{what} ({cwe})" if cwe else what,
+        path=path,
+        line=line,
+        details={"cwe": cwe, "entry": entry.target, "doc": entry.doc},
     )
 
 

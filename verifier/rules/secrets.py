@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import ast
 import math
 import re
 from collections import Counter
 from collections.abc import Iterator
 
+from verifier.astnames import constant_string, module_index, span
 from verifier.models import Finding
 from verifier.rules import RuleContext, rule
 from verifier.rules.machine import mask, option
@@ -120,18 +122,67 @@ def literal_secrets(context: RuleContext) -> Iterator[Finding]:
     min_entropy = option(context, RULE_ID, "min_entropy")
     for path, lines in context.provenance.machine_lines.items():
         source = context.head_sources.get(path)
-        if source is None or not might_hold_secret(source):
+        if source is None:
             continue
-        rows = source.split("\n")
-        for number in lines:
-            text = rows[number - 1] if 0 < number <= len(rows) else ""
+        found: list[tuple[int, str, str]] = []  # (line, kind, secret), one per secret
+        for number, text in _texts(path, source, frozenset(lines)):
             for kind, secret in find_secrets(text, min_length, min_entropy, allowed):
-                cwe = "CWE-321" if kind == "private key block" else "CWE-798"
-                yield Finding(
-                    RULE_ID,
-                    "block",
-                    f"{kind} in a machine-written line: {mask(secret)} ({cwe})",
-                    path=path,
-                    line=number,
-                    details={"kind": kind, "cwe": cwe, "masked": mask(secret)},
-                )
+                if not any(secret in other or other in secret for _, _, other in found):
+                    found.append((number, kind, secret))
+        for number, kind, secret in sorted(found, key=lambda item: item[0]):
+            cwe = "CWE-321" if kind == "private key block" else "CWE-798"
+            yield Finding(
+                RULE_ID,
+                "block",
+                f"{kind} in a machine-written line: {mask(secret)} ({cwe})",
+                path=path,
+                line=number,
+                details={"kind": kind, "cwe": cwe, "masked": mask(secret)},
+            )
+
+
+def _texts(path: str, source: str, lines: frozenset[int]) -> Iterator[tuple[int, str]]:
+    """The texts to search: each machine-written line, then (for Python) each string the source builds from
+    pieces (adjacent literals, ``+``, ``"".join``, f-strings without fields) touching those lines, given as
+    ``name = "value"`` when it is assigned, passed by keyword or stored under a key, so that the name rule
+    sees the joined value."""
+    rows = source.split("\n")
+    if might_hold_secret(source):
+        for number in sorted(lines):
+            if 0 < number <= len(rows):
+                yield number, rows[number - 1]
+    if path.endswith(".py"):
+        yield from _joined_strings(source, path, lines)
+
+
+def _joined_strings(source: str, path: str, lines: frozenset[int]) -> Iterator[tuple[int, str]]:
+    index = module_index(source, path)
+    if index is None:
+        return
+    named: dict[int, str] = {}  # id of a value node -> the name it is given
+    for node in ast.walk(index.tree):
+        if isinstance(node, ast.Assign):
+            for target in node.targets:
+                if isinstance(target, (ast.Name, ast.Attribute)):
+                    named[id(node.value)] = target.id if isinstance(target, ast.Name) else target.attr
+        elif isinstance(node, ast.AnnAssign) and node.value is not None and isinstance(node.target, ast.Name):
+            named[id(node.value)] = node.target.id
+        elif isinstance(node, ast.keyword) and node.arg:
+            named[id(node.value)] = node.arg
+        elif isinstance(node, ast.Dict):
+            for key, value in zip(node.keys, node.values, strict=True):
+                if isinstance(key, ast.Constant) and isinstance(key.value, str):
+                    named[id(value)] = key.value
+    for node in ast.walk(index.tree):
+        if not isinstance(node, (ast.Constant, ast.BinOp, ast.JoinedStr, ast.Call)):
+            continue
+        if not any(n in lines for n in span(node)):
+            continue
+        pieced = isinstance(node, (ast.BinOp, ast.JoinedStr, ast.Call)) or (node.end_lineno or 0) > node.lineno
+        if not pieced and id(node) not in named:
+            continue  # a one-line literal: the line itself was searched
+        text = constant_string(node)
+        if text is None or not might_hold_secret(text + named.get(id(node), "")):
+            continue
+        name = named.get(id(node))
+        yield node.lineno, f'{name} = "{text}"' if name else text
