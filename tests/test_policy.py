@@ -14,17 +14,18 @@ from verifier.models import Finding, PathOverride, Policy, Waiver
 from verifier.policy.loader import (
     Layer,
     build_policy,
-    judge_finding,
     load_policy,
     load_policy_file,
     parse_layer,
-    policy_for_path,
     shipped_dir,
     shipped_layer,
     shipped_policies,
-    waivers_used,
 )
-from verifier.rules import REGISTRY, Rule, load_all
+from verifier.rules import REGISTRY, Rule
+from verifier.rules.catalog import load_all
+from verifier.verdict.judge import judge_finding
+from verifier.verdict.settings import settings_for_path
+from verifier.verdict.waivers import waivers_used
 
 
 def error_of(text: str) -> PolicyError:
@@ -250,13 +251,13 @@ TOOLS = PathOverride(paths=("legacy/tools/**",), source="v.yaml:9", rules={"code
 
 def test_policy_for_path_applies_matching_overrides_in_order() -> None:
     policy = Policy(source="x", coverage_threshold=90.0, rules={"code.syntax": "block"}, overrides=(LEGACY, TOOLS))
-    assert policy_for_path(policy, "parcelkit/rates.py").coverage_threshold == 90.0
-    legacy = policy_for_path(policy, "legacy/old.py")
+    assert settings_for_path(policy, "parcelkit/rates.py").coverage_threshold == 90.0
+    legacy = settings_for_path(policy, "legacy/old.py")
     assert (legacy.coverage_threshold, legacy.setting("code.syntax", "block")) == (50.0, "warn")
     assert legacy.option("sample.options", "limit", 400) == 5 and legacy.overrides == ("v.yaml:3",)
-    tools = policy_for_path(policy, "legacy/tools/gen.py")
+    tools = settings_for_path(policy, "legacy/tools/gen.py")
     assert tools.setting("code.syntax", "block") == "off" and tools.coverage_threshold == 50.0
-    assert policy_for_path(policy, None).setting("code.syntax", "warn") == "block"  # change-wide: no override
+    assert settings_for_path(policy, None).setting("code.syntax", "warn") == "block"  # change-wide: no override
 
 
 def test_findings_take_the_severity_of_their_path() -> None:

@@ -6,8 +6,8 @@ import pytest
 from test_rules_support import findings, machine_change
 
 from verifier.demo.scratch import ScratchRepo
-from verifier.rules import apply_rules
 from verifier.rules.weakened import _widened
+from verifier.verdict.judge import apply_rules
 
 BASE = """import pytest
 

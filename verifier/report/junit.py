@@ -12,6 +12,9 @@ import xml.etree.ElementTree as ET
 
 from verifier.models import Report, TestOutcome
 
+SUFFIX = "junit.xml"  # a report of this format written into a folder is report.junit.xml
+FOR_MACHINES = True  # tools read it: alone on stdout
+
 
 def render(report: Report) -> str:
     suites = ET.Element("testsuites")
@@ -78,3 +81,16 @@ def _summary_line(message: str) -> str:
 def _xml_safe(text: str) -> str:
     """XML 1.0 has no place for most control characters; drop them (test output can hold anything)."""
     return "".join(ch for ch in text if ch in "\t\n\r" or ord(ch) >= 0x20)
+
+
+def render_error(message: str, exit_code: int) -> str:
+    """The gate stopped before a verdict: one suite with one test case in error, never an empty green file."""
+    suites = ET.Element("testsuites")
+    suite = ET.SubElement(suites, "testsuite", name="verifier")
+    suite.append(_error_case("verifier", "verdict", f"{message} (exit code {exit_code})"))
+    counts = _counts(list(suite))
+    for element in (suites, suite):
+        element.attrib.update({key: str(value) for key, value in counts.items()})
+        element.set("time", "0")
+    ET.indent(suites)
+    return '<?xml version="1.0" encoding="utf-8"?>\n' + ET.tostring(suites, encoding="unicode") + "\n"

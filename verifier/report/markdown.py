@@ -10,6 +10,9 @@ import re
 from verifier.models import Finding, Report
 from verifier.report.text import line_spans
 
+SUFFIX = "md"  # a report of this format written into a folder is report.md
+FOR_MACHINES = True  # tools read it: alone on stdout
+
 _HEADLINES = {
     "pass": "PASS: the machine-written change is verified",
     "warn": "WARN: verified, with warnings",
@@ -173,3 +176,7 @@ def _cell(text: str) -> str:
 
 def _html(text: str) -> str:
     return text.replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
+
+
+def render_error(message: str, exit_code: int) -> str:
+    return f"## verifier: {_HEADLINES['error']}\n\n{_inline(message)} (exit code {exit_code})\n"

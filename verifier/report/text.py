@@ -13,9 +13,15 @@ import os
 import sys
 import threading
 import time
+from collections.abc import Callable
 from typing import TextIO
 
-from verifier.models import Finding, Report
+from verifier.models import Finding, Report, RunResult
+
+Paint = Callable[[str, str], str]  # (style key, text) -> the text, coloured or not
+
+SUFFIX = "txt"  # a report of this format written into a folder is report.txt
+FOR_MACHINES = False  # the view for people: on stderr when a machine format takes stdout
 
 _COLOURS = {"pass": "32", "warn": "33", "block": "31", "error": "35", "info": "36"}
 _LABELS = {
@@ -48,7 +54,7 @@ def render(report: Report, colour: bool = False, quiet: bool = False) -> str:
     return "\n".join(out) + "\n"
 
 
-def _painter(colour: bool):  # type: ignore[no-untyped-def]
+def _painter(colour: bool) -> Paint:
     def paint(key: str, text: str) -> str:
         return f"\033[{_COLOURS.get(key, '0')}m{text}\033[0m" if colour else text
 
@@ -102,7 +108,7 @@ def _selection(report: Report) -> list[str]:
     return rows
 
 
-def _differential(run) -> list[str]:  # type: ignore[no-untyped-def]
+def _differential(run: RunResult) -> list[str]:
     if run.baseline is None:
         return []
     from collections import Counter
@@ -113,7 +119,7 @@ def _differential(run) -> list[str]:  # type: ignore[no-untyped-def]
     return ["against base: " + ", ".join(f"{counts[name]} {name}" for name in CLASSES)]
 
 
-def _coverage(report: Report, paint) -> list[str]:  # type: ignore[no-untyped-def]
+def _coverage(report: Report, paint: Paint) -> list[str]:
     cov = report.coverage
     if cov is None:
         return []
@@ -140,7 +146,7 @@ def _coverage(report: Report, paint) -> list[str]:  # type: ignore[no-untyped-de
     return rows
 
 
-def _findings(findings: tuple[Finding, ...], paint) -> list[str]:  # type: ignore[no-untyped-def]
+def _findings(findings: tuple[Finding, ...], paint: Paint) -> list[str]:
     shown = [f for f in findings if not (f.rule == "coverage.new-lines" and f.line is not None)]
     if not shown:
         return ["findings: none"]
@@ -233,3 +239,7 @@ class StageDisplay:
         end = "\n" if final else ""
         self.stream.write(f"\r\033[2Kverifier: {self._stage} ({elapsed:.1f}s) {mark}{end}")
         self.stream.flush()
+
+
+def render_error(message: str, exit_code: int) -> str:
+    return f"{_LABELS['error']}\n  {message} (exit code {exit_code})\n"
