@@ -67,6 +67,7 @@ def build_policy(layers: list[Layer], today: date | None = None) -> Policy:
         overrides=tuple(_override(entry) for entry in merged.get("overrides", [])),
         waivers=waivers,
         selection=_selection(merged.get("selection", {})),
+        files=tuple(layer.repo_path for layer in layers if layer.repo_path is not None),
         agent_identities=tuple(getattr(merged.get("audit", {}).get("agent_identities"), "value", ())),
     )
 

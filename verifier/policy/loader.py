@@ -78,14 +78,33 @@ def load_policy(
 
 def policy_layers(git: Git, base: str | None, org_policy: str | os.PathLike[str] | None = None) -> list[Layer]:
     """The layers, lowest first: shipped default, organisation policy, the repository's file at ``base``."""
+    _refuse_org_policy_inside(git, org_policy_path(org_policy))
     layers = [shipped_layer("default"), *_org_layers(org_policy)]
     if base is not None:
         text = git.show_file(base, POLICY_FILE)
         if text is not None:
             label = f"{base[:12]}:{POLICY_FILE}"
-            layer = Layer(label, parse_layer(text.decode("utf-8", "replace"), label))
+            layer = Layer(label, parse_layer(text.decode("utf-8", "replace"), label), repo_path=POLICY_FILE)
             layers += _with_extends(layer, _revision_reader(git, base))
     return _first_of_each(layers)
+
+
+def _refuse_org_policy_inside(git: Git, path: Path | None) -> None:
+    """The organisation policy judges the repository, so it cannot live in it: a change could edit it
+    (a path from the environment may point into the checkout under review). Refused with exit 2."""
+    if path is None:
+        return
+    target = os.path.realpath(path)
+    for folder in (git.toplevel(), git.common_dir()):
+        inside = os.path.realpath(folder)
+        if os.path.commonpath([target, inside]) == inside:
+            raise PolicyError(
+                str(path),
+                None,
+                "organisation policy",
+                f"is inside the repository being checked ({inside}), where a change can edit it; "
+                f"keep the organisation policy outside the repository (--org-policy or ${ORG_POLICY_ENV})",
+            )
 
 
 def file_layers(path: Path, root: Path, org_policy: str | os.PathLike[str] | None = None) -> list[Layer]:
@@ -128,7 +147,7 @@ def _revision_reader(git: Git, base: str) -> Reader:
         text = git.show_file(base, clean)
         if text is None:
             raise error_at(where, "extends", f"no file '{clean}' at the base revision {base[:12]}")
-        return Layer(label, parse_layer(text.decode("utf-8", "replace"), label))
+        return Layer(label, parse_layer(text.decode("utf-8", "replace"), label), repo_path=clean)
 
     return read
 

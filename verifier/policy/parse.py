@@ -44,6 +44,7 @@ class Layer:
 
     label: str
     data: Mapping[str, Any]
+    repo_path: str | None = None  # the file's path in the repository, for a layer read from the base revision
 
 
 def error_at(where: Located, key: str, problem: str) -> PolicyError:
