@@ -120,7 +120,6 @@ def test_slow_price():
 MARKED_POLICY = 'version: 1\ntests:\n  args: ["-o", "junit_suite_name={marker}"]\n'
 
 
-
 @pytest.mark.parametrize("stop", [signal.SIGTERM, signal.SIGINT], ids=["sigterm", "sigint"])
 def test_an_interrupted_check_leaves_an_error_report_not_the_old_one(tmp_path: Path, stop: signal.Signals) -> None:
     """A cancelled CI job (SIGTERM) or Ctrl-C (SIGINT) while the tests run: the report says so, exit 130."""
@@ -208,3 +207,26 @@ def test_a_new_format_is_one_module_and_one_entry(changes: dict, tmp_path: Path)
 def test_an_unknown_sandbox_is_refused_with_the_choices(changes: dict) -> None:
     done = gate(changes["repo"], "check", changes["human"], "--sandbox", "chroot")
     assert done.returncode == 2 and "invalid choice: 'chroot'" in done.stderr and "namespace" in done.stderr
+
+
+def test_check_staged_without_the_trailer_imports_nothing_heavy(tmp_path: Path) -> None:
+    """The commit hook's common case stays fast: the parser is built (every subcommand's options, the
+    registries' choices left unread) and nothing of the pipeline, the sandbox, yaml or pytest is imported."""
+    message = tmp_path / "MSG"
+    message.write_text("Fix a typo\n")
+    probe = (
+        "import sys; from verifier.cli.main import main; code = main(['check', '--staged', '--message-file', "
+        "sys.argv[1]]); print(code, sorted(sys.modules))"
+    )
+    done = subprocess.run(
+        [sys.executable, "-c", probe, str(message)],
+        capture_output=True,
+        text=True,
+        cwd=tmp_path,
+        env={**os.environ, "PYTHONPATH": str(ROOT)},
+    )
+    assert done.returncode == 0, done.stderr
+    code, loaded = done.stdout.strip().split("\n")[-1].split(" ", 1)
+    assert code == "0"
+    heavy = ("verifier.pipeline", "verifier.sandbox", "verifier.policy", "verifier.report.text", "yaml", "pytest")
+    assert [name for name in heavy if f"'{name}'" in loaded] == []
