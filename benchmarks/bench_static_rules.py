@@ -23,7 +23,7 @@ from timing import compare
 from verifier import astnames
 from verifier.gitio import Git
 from verifier.pipeline import _base_reader
-from verifier.rules import apply_rules
+from verifier.verdict.judge import apply_rules
 
 MODULE = '''"""Tariffs for zone {n}."""
 

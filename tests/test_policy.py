@@ -14,17 +14,18 @@ from verifier.models import Finding, PathOverride, Policy, Waiver
 from verifier.policy.loader import (
     Layer,
     build_policy,
-    judge_finding,
     load_policy,
     load_policy_file,
     parse_layer,
-    policy_for_path,
     shipped_dir,
     shipped_layer,
     shipped_policies,
-    waivers_used,
 )
-from verifier.rules import REGISTRY, Rule, load_all
+from verifier.rules import REGISTRY, Rule
+from verifier.rules.catalog import load_all
+from verifier.verdict.judge import judge_finding
+from verifier.verdict.settings import settings_for_path
+from verifier.verdict.waivers import waivers_used
 
 
 def error_of(text: str) -> PolicyError:
@@ -250,13 +251,13 @@ TOOLS = PathOverride(paths=("legacy/tools/**",), source="v.yaml:9", rules={"code
 
 def test_policy_for_path_applies_matching_overrides_in_order() -> None:
     policy = Policy(source="x", coverage_threshold=90.0, rules={"code.syntax": "block"}, overrides=(LEGACY, TOOLS))
-    assert policy_for_path(policy, "parcelkit/rates.py").coverage_threshold == 90.0
-    legacy = policy_for_path(policy, "legacy/old.py")
+    assert settings_for_path(policy, "parcelkit/rates.py").coverage_threshold == 90.0
+    legacy = settings_for_path(policy, "legacy/old.py")
     assert (legacy.coverage_threshold, legacy.setting("code.syntax", "block")) == (50.0, "warn")
     assert legacy.option("sample.options", "limit", 400) == 5 and legacy.overrides == ("v.yaml:3",)
-    tools = policy_for_path(policy, "legacy/tools/gen.py")
+    tools = settings_for_path(policy, "legacy/tools/gen.py")
     assert tools.setting("code.syntax", "block") == "off" and tools.coverage_threshold == 50.0
-    assert policy_for_path(policy, None).setting("code.syntax", "warn") == "block"  # change-wide: no override
+    assert settings_for_path(policy, None).setting("code.syntax", "warn") == "block"  # change-wide: no override
 
 
 def test_findings_take_the_severity_of_their_path() -> None:
@@ -297,3 +298,73 @@ def test_waiver_expiry_is_inclusive_and_a_lapsed_one_is_an_error() -> None:
     error = caught.value
     assert (error.source, error.line, error.key) == ("v.yaml", 7, "waivers[0].expires")
     assert "code.syntax" in str(error) and "legacy/**" in str(error) and "expired on 2030-06-30" in str(error)
+
+
+# -- numbers and the size of messages ------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("text", "key"),
+    [
+        ("limits:\n  wall_seconds: .nan\n", "limits.wall_seconds"),
+        ("limits:\n  memory_mb: .inf\n", "limits.memory_mb"),
+        ("limits:\n  cpu_seconds: 100000000000000000000000000000\n", "limits.cpu_seconds"),
+        ("coverage:\n  threshold: -.inf\n", "coverage.threshold"),
+        ("selection:\n  reruns: .nan\n", "selection.reruns"),
+        ("rules:\n  secrets.literal:\n    min_entropy: .nan\n", "rules.secrets.literal.min_entropy"),
+        ("rules:\n  patch.size:\n    max_lines: 99999999999999999999\n", "rules.patch.size.max_lines"),
+    ],
+)
+def test_policy_numbers_must_be_finite_and_in_range(text: str, key: str) -> None:
+    # YAML 1.1 (PyYAML's SafeLoader) reads .nan and .inf as floats: the common way to write them
+    error = error_of("version: 1\n" + text)
+    assert error.key == key and error.line == text.count("\n") + 1  # the value's own line, after "version: 1"
+    assert "expected" in error.problem and len(str(error)) < 300
+
+
+def test_sensible_limits_are_accepted() -> None:
+    layer = parse_layer("version: 1\nlimits:\n  wall_seconds: 3600\n  memory_mb: 65536\n", "verifier.yaml")
+    assert layer["limits"]["wall_seconds"].value == 3600 and layer["limits"]["memory_mb"].value == 65536
+
+
+def test_an_integer_of_thousands_of_digits_gets_a_short_message() -> None:
+    error = error_of("version: 1\nlimits:\n  wall_seconds: " + "9" * 6000 + "\n")
+    assert error.key == "limits.wall_seconds" and len(str(error)) < 300
+
+
+ALIAS_BOMB = """version: 1
+a: &a ["lol", "lol", "lol", "lol", "lol", "lol", "lol", "lol", "lol"]
+b: &b [*a, *a, *a, *a, *a, *a, *a, *a, *a]
+c: &c [*b, *b, *b, *b, *b, *b, *b, *b, *b]
+d: &d [*c, *c, *c, *c, *c, *c, *c, *c, *c]
+e: &e [*d, *d, *d, *d, *d, *d, *d, *d, *d]
+f: &f [*e, *e, *e, *e, *e, *e, *e, *e, *e]
+g: &g [*f, *f, *f, *f, *f, *f, *f, *f, *f]
+h: &h [*g, *g, *g, *g, *g, *g, *g, *g, *g]
+tests:
+  paths: [*h, *h, *h, *h, *h, *h, *h, *h, *h]
+"""
+
+
+def test_a_yaml_alias_bomb_is_refused_with_a_short_message() -> None:
+    """Nine levels of nine aliases stand for 9**10 (about 3.5 billion) strings in ten lines."""
+    error = error_of(ALIAS_BOMB)
+    assert error.line is not None and "expands to more than" in error.problem
+    assert len(str(error)) < 300
+
+
+def test_a_small_alias_bomb_under_a_known_key_is_quoted_short() -> None:
+    """Small enough to expand, wrong in type: the message quotes the value cut short."""
+    text = 'version: 1\nx: &x ["a", "b", "c"]\ncoverage:\n  threshold: [*x, *x, *x, *x, *x, *x]\n'
+    error = error_of(text.replace("x: &x", "tests:\n  paths: &x"))
+    assert error.key == "coverage.threshold" and "..." in error.problem and len(str(error)) < 300
+
+
+def test_a_list_as_a_key_is_refused_without_quoting_it() -> None:
+    error = error_of("version: 1\ncoverage:\n  ? [a, b, c]\n  : 5\n")
+    assert error.key == "coverage" and "plain word" in error.problem
+
+
+def test_yaml_anchors_in_an_ordinary_policy_still_work() -> None:
+    text = "version: 1\ntests:\n  paths: &tests [tests/]\ncoverage:\n  exclude: *tests\n"
+    assert parse_layer(text, "verifier.yaml")["coverage"]["exclude"].value == ["tests/"]

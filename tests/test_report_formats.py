@@ -19,7 +19,7 @@ from conftest import ROOT, machine, test_sandbox
 from verifier.demo import scenario as demo
 from verifier.demo.scratch import ScratchRepo
 from verifier.report.text import StageDisplay
-from verifier.rules import load_all
+from verifier.rules.catalog import load_all
 
 # The SARIF 2.1.0 schema as OASIS publishes it (copied from ../shared/standards so a clean clone has it).
 SARIF_SCHEMA = json.loads((Path(__file__).parent / "data" / "sarif-schema-2.1.0.json").read_text())

@@ -7,7 +7,7 @@ from pathlib import Path
 
 import pytest
 
-from verifier.rules import load_all
+from verifier.rules.catalog import load_all
 
 DOC = Path(__file__).resolve().parent.parent / "docs" / "rules.md"
 STATIC_RULES = [

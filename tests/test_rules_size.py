@@ -5,7 +5,7 @@ from __future__ import annotations
 from test_rules_support import findings, machine_change
 
 from verifier.demo.scratch import ScratchRepo
-from verifier.rules import apply_rules
+from verifier.verdict.judge import apply_rules
 
 
 def lines(count: int) -> str:

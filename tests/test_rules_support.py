@@ -17,7 +17,8 @@ from verifier.gitio import Git
 from verifier.models import Finding, Policy
 from verifier.pipeline import _base_reader, _changed_sources
 from verifier.provenance.attribution import attribute
-from verifier.rules import REGISTRY, RuleContext, load_all
+from verifier.rules import REGISTRY, RuleContext
+from verifier.rules.catalog import load_all
 
 
 def context_for(repo: ScratchRepo, spec: str, options: Mapping[str, Mapping[str, Any]] | None = None) -> RuleContext:

@@ -7,8 +7,8 @@ from conftest import machine
 from test_rules_support import context_for, findings, machine_change
 
 from verifier.demo.scratch import ScratchRepo
-from verifier.rules import apply_rules
 from verifier.rules.weakened import _widened
+from verifier.verdict.judge import apply_rules
 
 BASE = """import contextlib
 

@@ -2,16 +2,30 @@
 
 from __future__ import annotations
 
-EXIT_PASS = 0
-EXIT_BLOCK = 1
-EXIT_USAGE = 2
-EXIT_UNVERIFIED = 3
+from enum import IntEnum
+
+
+class ExitCode(IntEnum):
+    """How the ``verifier`` command ends; the hooks and CI read these numbers."""
+
+    PASS = 0  # pass or warn
+    BLOCK = 1  # a blocking finding
+    USAGE = 2  # a bad command line or a broken policy
+    UNVERIFIED = 3  # the gate could not verify (never a pass)
+    INTERRUPTED = 130  # stopped by Ctrl-C or SIGINT (128 + the signal number, as shells report it)
+
+
+# The same values under their older names, for code that reads them as plain constants.
+EXIT_PASS: int = ExitCode.PASS
+EXIT_BLOCK: int = ExitCode.BLOCK
+EXIT_USAGE: int = ExitCode.USAGE
+EXIT_UNVERIFIED: int = ExitCode.UNVERIFIED
 
 
 class VerifierError(Exception):
     """Base of every error the gate reports to a user; ``exit_code`` says how the CLI ends."""
 
-    exit_code = EXIT_USAGE
+    exit_code: ExitCode = ExitCode.USAGE
 
     def __init__(self, message: str, hint: str | None = None) -> None:
         super().__init__(message)
@@ -53,7 +67,7 @@ class PolicyError(VerifierError):
 class CannotVerify(VerifierError):
     """The gate could not reach a verdict (no sandbox, timeout, crash); it never passes by default."""
 
-    exit_code = EXIT_UNVERIFIED
+    exit_code = ExitCode.UNVERIFIED
 
 
 class SandboxUnavailable(CannotVerify):

@@ -141,9 +141,12 @@ class Policy:
     allow_process_sandbox: bool = False
     rules: Mapping[str, RuleSetting] = field(default_factory=dict)
     rule_options: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)  # rule id -> option -> value
-    overrides: tuple[PathOverride, ...] = ()  # in order; a later one wins (see verifier.policy.loader.policy_for_path)
+    overrides: tuple[
+        PathOverride, ...
+    ] = ()  # in order; a later one wins (see verifier.verdict.settings.settings_for_path)
     waivers: tuple[Waiver, ...] = ()
     agent_identities: tuple[str, ...] = ()  # emails of assistants whose unmarked commits the audit counts
+    files: tuple[str, ...] = ()  # the repository's files (at base) this policy is built from: verifier.yaml, extends
     selection: SelectionSettings = field(default_factory=lambda: SelectionSettings())
 
     def setting(self, rule_id: str, default: RuleSetting) -> RuleSetting:

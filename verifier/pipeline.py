@@ -2,23 +2,32 @@
 
 Reading this module top to bottom follows one change from git to the verdict:
 change -> provenance -> policy -> static rules -> selection -> sandbox -> dynamic rules -> verdict.
-Side effects stay at the edges: git is only read; the files written are in a temporary folder outside
-the repository, removed in every case, and the caches under git's common dir (the who-tests-what maps
-and base results of :mod:`verifier.selection.impactmap` and :mod:`verifier.testrun.differential`, safe to delete).
+What one check knows is carried by one :class:`CheckContext`, built once the policy is read; each step
+below takes it instead of a long list of parameters. Side effects stay at the edges: git is only read;
+the files written are in a temporary folder outside the repository, removed in every case, and the
+caches under git's common dir (the who-tests-what maps and base results of
+:mod:`verifier.selection.impactmap` and :mod:`verifier.testrun.differential`, safe to delete).
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable
-from dataclasses import dataclass
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from verifier.change.stage import RevisionSpec, read_change
+from verifier.errors import PolicyError
 from verifier.gitio import Git
 from verifier.models import INDEX, Change, CoverageSummary, Finding, Policy, Provenance, Report, RunResult, Selection
-from verifier.policy.loader import load_policy, policy_for_path, waivers_used
+from verifier.policy.loader import load_policy
 from verifier.provenance.attribution import attribute, has_mark_text
 from verifier.verdict.decision import decide
+from verifier.verdict.settings import settings_for_path
+from verifier.verdict.waivers import waivers_used
+
+if TYPE_CHECKING:
+    from verifier.sandbox import Backend
 
 Progress = Callable[[str], None]
 
@@ -27,64 +36,79 @@ Progress = Callable[[str], None]
 class Options:
     """How to run the gate."""
 
-    sandbox: str = "auto"  # auto | docker | namespace | process
+    sandbox: str = "auto"  # auto, or a name of verifier.sandbox.BACKENDS
     progress: Progress | None = None
     org_policy: str | None = None  # the organisation policy's path; None: $VERIFIER_ORG_POLICY, if set
     index_file: str | None = None  # for --staged: the index to read (a commit hook's GIT_INDEX_FILE)
     all_tests: bool = False  # run every test, whatever the selection stage would choose
     shard: tuple[int, int] | None = None  # (K, N): run only shard K of N of the selected tests
     premade: tuple[Selection, RunResult] | None = None  # a run made elsewhere (joined shards): judge it as it is
+    # the caller vouches for the code under test (the demo's own sample code), so the process sandbox may run
+    # it whatever the policy says; the command line never sets this
+    vouched_code: bool = False
+
+
+@dataclass(frozen=True)
+class CheckContext:
+    """Everything one check has established before the tests run: where, what changed, who wrote it,
+    the trusted policy, the changed files' texts, and how to run."""
+
+    git: Git
+    change: Change
+    provenance: Provenance
+    policy: Policy
+    options: Options
+    base_sources: Mapping[str, str] = field(default_factory=dict)  # base path -> text, every changed text file
+    head_sources: Mapping[str, str] = field(default_factory=dict)  # head path -> text, every changed text file
+
+    def say(self, message: str) -> None:
+        if self.options.progress is not None:
+            self.options.progress(message)
 
 
 def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None) -> Report:
     """Judge the change ``spec`` of the repository at ``repo``."""
     options = options or Options()
-    say = options.progress or (lambda _message: None)
     git = Git(Git(repo).toplevel(), index_file=options.index_file)
     change = read_change(git, spec)
     provenance = attribute(git, change)
     policy = load_policy(git, change.base, options.org_policy)
+    if not options.vouched_code:
+        refuse_forbidden_sandbox(policy, options.sandbox)
+    if not provenance.machine_lines and not (provenance.marks or has_mark_text(change)):
+        empty = CheckContext(git, change, provenance, policy, options)
+        return _report(empty, [], notes=("no machine-written lines to verify",))
+    base_sources, head_sources = _changed_sources(git, change)
+    check = CheckContext(git, change, provenance, policy, options, base_sources, head_sources)
+    from verifier.rules import RuleContext
+    from verifier.verdict.judge import apply_rules
+
+    rules = RuleContext(change, provenance, policy, head_sources, base_sources, read_base=_base_reader(git, change))
+    findings = apply_rules("static", rules)
     if not provenance.machine_lines:
         # a machine commit without added lines (a deletion, a scope matching nothing) or a mark written where
         # the gate does not read it is still judged by the static rules (verifier.rules.marks and the rest)
-        findings: list[Finding] = []
-        if provenance.marks or has_mark_text(change):
-            from verifier.rules import RuleContext, apply_rules
-
-            base_sources, sources = _changed_sources(git, change)
-            reader = _base_reader(git, change)
-            findings = apply_rules(
-                "static", RuleContext(change, provenance, policy, sources, base_sources, read_base=reader)
-            )
-        return _report(change, provenance, policy, None, findings, {}, notes=("no machine-written lines to verify",))
-    base_sources, sources = _changed_sources(git, change)
-    from verifier.rules import RuleContext, apply_rules
-
-    context = RuleContext(change, provenance, policy, sources, base_sources, read_base=_base_reader(git, change))
-    findings = apply_rules("static", context)
-    say(f"{provenance.machine_line_count} machine-written lines in {len(provenance.machine_lines)} files")
-    if options.premade is not None:
-        selection, run = options.premade
-    else:
-        selection, run = _select_and_run(git, change, policy, options, base_sources, sources, say)
-    from verifier.testrun.measure import summarise_coverage
-
-    coverage = None
-    if run.status == "completed":  # a partial run's coverage would blame the code for what never ran
-        coverage = summarise_coverage(
-            provenance.machine_lines,
-            run.coverage,
-            sources,
-            policy.coverage_threshold,
-            policy.coverage_exclude,
-            threshold_for=lambda path: policy_for_path(policy, path).coverage_threshold,
-        )
-    dynamic = RuleContext(change, provenance, policy, sources, base_sources, run, coverage)
-    findings += apply_rules("dynamic", dynamic)
-    notes = _sandbox_notes(run)
-    return _report(
-        change, provenance, policy, run, findings, sources, coverage=coverage, notes=notes, selection=selection
+        return _report(check, findings, notes=("no machine-written lines to verify",))
+    check.say(f"{provenance.machine_line_count} machine-written lines in {len(provenance.machine_lines)} files")
+    selection, run = options.premade if options.premade is not None else _select_and_run(check)
+    coverage = _coverage(check, run)
+    findings += apply_rules(
+        "dynamic", RuleContext(change, provenance, policy, head_sources, base_sources, run, coverage)
     )
+    return _report(check, findings, run=run, coverage=coverage, notes=_sandbox_notes(run), selection=selection)
+
+
+def refuse_forbidden_sandbox(policy: Policy, requested: str) -> None:
+    """The trusted policy decides where tests may run: the command line cannot pick the process sandbox
+    (which isolates nothing) when the policy does not allow it."""
+    if requested == "process" and not policy.allow_process_sandbox:
+        raise PolicyError(
+            policy.source,
+            None,
+            "sandbox.allow_process",
+            "the trusted policy does not allow the process sandbox, so --sandbox process cannot be used; "
+            "choose another sandbox, or have a human set sandbox.allow_process: true in the policy",
+        )
 
 
 def _changed_sources(git: Git, change: Change) -> tuple[dict[str, str], dict[str, str]]:
@@ -123,58 +147,53 @@ def _base_reader(git: Git, change: Change) -> Callable[[str], str | None]:
     return read
 
 
-def _select_and_run(
-    git: Git,
-    change: Change,
-    policy: Policy,
-    options: Options,
-    base_sources: dict[str, str],
-    sources: dict[str, str],
-    say: Progress,
-) -> tuple[Selection, RunResult]:
+def _select_and_run(check: CheckContext) -> tuple[Selection, RunResult]:
     """Choose the tests (building the base map when needed), run them at head, and at base when asked."""
     from verifier.selection.plan import select_tests
 
-    backend = _backend(git, change, policy, options)
+    backend = _backend(check)
     selection, impact = select_tests(
-        git, change, policy, backend, base_sources, sources, all_tests=options.all_tests, shard=options.shard, say=say
+        check.git,
+        check.change,
+        check.policy,
+        backend,
+        check.base_sources,
+        check.head_sources,
+        all_tests=check.options.all_tests,
+        shard=check.options.shard,
+        say=check.say,
     )
-    say(f"tests: {selection.reason} (map: {selection.map_status})")
-    run = _run_tests(git, change, policy, selection, backend, say)
-    if policy.selection.differential:
+    check.say(f"tests: {selection.reason} (map: {selection.map_status})")
+    run = _run_tests(check, selection, backend)
+    if check.policy.selection.differential:
         from verifier.testrun.differential import with_baseline
 
-        run = with_baseline(git, change, policy, selection, run, backend, impact, say)
+        run = with_baseline(check.git, check.change, check.policy, selection, run, backend, impact, check.say)
     return selection, run
 
 
-def _backend(git: Git, change: Change, policy: Policy, options: Options):  # type: ignore[no-untyped-def]
+def _backend(check: CheckContext) -> Backend:
     """The sandbox backend every run of this check uses (the map build at base, the run at head)."""
     from verifier import sandbox
 
-    backend = sandbox.choose(options.sandbox, policy.allow_process_sandbox or options.sandbox == "process")
+    allowed = check.policy.allow_process_sandbox or check.options.vouched_code
+    backend = sandbox.choose(check.options.sandbox, allowed)
     if backend.name == "docker":
-        _pick_image(backend, git, change)
+        _pick_image(backend, check)
     return backend
 
 
-def _run_tests(
-    git: Git,
-    change: Change,
-    policy: Policy,
-    selection: Selection,
-    backend,
-    say: Progress,  # type: ignore[no-untyped-def]
-) -> RunResult:
+def _run_tests(check: CheckContext, selection: Selection, backend: Backend) -> RunResult:
     """Materialise the head tree outside the repository and run the selected tests there, in the sandbox."""
     from verifier.testrun import harness as testrun
 
-    say(f"running the tests in the {backend.name} sandbox")
-    judged = tuple(f.path for f in change.files if f.path.endswith(".py") and f.added_lines)
-    return testrun.read_run(testrun.run_revision(git, change.head, policy, selection, backend, judged))
+    check.say(f"running the tests in the {backend.name} sandbox")
+    judged = tuple(f.path for f in check.change.files if f.path.endswith(".py") and f.added_lines)
+    result = testrun.run_revision(check.git, check.change.head, check.policy, selection, backend, judged)
+    return testrun.read_run(result)
 
 
-def _pick_image(backend, git: Git, change: Change) -> None:  # type: ignore[no-untyped-def]
+def _pick_image(backend: Backend, check: CheckContext) -> None:
     """Use the image built for this repository's test dependencies (at base) when there is one."""
     import os
 
@@ -182,13 +201,31 @@ def _pick_image(backend, git: Git, change: Change) -> None:  # type: ignore[no-u
     from verifier.sandbox.images import image_for
 
     if not os.environ.get(IMAGE_ENV):
-        backend.image = image_for(str(git.repo), change.base) or backend.image
+        backend.image = image_for(str(check.git.repo), check.change.base) or backend.image  # type: ignore[attr-defined]
 
 
-def _shown_sources(sources: dict[str, str], provenance: Provenance, findings: list[Finding]) -> dict:
+def _coverage(check: CheckContext, run: RunResult) -> CoverageSummary | None:
+    """Coverage of the machine-written lines; None for a partial run (it would blame the code for what never ran)."""
+    if run.status != "completed":
+        return None
+    from verifier.testrun.measure import summarise_coverage
+
+    policy = check.policy
+    return summarise_coverage(
+        check.provenance.machine_lines,
+        run.coverage,
+        check.head_sources,
+        policy.coverage_threshold,
+        policy.coverage_exclude,
+        threshold_for=lambda path: settings_for_path(policy, path).coverage_threshold,
+    )
+
+
+def _shown_sources(check: CheckContext, findings: list[Finding]) -> dict[str, dict[int, str]]:
     """The machine-written lines a report may quote; a line holding a credential-like literal is never quoted."""
     hidden = {(f.path, f.line) for f in findings if f.rule == "secrets.literal"}
-    shown = {path: _lines(text, provenance.machine_lines.get(path, ())) for path, text in sources.items()}
+    machine = check.provenance.machine_lines
+    shown = {path: _lines(text, machine.get(path, ())) for path, text in check.head_sources.items()}
     for path, line in hidden:
         if path in shown and line in shown[path]:
             shown[path][line] = "<not shown: a credential-like literal (secrets.literal)>"
@@ -207,26 +244,23 @@ def _sandbox_notes(run: RunResult) -> tuple[str, ...]:
 
 
 def _report(
-    change: Change,
-    provenance: Provenance,
-    policy: Policy,
-    run: RunResult | None,
+    check: CheckContext,
     findings: list[Finding],
-    sources: dict[str, str],
+    run: RunResult | None = None,
     coverage: CoverageSummary | None = None,
     notes: tuple[str, ...] = (),
     selection: Selection | None = None,
 ) -> Report:
     return Report(
         verdict=decide(findings),
-        change=change,
-        provenance=provenance,
-        policy_source=policy.source,
+        change=check.change,
+        provenance=check.provenance,
+        policy_source=check.policy.source,
         run=run,
         coverage=coverage,
         findings=tuple(findings),
-        sources=_shown_sources(sources, provenance, findings),
+        sources=_shown_sources(check, findings),
         notes=notes,
-        waivers_used=waivers_used(policy, findings),
+        waivers_used=waivers_used(check.policy, findings),
         selection=selection,
     )

@@ -8,13 +8,17 @@ from dataclasses import replace
 from pathlib import Path
 from typing import TYPE_CHECKING
 
+from verifier.cli.check import add_sandbox_option
+from verifier.cli.choices import AUDIT_FORMATS
+from verifier.cli.output import write_atomically
+
 if TYPE_CHECKING:
     from verifier.audit.build import Audit
 
-FORMATS = ("markdown", "json", "csv", "html")
+NAME = "audit"
 
 
-def add_audit_command(commands: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+def add_command(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     audit = commands.add_parser("audit", help="machine-written commits of a window: verified, blocked, alive")
     audit.add_argument("--since", help="first day of the window, YYYY-MM-DD in UTC (default: 7 days before --until)")
     audit.add_argument("--until", help="last day of the window, YYYY-MM-DD in UTC, included (default: now)")
@@ -45,19 +49,22 @@ def add_audit_command(commands: argparse._SubParsersAction) -> None:  # type: ig
         action="store_true",
         help="run the gate on the unverified machine commits and write their notes first",
     )
+    add_sandbox_option(audit, "with --recheck: where the tests run")
     audit.add_argument(
-        "--sandbox",
-        choices=("auto", "docker", "namespace", "process"),
-        default="auto",
-        help="with --recheck: where the tests run",
+        "--format",
+        action="append",
+        choices=AUDIT_FORMATS,
+        metavar="FORMAT",
+        help="output format: %(choices)s (repeatable)",
     )
-    audit.add_argument("--format", action="append", choices=(*FORMATS, "all"), help="output format (repeatable)")
     audit.add_argument("--output", type=Path, help="write the report here (a folder when several formats)")
     audit.add_argument("--no-cache", action="store_true", help="read every patch again (the cache is in the git dir)")
+    audit.set_defaults(run=run)
 
 
-def run_audit_command(args: argparse.Namespace) -> int:
+def run(args: argparse.Namespace) -> int:
     from verifier.audit.build import AuditRequest, no_cycle_collection, recheck, run_audit
+    from verifier.audit.report import FORMATS
 
     request = AuditRequest(
         since=args.since,
@@ -94,8 +101,7 @@ def _write_reports(audit: Audit, formats: list[str], output: Path | None) -> Non
         [(formats[0], output)] if len(formats) == 1 else [(fmt, output / f"audit.{SUFFIX[fmt]}") for fmt in formats]
     )
     for fmt, target in targets:
-        target.parent.mkdir(parents=True, exist_ok=True)
-        target.write_text(render(audit, fmt), encoding="utf-8")
+        write_atomically(target, render(audit, fmt))
         print(f"verifier: wrote {target}", file=sys.stderr)
 
 

@@ -10,7 +10,8 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
-from verifier.policy.loader import Layer, Located, merge_layers
+from verifier.policy.build import merge_layers
+from verifier.policy.parse import Layer, Located
 
 RULE_DEFAULT = "rule default"
 _SECTIONS = ("version", "coverage", "tests", "limits", "sandbox", "selection")
@@ -51,7 +52,7 @@ def _flatten(prefix: str, value: Any) -> list[Shown]:
 
 
 def _rule_rows(prefix: str, sections: Mapping[str, Any], with_defaults: bool) -> list[Shown]:
-    from verifier.rules import load_all
+    from verifier.rules.catalog import load_all
 
     registry = load_all()
     rows: list[Shown] = []
@@ -113,7 +114,7 @@ def _text(value: Any) -> str:
 
 def render_rules() -> str:
     """One line per rule: id, default setting, stage, summary (``verifier rules``, ``verifier policy rules``)."""
-    from verifier.rules import load_all
+    from verifier.rules.catalog import load_all
 
     rows = [f"{rule.id:<22} {rule.default:<6} {rule.stage:<8} {rule.summary}" for rule in load_all().values()]
     return "\n".join(rows) + "\n"
@@ -121,7 +122,7 @@ def render_rules() -> str:
 
 def render_explain(rule_id: str) -> str | None:
     """What the rule catches, why and how to fix a finding (its explanation), its options and sources."""
-    from verifier.rules import load_all
+    from verifier.rules.catalog import load_all
 
     rule = load_all().get(rule_id)
     if rule is None:

@@ -14,6 +14,9 @@ from typing import Any
 
 from verifier.models import Report, RunResult, to_plain
 
+SUFFIX = "json"  # a report of this format written into a folder is report.json
+FOR_MACHINES = True  # tools read it: alone on stdout
+
 FORMAT_VERSION = 1
 
 
@@ -164,3 +167,7 @@ def error_dict(message: str, exit_code: int) -> dict[str, Any]:
 
 def render(report: Report) -> str:
     return json.dumps(as_dict(report), indent=2, ensure_ascii=False) + "\n"
+
+
+def render_error(message: str, exit_code: int) -> str:
+    return json.dumps(error_dict(message, exit_code), indent=2, ensure_ascii=False) + "\n"

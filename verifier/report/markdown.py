@@ -8,7 +8,10 @@ from __future__ import annotations
 import re
 
 from verifier.models import Finding, Report
-from verifier.report.text import line_spans
+from verifier.report.text import line_spans, printable, waiver_of
+
+SUFFIX = "md"  # a report of this format written into a folder is report.md
+FOR_MACHINES = True  # tools read it: alone on stdout
 
 _HEADLINES = {
     "pass": "PASS: the machine-written change is verified",
@@ -23,7 +26,8 @@ def render(report: Report) -> str:
     parts = [f"## verifier: {_HEADLINES[report.verdict]}", _summary(report)]
     parts += [_file_table(report), _findings(report), _test_details(report), _commits(report)]
     parts += [f"> note: {_inline(note)}" for note in report.notes]
-    return "\n\n".join(part for part in parts if part) + "\n"
+    # test output, code and file names reach a reader's terminal or editor too: no control character passes
+    return printable("\n\n".join(part for part in parts if part) + "\n")
 
 
 def _summary(report: Report) -> str:
@@ -91,7 +95,15 @@ def _findings(report: Report) -> str:
 
 def _finding(finding: Finding, report: Report) -> str:
     where = f" `{_inline(finding.path)}" + (f":{finding.line}" if finding.line else "") + "`" if finding.path else ""
-    text = f"- **{finding.severity.upper()}** `{finding.rule}`{where}: {_inline(finding.message)}"
+    waiver = waiver_of(finding)
+    label = "WAIVED" if waiver else finding.severity.upper()
+    text = f"- **{label}** `{finding.rule}`{where}: {_inline(finding.message)}"
+    if waiver:
+        was = finding.details.get("waived_severity", "block")
+        text += (
+            f" (waived: would {was}; owner {_inline(waiver.get('owner', ''))}, "
+            f"expires {waiver.get('expires')}, `{_inline(waiver.get('source', ''))}`)"
+        )
     excerpt = _excerpt(finding, report)
     if excerpt:
         text += "\n\n" + _indent(excerpt)
@@ -173,3 +185,7 @@ def _cell(text: str) -> str:
 
 def _html(text: str) -> str:
     return text.replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
+
+
+def render_error(message: str, exit_code: int) -> str:
+    return printable(f"## verifier: {_HEADLINES['error']}\n\n{_inline(message)} (exit code {exit_code})\n")

@@ -15,6 +15,9 @@ from urllib.parse import quote
 
 from verifier.models import Finding, Report, RunResult
 
+SUFFIX = "sarif"  # a report of this format written into a folder is report.sarif
+FOR_MACHINES = True  # tools read it: alone on stdout
+
 SCHEMA_URI = "https://docs.oasis-open.org/sarif/sarif/v2.1.0/errata01/os/schemas/sarif-schema-2.1.0.json"
 SARIF_VERSION = "2.1.0"
 SRCROOT = "SRCROOT"
@@ -55,7 +58,7 @@ def as_dict(report: Report) -> dict[str, Any]:
 
 def _rules(findings: tuple[Finding, ...]) -> tuple[list[dict[str, Any]], dict[str, int]]:
     """Every registered rule (so a viewer can explain each), plus any rule id a finding names that is not."""
-    from verifier.rules import load_all
+    from verifier.rules.catalog import load_all
 
     registry = load_all()
     rules = [_rule(rule) for rule in registry.values()]
@@ -166,3 +169,22 @@ def _coverage(report: Report) -> dict[str, Any]:
 
 def render(report: Report) -> str:
     return json.dumps(as_dict(report), indent=2, ensure_ascii=False) + "\n"
+
+
+def render_error(message: str, exit_code: int) -> str:
+    """A SARIF log saying the run did not complete (SARIF 2.1.0, 3.20.14 and 3.58: invocation, notifications)."""
+    from verifier import __version__
+
+    invocation = {
+        "executionSuccessful": False,
+        "exitCode": exit_code,
+        "toolExecutionNotifications": [{"level": "error", "message": {"text": message}}],
+        "properties": {"verdict": "error"},
+    }
+    run = {
+        "tool": {"driver": {"name": "verifier", "version": __version__, "semanticVersion": __version__}},
+        "invocations": [invocation],
+        "results": [],
+        "properties": {"verdict": "error", "error": message},
+    }
+    return json.dumps({"$schema": SCHEMA_URI, "version": SARIF_VERSION, "runs": [run]}, indent=2) + "\n"

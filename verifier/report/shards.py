@@ -17,7 +17,7 @@ from pathlib import Path
 from typing import Any
 
 from verifier.errors import UsageError
-from verifier.models import FileCoverage, Report, RunResult, Selection, TestOutcome
+from verifier.models import FileCoverage, Report, RunResult, RunStatus, Selection, TestOutcome
 
 _STATUS_ORDER = ("timeout", "crashed", "collection-error", "harness-error", "no-tests", "completed")
 
@@ -80,11 +80,11 @@ def joined_run(reports: list[dict[str, Any]]) -> tuple[Selection, RunResult]:
     tests = tuple(_outcome(test) for shard in shards for test in shard["tests"])
     baselines = [shard.get("baseline") for shard in shards]
     baseline = None if any(b is None for b in baselines) else {k: v for b in baselines for k, v in b.items()}
-    status = min((shard["status"] for shard in shards), key=_STATUS_ORDER.index)
+    status: RunStatus = min((shard["status"] for shard in shards), key=_STATUS_ORDER.index)
     if status == "no-tests" and tests:
         status = "completed"  # an empty shard; the others ran the tests
     run = RunResult(
-        status=status,  # type: ignore[arg-type]
+        status=status,
         backend=reports[0].get("sandbox") or "unknown",
         isolation=reports[0].get("isolation") or "",
         pytest_exit=None,

@@ -10,12 +10,20 @@ stage otherwise), not per-test progress.
 from __future__ import annotations
 
 import os
+import re
+import secrets
 import sys
 import threading
 import time
+from collections.abc import Callable
 from typing import TextIO
 
-from verifier.models import Finding, Report
+from verifier.models import Finding, Report, RunResult
+
+Paint = Callable[[str, str], str]  # (style key, text) -> the text, coloured or not
+
+SUFFIX = "txt"  # a report of this format written into a folder is report.txt
+FOR_MACHINES = False  # the view for people: on stderr when a machine format takes stdout
 
 _COLOURS = {"pass": "32", "warn": "33", "block": "31", "error": "35", "info": "36"}
 _LABELS = {
@@ -32,27 +40,54 @@ def wants_colour(stream: TextIO) -> bool:
 
 
 def render(report: Report, colour: bool = False, quiet: bool = False) -> str:
-    paint = _painter(colour)
+    """The report for a person. Everything in it that came from the change or the sandbox (messages, test
+    output, code, file names) is escaped (:func:`printable`): only this function's own colours reach the
+    terminal as control sequences."""
+    marker = secrets.token_hex(8)  # marks our colours; text from the sandbox cannot guess it
+    paint = _painter(marker)
     out = [paint(report.verdict, _LABELS[report.verdict])]
     if quiet:
         out += _coverage(report, paint) if report.verdict != "pass" else []
         out += _findings(report.findings, paint) if report.findings else []
-        return "\n".join(out) + "\n"
-    out.append(_header(report))
-    out += _machine_lines(report)
-    out += _tests(report)
-    out += _coverage(report, paint)
-    out += _findings(report.findings, paint)
-    out += _waivers(report)
-    out += [f"note: {note}" for note in report.notes]
-    return "\n".join(out) + "\n"
+    else:
+        out.append(_header(report))
+        out += _machine_lines(report)
+        out += _tests(report)
+        out += _coverage(report, paint)
+        out += _findings(report.findings, paint)
+        out += _waivers(report)
+        out += [f"note: {note}" for note in report.notes]
+    return _finish("\n".join(out) + "\n", marker, colour)
 
 
-def _painter(colour: bool):  # type: ignore[no-untyped-def]
+def _painter(marker: str) -> Paint:
     def paint(key: str, text: str) -> str:
-        return f"\033[{_COLOURS.get(key, '0')}m{text}\033[0m" if colour else text
+        return f"\x00{marker}{_COLOURS.get(key, '0')}\x00{text}\x00{marker}0\x00"
 
     return paint
+
+
+def _finish(text: str, marker: str, colour: bool) -> str:
+    """Escape every control character of ``text``, then turn our colour marks into colours (or drop them)."""
+    pieces = re.split(f"\x00{marker}(\\d+)\x00", text)
+    out = []
+    for index, piece in enumerate(pieces):
+        if index % 2 == 0:
+            out.append(printable(piece))
+        elif colour:
+            out.append(f"\033[{piece}m")
+    return "".join(out)
+
+
+# C0 controls but newline and tab, DEL, C1 controls, and the bidirectional overrides and isolates that can
+# make code read differently from how it runs (CVE-2021-42574, "Trojan Source")
+_CONTROL = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f\u202a-\u202e\u2066-\u2069]")
+
+
+def printable(text: str) -> str:
+    """``text`` with every control character written as an escape (``\\x1b``, ``\\u202e``): test output and
+    file names cannot move the cursor, recolour or rewrite what the terminal or a reader shows."""
+    return _CONTROL.sub(lambda match: ascii(match.group(0))[1:-1], text)
 
 
 def _header(report: Report) -> str:
@@ -102,7 +137,7 @@ def _selection(report: Report) -> list[str]:
     return rows
 
 
-def _differential(run) -> list[str]:  # type: ignore[no-untyped-def]
+def _differential(run: RunResult) -> list[str]:
     if run.baseline is None:
         return []
     from collections import Counter
@@ -113,7 +148,7 @@ def _differential(run) -> list[str]:  # type: ignore[no-untyped-def]
     return ["against base: " + ", ".join(f"{counts[name]} {name}" for name in CLASSES)]
 
 
-def _coverage(report: Report, paint) -> list[str]:  # type: ignore[no-untyped-def]
+def _coverage(report: Report, paint: Paint) -> list[str]:
     cov = report.coverage
     if cov is None:
         return []
@@ -140,20 +175,42 @@ def _coverage(report: Report, paint) -> list[str]:  # type: ignore[no-untyped-de
     return rows
 
 
-def _findings(findings: tuple[Finding, ...], paint) -> list[str]:  # type: ignore[no-untyped-def]
-    shown = [f for f in findings if not (f.rule == "coverage.new-lines" and f.line is not None)]
-    if not shown:
+def _findings(findings: tuple[Finding, ...], paint: Paint) -> list[str]:
+    """Every finding counted (the same number as the other formats); the uncovered lines are listed once,
+    under coverage, and only counted here."""
+    if not findings:
         return ["findings: none"]
-    rows = [f"findings: {len(shown)}"]
+    shown = [f for f in findings if not (f.rule == "coverage.new-lines" and f.line is not None)]
+    rows = [f"findings: {len(findings)}"]
     for finding in shown:
         where = f" {finding.path}" + (f":{finding.line}" if finding.line else "") if finding.path else ""
         if finding.path and finding.message.startswith(f"{finding.path}::"):
             where = ""  # the message starts with the test's node id, which names the file already
-        rows.append(f"  {paint(finding.severity, finding.severity.upper())} [{finding.rule}]{where} {finding.message}")
+        label = paint(finding.severity, "WAIVED" if waiver_of(finding) else finding.severity.upper())
+        rows.append(f"  {label} [{finding.rule}]{where} {finding.message}{_waived_note(finding)}")
         tail = finding.details.get("output_tail") if finding.details else None
         if tail:
             rows += [f"      {line}" for line in str(tail).strip().splitlines()[-15:]]
+    hidden = len(findings) - len(shown)
+    if hidden:
+        rows.append(f"  {hidden} more [coverage.new-lines]: the uncovered machine-written lines listed above")
     return rows
+
+
+def waiver_of(finding: Finding) -> dict[str, str] | None:
+    """The waiver record a waived finding carries (``details["waived_by"]``), else None."""
+    waiver = finding.details.get("waived_by") if finding.details else None
+    return waiver if isinstance(waiver, dict) else None
+
+
+def _waived_note(finding: Finding) -> str:
+    waiver = waiver_of(finding)
+    if waiver is None:
+        return ""
+    was = finding.details.get("waived_severity", "block")
+    return (
+        f" (waived: would {was}; owner {waiver.get('owner')}, expires {waiver.get('expires')}, {waiver.get('source')})"
+    )
 
 
 def _waivers(report: Report) -> list[str]:
@@ -233,3 +290,7 @@ class StageDisplay:
         end = "\n" if final else ""
         self.stream.write(f"\r\033[2Kverifier: {self._stage} ({elapsed:.1f}s) {mark}{end}")
         self.stream.flush()
+
+
+def render_error(message: str, exit_code: int) -> str:
+    return printable(f"{_LABELS['error']}\n  {message} (exit code {exit_code})\n")

@@ -363,6 +363,7 @@ def effective_entries(context: RuleContext) -> tuple[tuple[Entry, ...], list[str
     stage="static",
     options={"entries": [], "ignore": []},
     sources=_SOURCES,
+    entry_checks={"entries": entry_problems},
 )
 def banned_calls(context: RuleContext) -> Iterator[Finding]:
     """Machine-written Python must not call what turns data into code or commands, or switch a safety

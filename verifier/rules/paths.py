@@ -69,12 +69,18 @@ DEFAULT_PROTECTED: tuple[str, ...] = (
 )
 def protected_paths(context: RuleContext) -> Iterator[Finding]:
     """Some files decide how every other change is built, checked, deployed or migrated: CI
-    configuration, this gate's policy (verifier.yaml, policies/), git hooks, deployment files (Dockerfile,
-    deploy/, k8s/, Terraform), lock files and database migrations. A model must not change them: any
-    machine-written line added or removed there, or a machine commit adding, deleting or renaming such a
-    file, is reported. Have a human make (or re-make) the change in a commit of their own. Teams list
-    more globs in option ``extra`` (or replace the defaults with option ``paths``)."""
-    is_protected = glob_matcher((*option(context, RULE_ID, "paths"), *option(context, RULE_ID, "extra")))
+    configuration, this gate's policy (verifier.yaml, every file it extends, policies/), git hooks,
+    deployment files (Dockerfile, deploy/, k8s/, Terraform), lock files and database migrations. A model
+    must not change them: any machine-written line added or removed there, or a machine commit adding,
+    deleting or renaming such a file, is reported. Have a human make (or re-make) the change in a commit
+    of their own. Teams list more globs in option ``extra`` (or replace the defaults with option
+    ``paths``)."""
+    globs = glob_matcher((*option(context, RULE_ID, "paths"), *option(context, RULE_ID, "extra")))
+    policy_files = frozenset(context.policy.files)  # what the trusted policy builds on, protected like itself
+
+    def is_protected(path: str) -> bool:
+        return path in policy_files or globs(path)
+
     for file in context.change.files:
         names = [p for p in dict.fromkeys((file.path, file.old_path)) if p]
         protected = next((p for p in names if is_protected(p)), None)

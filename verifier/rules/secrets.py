@@ -90,9 +90,19 @@ def find_secrets(
             found.append((f"high-entropy string assigned to '{match.group(1)}'", value))
     return [
         (kind, secret)
-        for kind, secret in found
+        for kind, secret in _one_per_literal(found)
         if not _PLACEHOLDERS.search(secret) and not any(a.search(secret) for a in allowed)
     ]
+
+
+def _one_per_literal(found: list[tuple[str, str]]) -> list[tuple[str, str]]:
+    """One finding per literal: a token of a known shape assigned to ``token = ...`` is found by its shape
+    and again as a high-entropy assignment; the first (the more specific shape) is kept."""
+    kept: list[tuple[str, str]] = []
+    for kind, secret in found:
+        if not any(secret in other or other in secret for _kind, other in kept):
+            kept.append((kind, secret))
+    return kept
 
 
 @rule(

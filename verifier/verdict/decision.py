@@ -1,4 +1,4 @@
-"""The verdict stage: findings become pass, warn, block or error.
+"""The decision: judged findings become pass, warn, block or error, and the verdict an exit code.
 
 A block finding blocks. Otherwise an error (the gate could not verify) makes the verdict ``error``,
 which never counts as a pass. Warnings make ``warn``; anything else passes.
@@ -8,15 +8,26 @@ from __future__ import annotations
 
 from collections.abc import Iterable
 
-from verifier.errors import EXIT_BLOCK, EXIT_PASS, EXIT_UNVERIFIED
+from verifier.errors import ExitCode
 from verifier.models import Finding, Verdict
 
-EXIT_CODES: dict[Verdict, int] = {"pass": EXIT_PASS, "warn": EXIT_PASS, "block": EXIT_BLOCK, "error": EXIT_UNVERIFIED}
+EXIT_CODES: dict[Verdict, ExitCode] = {
+    "pass": ExitCode.PASS,
+    "warn": ExitCode.PASS,
+    "block": ExitCode.BLOCK,
+    "error": ExitCode.UNVERIFIED,
+}
+_BY_WEIGHT: tuple[tuple[str, Verdict], ...] = (("block", "block"), ("error", "error"), ("warn", "warn"))
 
 
 def decide(findings: Iterable[Finding]) -> Verdict:
     severities = {finding.severity for finding in findings}
-    for severity, verdict in (("block", "block"), ("error", "error"), ("warn", "warn")):
+    for severity, verdict in _BY_WEIGHT:
         if severity in severities:
-            return verdict  # type: ignore[return-value]
+            return verdict
     return "pass"
+
+
+def exit_code(verdict: Verdict) -> ExitCode:
+    """The exit code of a check that ended with ``verdict``."""
+    return EXIT_CODES[verdict]

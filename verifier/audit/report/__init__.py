@@ -5,6 +5,10 @@ from __future__ import annotations
 import importlib
 from typing import TYPE_CHECKING
 
+from verifier.audit.report.numbers import percent
+
+__all__ = ["FORMATS", "SUFFIX", "percent", "render"]
+
 if TYPE_CHECKING:  # the CLI imports this package for the subcommand's arguments; the audit itself is lazy
     from verifier.audit.build import Audit
 
@@ -20,7 +24,3 @@ SUFFIX = {"markdown": "md", "json": "json", "csv": "csv", "html": "html"}
 def render(audit: Audit, fmt: str) -> str:
     module_name, function = FORMATS[fmt].split(":")
     return str(getattr(importlib.import_module(module_name), function)(audit))
-
-
-def percent(value: float | None) -> str:
-    return "n/a" if value is None else f"{value:g}%"

@@ -12,7 +12,7 @@ import re
 from html import escape
 
 from verifier.audit.build import Audit, AuditCommit, Group, Period
-from verifier.audit.report import percent
+from verifier.audit.report.numbers import percent
 from verifier.errors import UsageError
 
 _STYLE = """

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from verifier.audit.build import Audit, Group
-from verifier.audit.report import percent
+from verifier.audit.report.numbers import percent
 
 
 def render(audit: Audit) -> str:

@@ -1,0 +1,7 @@
+"""How the audit's reporters write numbers (one place, so that every format says the same)."""
+
+from __future__ import annotations
+
+
+def percent(value: float | None) -> str:
+    return "n/a" if value is None else f"{value:g}%"

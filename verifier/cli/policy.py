@@ -1,0 +1,65 @@
+"""``verifier policy check|show|explain|rules``: validate, show and explain the policy."""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+from verifier.cli.check import add_org_policy_option
+from verifier.cli.rules import show_rules
+from verifier.errors import ExitCode, UsageError
+
+NAME = "policy"
+
+
+def add_command(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    policy = commands.add_parser(NAME, help="check, show and explain the policy")
+    actions = policy.add_subparsers(dest="action", required=True)
+    policy_check = actions.add_parser("check", help="validate a policy file (default: verifier.yaml)")
+    policy_check.add_argument("file", nargs="?", type=Path, default=None)
+    policy_check.set_defaults(run=check_file)
+    policy_show = actions.add_parser("show", help="the effective policy at HEAD, each value with its origin")
+    policy_show.add_argument("--format", choices=("text", "json"), default="text")
+    policy_show.set_defaults(run=show)
+    for action in (policy_check, policy_show):
+        add_org_policy_option(action)
+    explain = actions.add_parser("explain", help="what a rule catches, why, how to fix it")
+    explain.add_argument("rule")
+    explain.set_defaults(run=lambda args: show_rules(args.rule))
+    actions.add_parser("rules", help="list the rules (as 'verifier rules')").set_defaults(
+        run=lambda _args: show_rules(None)
+    )
+
+
+def check_file(args: argparse.Namespace) -> int:
+    """Validate a policy file on disk with the layers below it."""
+    from verifier.gitio import Git
+    from verifier.policy.loader import POLICY_FILE, build_policy, file_layers
+
+    root = Path(args.repo)
+    if Git(root).ok(["rev-parse", "--show-toplevel"]):
+        root = Git(root).toplevel()
+    target = args.file if args.file is not None else root / POLICY_FILE
+    if not target.is_file():
+        raise UsageError(f"no policy file {target}", hint="name one: verifier policy check FILE")
+    policy = build_policy(file_layers(target, root, args.org_policy))
+    print(
+        f"{target}: valid (coverage threshold {policy.coverage_threshold:g}%, "
+        f"wall limit {policy.limits.wall_seconds:g}s, {len(policy.overrides)} override(s), "
+        f"{len(policy.waivers)} waiver(s))"
+    )
+    return ExitCode.PASS
+
+
+def show(args: argparse.Namespace) -> int:
+    """The policy a change on top of the current HEAD would be judged by (HEAD is its base)."""
+    from verifier.gitio import Git
+    from verifier.policy.loader import build_policy, policy_layers
+    from verifier.policy.view import render_show, render_show_json
+
+    git = Git(Git(args.repo).toplevel())
+    base = git.resolve("HEAD") if git.has_commits() else None
+    layers = policy_layers(git, base, args.org_policy)
+    build_policy(layers)  # the same checks as a real run (an expired waiver is an error here too)
+    print(render_show_json(layers) if args.format == "json" else render_show(layers), end="")
+    return ExitCode.PASS
