@@ -12,7 +12,9 @@ from pathlib import Path
 import pytest
 
 from tests.conftest import ROOT, machine
-from verifier.audit.build import AuditRequest, FilePatch, parse_patch, run_audit
+from verifier.audit.build import AuditRequest, run_audit
+from verifier.audit.model import FilePatch
+from verifier.audit.patches import parse_patch
 from verifier.demo.scratch import ScratchRepo
 
 WINDOW = AuditRequest(
@@ -193,7 +195,7 @@ def test_cache_sees_a_new_note_and_survives_damage(tmp_path: Path):
     _note(repo, sha, "pass")  # the notes ref moves on: the cached span must not hide the new note
     assert run_audit(repo.path, window).window.unverified == 0
     cache = Path(repo.git("rev-parse", "--git-common-dir").strip())
-    cache = (cache if cache.is_absolute() else repo.path / cache) / "verifier" / "audit-cache"
+    cache = (cache if cache.is_absolute() else repo.path / cache) / "verifier" / "cache" / "audit"
     files = [f for f in cache.iterdir() if f.suffix == ".bin"]
     assert {f.name.split("-")[0] for f in files} >= {"span", "notes"}
     for damaged in files:
@@ -384,3 +386,27 @@ def test_recheck_runs_the_gate_and_writes_the_note(tmp_path: Path):
     assert report["totals"]["unverified"] == 0 and report["commits"][0]["verdict"] == "pass"
     note = json.loads(repo.git("notes", f"--ref={NOTES}", "show", sha))  # the note git holds now
     assert note["format"] == 1 and note["verdict"] == "pass" and note["commit"] == sha
+
+
+def test_the_audit_reaches_git_only_through_gitio_and_reads_patches_with_the_gate_reader():
+    """No git command line of its own (no Git.run / text / ok, no subprocess) in any audit module, and
+    the patches come from the gate's diff reader with the gate's flags."""
+    import ast
+
+    from verifier.audit import patches
+    from verifier.change import diff
+
+    raw = []
+    for module in sorted((ROOT / "verifier" / "audit").rglob("*.py")):
+        tree = ast.parse(module.read_text())
+        for node in ast.walk(tree):
+            if isinstance(node, ast.Call) and isinstance(node.func, ast.Attribute):
+                receiver = ast.unparse(node.func.value)
+                if node.func.attr in ("run", "text", "ok", "_spawn") and "git" in receiver.lower():
+                    raw.append(f"{module.name}:{node.lineno}")
+            if isinstance(node, (ast.Import, ast.ImportFrom)):
+                names = [a.name for a in node.names] + [getattr(node, "module", None) or ""]
+                if "subprocess" in names:
+                    raw.append(f"{module.name}:{node.lineno} imports subprocess")
+    assert raw == []
+    assert patches.COMMIT_PATCH_ARGS is diff.COMMIT_PATCH_ARGS and patches.read_hunks is diff.read_hunks

@@ -17,8 +17,9 @@ from __future__ import annotations
 import contextlib
 import json
 import os
-import tempfile
 import time
+from collections.abc import Mapping
+from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
@@ -134,13 +135,52 @@ def read_notes(git: Git, ref: str = DEFAULT_REF) -> dict[str, dict[str, Any]]:
     ``{"format": None, "invalid": "<why>", "text": "<the note>"}``: check ``format`` before reading fields."""
     notes: dict[str, dict[str, Any]] = {}
     for sha, text in git.read_notes(ref):
-        try:
-            body = json.loads(text)
-        except ValueError as error:
-            notes[sha] = {"format": None, "invalid": f"not JSON: {error}", "text": text}
-            continue
-        notes[sha] = body if isinstance(body, dict) else {"format": None, "invalid": "not an object", "text": text}
+        body = parse_note(text)
+        notes[sha] = {**body, "text": text} if body.get("format") is None and "invalid" in body else body
     return notes
+
+
+def parse_note(text: str) -> dict[str, Any]:
+    """A note's JSON body; anything but a JSON object comes back as ``{"format": None, "invalid": why}``."""
+    try:
+        body = json.loads(text)
+    except ValueError as error:
+        return {"format": None, "invalid": f"not JSON: {error}"}
+    return body if isinstance(body, dict) else {"format": None, "invalid": "not a JSON object"}
+
+
+def expand_notes_ref(ref: str) -> str:
+    """The full name of a notes ref as git expands ``--notes=<ref>`` and ``--ref=<ref>`` (from memory of
+    git's notes.c): ``refs/notes/X`` stays, ``notes/X`` gains ``refs/``, anything else ``refs/notes/``."""
+    if ref.startswith("refs/notes/"):
+        return ref
+    return f"refs/{ref}" if ref.startswith("notes/") else f"refs/notes/{ref}"
+
+
+@dataclass(frozen=True)
+class NoteRecord:
+    """What the gate's note says about one commit, read defensively."""
+
+    verdict: str | None
+    coverage_percent: float | None
+    findings: tuple[Mapping[str, Any], ...]
+    waivers: tuple[Mapping[str, Any], ...]
+    problem: str | None = None  # why the note cannot be read
+
+
+def note_record(note: Mapping[str, Any] | None) -> NoteRecord | None:
+    """Read a note body defensively; None when there is no note."""
+    if note is None:
+        return None
+    if note.get("format") != 1:
+        why = note.get("invalid") or f"note format {note.get('format')!r} is not 1"
+        return NoteRecord(None, None, (), (), problem=str(why))
+    coverage: Mapping[str, Any] = note["coverage"] if isinstance(note.get("coverage"), Mapping) else {}
+    percent = coverage.get("percent")
+    findings = tuple(f for f in note.get("findings") or () if isinstance(f, Mapping))
+    waivers = tuple(w for w in note.get("waivers") or () if isinstance(w, Mapping))
+    verdict = note.get("verdict") if isinstance(note.get("verdict"), str) else None
+    return NoteRecord(verdict, percent if isinstance(percent, (int, float)) else None, findings, waivers)
 
 
 # -- staged verdicts, waiting for their commit ---------------------------------------------------------
@@ -153,6 +193,8 @@ def state_dir(git: Git) -> Path:
 
 def staged_tree(git: Git, index_file: str | None = None) -> str:
     """The tree the index would commit, computed on a copy so that the user's index is never rewritten."""
+    import tempfile  # only here: the audit imports this module and its warm runs skip tempfile's imports
+
     source = Path(index_file) if index_file else git.git_dir() / "index"
     with tempfile.TemporaryDirectory(prefix="verifier-index-") as scratch:
         copy = Path(scratch) / "index"

@@ -6,7 +6,7 @@ import importlib
 from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:  # the CLI imports this package for the subcommand's arguments; the audit itself is lazy
-    from verifier.audit.build import Audit
+    from verifier.audit.model import Audit
 
 FORMATS = {
     "markdown": "verifier.audit.report.markdown:render",

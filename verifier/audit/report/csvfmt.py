@@ -5,7 +5,7 @@ from __future__ import annotations
 import csv
 import io
 
-from verifier.audit.build import Audit
+from verifier.audit.model import Audit
 
 COLUMNS = (
     "sha",

@@ -11,7 +11,7 @@ import io
 import re
 from html import escape
 
-from verifier.audit.build import Audit, AuditCommit, Group, Period
+from verifier.audit.model import Audit, AuditCommit, Group, Period
 from verifier.audit.report import percent
 from verifier.errors import UsageError
 

@@ -10,7 +10,7 @@ from __future__ import annotations
 import json
 from typing import Any
 
-from verifier.audit.build import FORMAT_VERSION, Audit, AuditCommit, Group, Period
+from verifier.audit.model import FORMAT_VERSION, Audit, AuditCommit, Group, Period
 
 
 def as_dict(audit: Audit) -> dict[str, Any]:

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from verifier.audit.build import Audit, Group
+from verifier.audit.model import Audit, Group
 from verifier.audit.report import percent
 
 
