@@ -385,7 +385,8 @@ def test_recheck_runs_the_gate_and_writes_the_note(tmp_path: Path):
     report = json.loads(after.stdout)
     assert report["totals"]["unverified"] == 0 and report["commits"][0]["verdict"] == "pass"
     note = json.loads(repo.git("notes", f"--ref={NOTES}", "show", sha))  # the note git holds now
-    assert note["format"] == 1 and note["verdict"] == "pass" and note["commit"] == sha
+    assert note["format"] == 2 and note["checks"][-1]["verdict"] == "pass" and note["commit"] == sha
+    assert note["checks"][-1]["how"] == "audit-recheck"
 
 
 def test_the_audit_reaches_git_only_through_gitio_and_reads_patches_with_the_gate_reader():

@@ -103,5 +103,5 @@ def recheck(repo: str | os.PathLike[str], audit: Audit, sandbox: str = "auto", p
         except VerifierError as error:
             problems.append(f"{row.sha[:12]}: {error.message}")
             continue
-        write_notes(git, report, audit.notes_ref)
+        write_notes(git, report, audit.notes_ref, how="audit-recheck")
     return problems

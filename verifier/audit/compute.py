@@ -29,7 +29,7 @@ from verifier.audit.model import (
 )
 from verifier.audit.replay import line_facts
 from verifier.audit.window import iso, parse_iso
-from verifier.report.notes import note_record
+from verifier.report.notes import read_record
 
 VERIFIED_VERDICTS = ("pass", "warn", "block")
 REVERT = re.compile(r"This reverts commit ([0-9a-f]{7,40})")
@@ -95,9 +95,10 @@ def _person(commit: LogCommit) -> str:
 def _row(
     commit: LogCommit, lines: CommitLines, note: Mapping[str, Any] | None, churn_days: int, reverted_by: str | None
 ) -> AuditCommit:
-    record = note_record(note)
-    verified = record is not None and record.problem is None and record.verdict in VERIFIED_VERDICTS
-    verdict = record.verdict if record else None
+    record = read_record(note)
+    newest = record.newest if record else None
+    verified = newest is not None and newest.verdict in VERIFIED_VERDICTS
+    verdict = newest.verdict if newest else None
     status = "unverified" if not verified else "blocked-merged" if verdict == "block" else str(verdict)
     return AuditCommit(
         sha=commit.sha,
@@ -115,9 +116,9 @@ def _row(
         verified=verified,
         status=status,
         verdict=verdict,
-        coverage_percent=record.coverage_percent if record else None,
-        findings=record.findings if record else (),
-        waivers=record.waivers if record else (),
+        coverage_percent=newest.coverage_percent if newest else None,
+        findings=(*newest.findings, *newest.range_findings) if newest else (),
+        waivers=newest.waivers if newest else (),
         note_problem=(record.problem if record else "no note: the gate was skipped or never ran"),
         reverted_by=reverted_by,
     )
