@@ -29,7 +29,7 @@ from verifier.audit.model import (
 )
 from verifier.audit.replay import line_facts
 from verifier.audit.window import iso, parse_iso
-from verifier.report.notes import read_record
+from verifier.report.notes import NoteRecord, read_record
 
 VERIFIED_VERDICTS = ("pass", "warn", "block")
 REVERT = re.compile(r"This reverts commit ([0-9a-f]{7,40})")
@@ -61,7 +61,7 @@ def compute_audit(history: History, settings: Settings | None = None) -> Audit:
         agents=_groups(window_rows, lambda r: r.agent),
         people=_groups(window_rows, lambda r: r.committer),
         findings_by_rule=_finding_counts(window_rows),
-        waivers_by_rule=tuple(Counter(str(w.get("rule")) for r in window_rows for w in r.waivers).most_common()),
+        waivers_by_rule=_waiver_counts(window_rows),
         expiring_waivers=_expiring(history.waivers, history.until, settings.expiry_days),
         reverts=tuple(r for r in reverts if parse_iso(r.date) >= history.since),
         trend=_trend(history, rows, facts, settings.weeks, window),
@@ -97,7 +97,7 @@ def _row(
 ) -> AuditCommit:
     record = read_record(note)
     newest = record.newest if record else None
-    verified = newest is not None and newest.verdict in VERIFIED_VERDICTS
+    verified = newest is not None and not newest.skipped and newest.verdict in VERIFIED_VERDICTS
     verdict = newest.verdict if newest else None
     status = "unverified" if not verified else "blocked-merged" if verdict == "block" else str(verdict)
     return AuditCommit(
@@ -117,11 +117,37 @@ def _row(
         status=status,
         verdict=verdict,
         coverage_percent=newest.coverage_percent if newest else None,
-        findings=(*newest.findings, *newest.range_findings) if newest else (),
+        findings=newest.findings if newest else (),
         waivers=newest.waivers if newest else (),
-        note_problem=(record.problem if record else "no note: the gate was skipped or never ran"),
+        note_problem=_problem(record),
         reverted_by=reverted_by,
+        at_commit=_at_commit(record),
+        checks=len(record.checks) if record else 0,
+        checked_how=newest.how if newest else None,
+        range_findings=newest.range_findings if newest else (),
+        check_key=(str(newest.range_base), str(newest.range_head), newest.checked_at) if newest else (),
     )
+
+
+def _problem(record: NoteRecord | None) -> str | None:
+    if record is None:
+        return "no note: the gate was skipped or never ran"
+    if record.problem is not None:
+        return record.problem
+    newest = record.newest
+    if newest is not None and newest.skipped:
+        return f"the newest check ({newest.how}) was skipped"
+    return None
+
+
+def _at_commit(record: NoteRecord | None) -> str:
+    """Whether the commit hook checked the commit: any entry of it that ran (the newest may be later)."""
+    checks = record.checks if record else ()
+    if any(c.how == "commit-hook" and not c.skipped for c in checks):
+        return "checked"
+    if checks and all(c.how == "unknown" for c in checks):
+        return "unknown"
+    return "skipped"
 
 
 def _period(
@@ -144,6 +170,8 @@ def _period(
         verified=sum(1 for r in mine if r.verified),
         unverified=sum(1 for r in mine if r.status == "unverified"),
         blocked_merged=sum(1 for r in mine if r.status == "blocked-merged"),
+        passed=sum(1 for r in mine if r.passed),
+        skipped_at_commit=sum(1 for r in mine if r.at_commit == "skipped"),
     )
 
 
@@ -178,9 +206,35 @@ def _groups(rows: Sequence[AuditCommit], key: Any) -> tuple[Group, ...]:
     return tuple(sorted(groups, key=lambda g: (-g.machine_lines, g.name)))
 
 
+def _once_per_check(rows: Sequence[AuditCommit]) -> list[Mapping[str, Any]]:
+    """The whole-change facts of the rows' newest checks, each check's once (every commit of a checked
+    range holds a copy)."""
+    seen: set[tuple[str, ...]] = set()
+    facts = []
+    for row in rows:
+        for fact in row.range_findings:
+            identity = (*row.check_key, *(str(fact.get(k)) for k in ("rule", "severity", "path", "line", "message")))
+            if identity not in seen:
+                seen.add(identity)
+                facts.append(fact)
+    return facts
+
+
 def _finding_counts(rows: Sequence[AuditCommit]) -> tuple[tuple[str, str, int], ...]:
-    counts = Counter((str(f.get("rule")), str(f.get("severity"))) for r in rows for f in r.findings)
+    """Findings by rule and severity, each counted once: a commit's own on that commit, a range's once."""
+    findings = [f for r in rows for f in r.findings] + _once_per_check(rows)
+    counts = Counter((str(f.get("rule")), str(f.get("severity"))) for f in findings)
     return tuple((rule, severity, n) for (rule, severity), n in sorted(counts.items(), key=lambda kv: (-kv[1], kv[0])))
+
+
+def _waiver_counts(rows: Sequence[AuditCommit]) -> tuple[tuple[str, int], ...]:
+    """Waivers used, by rule: once per check (a waiver a check used appears on each commit it covered)."""
+    used = {
+        (*r.check_key, *(str(w.get(k)) for k in ("rule", "path", "reason"))): str(w.get("rule"))
+        for r in rows
+        for w in r.waivers
+    }
+    return tuple(Counter(used.values()).most_common())
 
 
 def _expiring(waivers: Sequence[WaiverInfo], until: int, days: int) -> tuple[ExpiringWaiver, ...]:

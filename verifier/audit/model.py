@@ -4,11 +4,16 @@ Everything here is a tuple or a frozen dataclass of plain values; the reading ed
 makes them, the computation (:mod:`.compute`) turns them into an :class:`Audit`, the reporters
 (:mod:`.report`) only format that.
 
-Definitions (also in the report): a commit is in the window when it is reachable from the window-end
-revision (the newest first-parent ancestor of ``--ref`` committed before ``--until``) and its committer
-date is in [since, until). A machine commit is *verified* when it has a readable format-1 note whose
-verdict is pass, warn or block; *blocked-merged* when that verdict is block. A note with verdict error,
-an unreadable note or no note at all leaves the commit *unverified* (fail closed).
+Definitions (also in the reports, :data:`DEFINITIONS`): a commit is in the window when it is reachable
+from the window-end revision (the newest first-parent ancestor of ``--ref`` committed before ``--until``)
+and its committer date is in [since, until). A machine commit's status is read from the newest entry of
+its note (:mod:`verifier.report.notes`, formats 1 and 2). It is *checked* (``verified`` in the data) when
+that entry's verdict on the commit's own lines is pass, warn or block; *passed* when it is pass or warn;
+*blocked-merged* when it is block. An entry with verdict error, a skipped entry, an unreadable note or no
+note at all leaves the commit *unverified* (fail closed). Apart from its status, a commit was *skipped at
+commit time* when no entry of its note comes from a commit hook that ran: a later range check that passed
+it does not hide that. Findings are counted once: a commit's own findings on that commit, the whole
+change's facts once per check.
 """
 
 from __future__ import annotations
@@ -20,6 +25,16 @@ from typing import Any, NamedTuple
 FORMAT_VERSION = 1
 DEFAULT_NOTES_REF = "refs/notes/verifier"
 DAY = 86400
+DEFINITIONS = {
+    "checked": "the gate has a record for the commit: the newest check of its note judged its own lines "
+    "(pass, warn or block)",
+    "passed": "the newest check's verdict on the commit's own lines was pass or warn",
+    "unverified": "no readable gate record, a skipped check, or a check that could not verify (fail closed)",
+    "blocked-merged": "on the branch although the newest check's verdict on its own lines was block",
+    "skipped at commit time": "no check by the commit hook ran on it (skipped, bypassed or not installed), "
+    "whatever a later check found",
+}
+AT_COMMIT = ("checked", "skipped", "unknown")  # unknown: only format-1 notes, which did not say how they ran
 
 
 class FilePatch(NamedTuple):
@@ -123,14 +138,27 @@ class AuditCommit:
     machine_lines: int  # added lines in the mark's scope
     lines_alive: int  # of those, alive at the window's end
     lines_churned: int  # of those, removed within churn_days
-    verified: bool
+    verified: bool  # checked: the newest check judged its own lines (see DEFINITIONS)
     status: str  # unverified | blocked-merged | pass | warn
     verdict: str | None
     coverage_percent: float | None
-    findings: tuple[Mapping[str, Any], ...]
+    findings: tuple[Mapping[str, Any], ...]  # the newest check's findings on the commit's own lines
     waivers: tuple[Mapping[str, Any], ...]
     note_problem: str | None = None
     reverted_by: str | None = None
+    at_commit: str = "skipped"  # one of AT_COMMIT
+    checks: int = 0  # entries in its note
+    checked_how: str | None = None  # how the newest check ran (verifier.report.notes.HOW)
+    range_findings: tuple[Mapping[str, Any], ...] = ()  # the newest check's facts of the whole change
+    check_key: tuple[str, ...] = ()  # which check the newest entry was (range and time): counts its facts once
+
+    @property
+    def checked(self) -> bool:
+        return self.verified
+
+    @property
+    def passed(self) -> bool:
+        return self.verified and self.verdict in ("pass", "warn")
 
 
 @dataclass(frozen=True)
@@ -145,9 +173,11 @@ class Period:
     machine_lines_added: int
     machine_lines_alive: int  # alive at the window's end
     machine_lines_churned: int
-    verified: int
+    verified: int  # checked
     unverified: int
     blocked_merged: int
+    passed: int = 0
+    skipped_at_commit: int = 0
 
     @property
     def machine_share(self) -> float | None:
