@@ -412,3 +412,159 @@ def test_the_audit_reaches_git_only_through_gitio_and_reads_patches_with_the_gat
                     raw.append(f"{module.name}:{node.lineno} imports subprocess")
     assert raw == []
     assert patches.COMMIT_PATCH_ARGS is diff.COMMIT_PATCH_ARGS and patches.read_hunks is diff.read_hunks
+
+
+# -- the record end to end: real hooks, a real push, then the audit -------------------------------------------
+
+LABELS = '"""Parcel labels."""\n\n\ndef label(name):\n    return name.upper()\n'
+TEST_LABELS = 'from parcelkit.labels import label\n\n\ndef test_label():\n    assert label("a") == "A"\n'
+LAUNCH = 'import os\n\n\ndef launch(label):\n    return os.system("lp " + label)\n'  # calls.banned: a shell
+
+
+def _git(cwd: Path, *args: str, env: dict | None = None, message: str | None = None) -> subprocess.CompletedProcess:
+    """A real git command; the hooks it runs find the verifier themselves (no PYTHONPATH)."""
+    import os
+
+    from verifier.demo.scratch import IDENTITY
+
+    clean = {k: v for k, v in os.environ.items() if k not in ("PYTHONPATH", "VERIFIER_SKIP")}
+    return subprocess.run(
+        ["git", *args], cwd=cwd, capture_output=True, text=True, input=message, env={**clean, **IDENTITY, **(env or {})}
+    )
+
+
+def _hooked_repo(tmp_path: Path) -> ScratchRepo:
+    from tests.conftest import test_sandbox
+    from verifier.demo import scenario as demo
+
+    repo = ScratchRepo(tmp_path / "repo")
+    base_files = {"parcelkit/__init__.py": "", "parcelkit/rates.py": demo.RATES, "tests/test_rates.py": demo.TEST_RATES}
+    repo.commit("Start parcelkit", base_files)
+    repo.git("config", "verifier.sandbox", test_sandbox())
+    installed = subprocess.run(
+        [sys.executable, "-m", "verifier", "-C", str(repo.path), "hooks", "install"],
+        capture_output=True,
+        text=True,
+        env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"},
+    )
+    assert installed.returncode == 0, installed.stderr
+    remote = tmp_path / "remote.git"
+    subprocess.run(["git", "init", "-q", "--bare", str(remote)], check=True)
+    repo.git("remote", "add", "origin", str(remote))
+    assert _git(repo.path, "push", "-q", "origin", "main").returncode == 0  # a person's history: nothing to run
+    return repo
+
+
+def _commit_all(repo: ScratchRepo, files: dict[str, str], message: str, *extra: str, env: dict | None = None) -> str:
+    repo.write(files)
+    repo.git("add", "-A")
+    done = _git(repo.path, "commit", "-q", *extra, "-F", "-", env=env, message=message)
+    assert done.returncode == 0, done.stderr
+    return repo.head()
+
+
+def _window() -> AuditRequest:
+    from datetime import date, timedelta
+
+    today = date.today()
+    since, until = (today - timedelta(days=1)).isoformat(), (today + timedelta(days=1)).isoformat()
+    return AuditRequest(since=since, until=until, ref="feature", weeks=0)
+
+
+def test_the_record_through_real_hooks_and_a_push_then_the_audit(tmp_path: Path):
+    """A commit skipped at commit time, a person's commit, a push that passes them; a clean commit checked by
+    the commit hook, a commit with a banned call that bypassed it, and a refused push of the range of both.
+    Then the audit: each commit judged by its own lines, each finding counted once, the skip still shown."""
+    from verifier.demo import scenario as demo
+
+    repo = _hooked_repo(tmp_path)
+    repo.git("checkout", "-q", "-b", "feature")
+    skipped = _commit_all(
+        repo, {"parcelkit/labels.py": LABELS, "tests/test_labels.py": TEST_LABELS}, machine("Labels, in a hurry"),
+        env={"VERIFIER_SKIP": "1"},
+    )  # fmt: skip
+    person = _commit_all(repo, {"README.md": "# parcelkit\n"}, "Readme")
+    first_push = _git(repo.path, "push", "-q", "origin", "feature")
+    assert first_push.returncode == 0, first_push.stderr
+    clean = _commit_all(
+        repo, {"parcelkit/volume.py": demo.VOLUME, "tests/test_volume.py": demo.TEST_VOLUME}, machine("Add volume")
+    )
+    risky = _commit_all(repo, {"parcelkit/launch.py": LAUNCH}, machine("Print labels"), "--no-verify")
+    refused = _git(repo.path, "push", "-q", "origin", "feature")
+    assert refused.returncode != 0 and "calls.banned" in refused.stderr
+
+    def note(sha: str) -> dict:  # the note as git itself shows it
+        return json.loads(repo.git("notes", f"--ref={NOTES}", "show", sha))
+
+    assert [c["how"] for c in note(skipped)["checks"]] == ["pre-push"]
+    assert [(c["how"], c["verdict"]) for c in note(clean)["checks"]] == [("commit-hook", "pass"), ("pre-push", "pass")]
+    assert note(clean)["checks"][-1]["range"]["verdict"] == "block"  # the range blocked, its clean commit did not
+    assert note(risky)["checks"][-1]["verdict"] == "block"
+    assert note(person)["checks"][-1]["verdict"] == "pass" and note(person)["checks"][-1]["machine_lines"] == 0
+
+    audit = run_audit(repo.path, _window())
+    rows = {r.sha: r for r in audit.commits}
+    marked = repo.git("log", "--format=%H", "-E", "--grep=^Model-Written:", "feature").split()  # git's own grep
+    assert set(rows) == set(marked) == {skipped, clean, risky}
+    assert audit.window.commits == int(repo.git("rev-list", "--count", "feature").strip())
+    assert (rows[skipped].status, rows[skipped].at_commit, rows[skipped].checks) == ("pass", "skipped", 1)
+    assert (rows[clean].status, rows[clean].at_commit, rows[clean].checks) == ("pass", "checked", 2)
+    assert (rows[risky].status, rows[risky].at_commit) == ("blocked-merged", "skipped")
+    w = audit.window
+    assert (w.verified, w.passed, w.unverified, w.blocked_merged, w.skipped_at_commit) == (3, 2, 0, 1, 2)
+
+    newest = {sha: note(sha)["checks"][-1] for sha in marked}
+    own = sum(len(entry["findings"]) for entry in newest.values())
+    facts = {json.dumps(f, sort_keys=True) for e in newest.values() for f in e["range"]["findings"]}
+    assert sum(n for _rule, _severity, n in audit.findings_by_rule) == own + len(facts)
+    banned = [n for rule, _severity, n in audit.findings_by_rule if rule == "calls.banned"]
+    shell_lines = repo.git("grep", "-n", "os.system", risky, "--", "parcelkit/").splitlines()  # git grep
+    assert banned == [len(shell_lines)] == [1]
+    assert rows[clean].findings == () and rows[skipped].findings == ()
+
+
+def test_every_format_says_checked_and_passed_apart(tmp_path: Path):
+    repo = _hooked_repo(tmp_path)
+    repo.git("checkout", "-q", "-b", "feature")
+    skipped = _commit_all(
+        repo, {"parcelkit/labels.py": LABELS, "tests/test_labels.py": TEST_LABELS}, machine("Labels, in a hurry"),
+        env={"VERIFIER_SKIP": "1"},
+    )  # fmt: skip
+    assert _git(repo.path, "push", "-q", "origin", "feature").returncode == 0  # the pre-push check passes it
+    risky = _commit_all(repo, {"parcelkit/launch.py": LAUNCH}, machine("Print labels"), "--no-verify")
+    assert _git(repo.path, "push", "-q", "origin", "feature").returncode != 0
+    window = _window()
+    out = tmp_path / "out"
+    done = subprocess.run(
+        [sys.executable, "-m", "verifier", "-C", str(repo.path), "audit", "--ref", "feature", "--since",
+         str(window.since), "--until", str(window.until), "--weeks", "0", "--format", "all", "--output", str(out)],
+        capture_output=True, text=True, env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"},
+    )  # fmt: skip
+    assert done.returncode == 0, done.stderr
+    report = json.loads((out / "audit.json").read_text())
+    assert {k: report["totals"][k] for k in ("checked", "passed", "skipped_at_commit_time", "blocked_merged")} == {
+        "checked": 2,
+        "passed": 1,
+        "skipped_at_commit_time": 2,
+        "blocked_merged": 1,
+    }
+    by_sha = {c["sha"]: c for c in report["commits"]}
+    assert (by_sha[skipped]["checked"], by_sha[skipped]["passed"], by_sha[skipped]["at_commit_time"]) == (
+        True,
+        True,
+        "skipped",
+    )
+    assert (by_sha[risky]["checked"], by_sha[risky]["passed"]) == (True, False)
+    assert {"checked", "passed", "skipped at commit time"} <= set(report["definitions"])
+    rows = {r["sha"]: r for r in csv.DictReader(io.StringIO((out / "audit.csv").read_text()))}  # Python's csv
+    assert (rows[skipped]["checked"], rows[skipped]["passed"], rows[skipped]["at_commit_time"]) == (
+        "yes",
+        "yes",
+        "skipped",
+    )
+    assert (rows[risky]["checked"], rows[risky]["passed"]) == ("yes", "no")
+    summary = (out / "audit.md").read_text()
+    assert "checked by the gate: 2 of 2" in summary and "passed: 1 of 2" in summary
+    assert "2 skipped at commit time" in summary and "**passed**:" in summary
+    page = (out / "audit.html").read_text()
+    assert "skipped at commit time" in page and "<th>passed</th>" in page and "<th>checked</th>" in page
