@@ -247,8 +247,7 @@ def _now() -> str:
 def appended(previous: Mapping[str, Any] | None, commit: str, entry: Mapping[str, Any]) -> dict[str, Any]:
     """The note of ``commit`` after adding ``entry`` to ``previous`` (its current body, parsed; None when
     it has none): earlier entries kept (a format-1 note becomes the first entry, marked ``format_1``), the
-    newest last, at most
-    :data:`MAX_CHECKS`."""
+    newest last, at most :data:`MAX_CHECKS`."""
     earlier: list[Any] = []
     dropped = 0
     kept_text = None
