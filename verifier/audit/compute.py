@@ -6,7 +6,6 @@ No git and no files here: :mod:`.history` read everything, :mod:`.replay` found 
 from __future__ import annotations
 
 import bisect
-import re
 from collections import Counter, defaultdict
 from collections.abc import Mapping, Sequence
 from datetime import date, datetime, timezone
@@ -15,6 +14,7 @@ from typing import Any
 from verifier.audit.authorship import authorship
 from verifier.audit.model import (
     DAY,
+    REVERT,
     Audit,
     AuditCommit,
     CommitLines,
@@ -32,7 +32,6 @@ from verifier.audit.window import iso, parse_iso
 from verifier.report.notes import NoteRecord, read_record
 
 VERIFIED_VERDICTS = ("pass", "warn", "block")
-REVERT = re.compile(r"This reverts commit ([0-9a-f]{7,40})")
 
 
 def compute_audit(history: History, settings: Settings | None = None) -> Audit:

@@ -27,8 +27,7 @@ from pathlib import Path
 from typing import Any
 
 from verifier import cache
-from verifier.audit.compute import REVERT
-from verifier.audit.model import DAY, DEFAULT_NOTES_REF, CommitLines, FilePatch, History, LogCommit, WaiverInfo
+from verifier.audit.model import DAY, DEFAULT_NOTES_REF, REVERT, CommitLines, FilePatch, History, LogCommit, WaiverInfo
 from verifier.audit.patches import patch_keys, read_patches
 from verifier.errors import VerifierError
 from verifier.gitio import Git
@@ -68,7 +67,7 @@ def read_history(
     end = git.newest_first_parent_before(ref_name, until)
     waivers, identities, problems = _policy_facts(git, end, until, use_cache)
     emails = tuple(sorted({e.lower() for e in (*agent_emails, *identities)}))
-    key = hashlib.sha1(f"{code_stamp()}\n{end}\n{span_since}\n{until}\n{chr(10).join(emails)}".encode()).hexdigest()
+    key = cache.key(code_stamp(), str(end), str(span_since), str(until), *emails)
     cached = _load_span(git, key) if use_cache and end is not None else None
     if cached is not None:
         commits, facts, outside = cached
@@ -152,7 +151,7 @@ def _read_notes(git: Git, notes_ref: str, shas: Sequence[str], use_cache: bool) 
     notes_tip = git.commit_or_none(full)
     if not notes_tip:
         return {}
-    span = hashlib.sha1("\n".join([code_stamp(), *shas]).encode()).hexdigest()
+    span = cache.key(code_stamp(), *shas)
     cache_file = cache.folder(git, "audit") / f"notes-{notes_tip}-{span}.bin"
     cached = cache.load_marshal(cache_file) if use_cache else None
     if isinstance(cached, dict):
@@ -263,8 +262,8 @@ def _policy_cache_file(git: Git, end: str | None, day: date) -> Path | None:
         sources = [code.read_bytes(), shipped.read_bytes()]
     except OSError:
         return None
-    key = hashlib.sha1(b"\n".join([f"{code_stamp()}\n{end}\n{day.isoformat()}".encode(), *sources]))
-    return cache.folder(git, "audit") / f"policy-{key.hexdigest()}.bin"
+    key = cache.key(code_stamp(), str(end), day.isoformat(), *sources)
+    return cache.folder(git, "audit") / f"policy-{key}.bin"
 
 
 def _outside_reverts(git: Git, commits: Sequence[LogCommit]) -> dict[str, LogCommit]:

@@ -18,6 +18,7 @@ change's facts once per check.
 
 from __future__ import annotations
 
+import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, NamedTuple
@@ -34,6 +35,7 @@ DEFINITIONS = {
     "skipped at commit time": "no check by the commit hook ran on it (skipped, bypassed or not installed), "
     "whatever a later check found",
 }
+REVERT = re.compile(r"This reverts commit ([0-9a-f]{7,40})")  # the message git revert writes
 AT_COMMIT = ("checked", "skipped", "unknown")  # unknown: only format-1 notes, which did not say how they ran
 
 
