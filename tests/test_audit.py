@@ -568,3 +568,49 @@ def test_every_format_says_checked_and_passed_apart(tmp_path: Path):
     assert "2 skipped at commit time" in summary and "**passed**:" in summary
     page = (out / "audit.html").read_text()
     assert "skipped at commit time" in page and "<th>passed</th>" in page and "<th>checked</th>" in page
+
+
+def _entry(verdict: str, how: str, own=(), facts=(), waivers=(), checked_at="2024-03-06T00:00:00Z", head="") -> dict:
+    scope = {"base": "b", "head": head, "commits": 2, "verdict": "block", "findings": list(facts)}
+    return {"checked_at": checked_at, "how": how, "skipped": False, "verdict": verdict, "findings": list(own),
+            "waivers": list(waivers), "range": scope}  # fmt: skip
+
+
+def test_a_range_fact_and_a_waiver_count_once_and_the_newest_check_decides(tmp_path: Path):
+    from verifier.report import notes
+
+    repo = ScratchRepo(tmp_path / "repo")
+    repo.commit("Start", {"parcelkit/rates.py": _lines("rate", 2)}, date=_date("03-01"))
+    first = repo.commit(machine("Zones"), {"parcelkit/zones.py": _lines("zone", 3)}, date=_date("03-05"))
+    second = repo.commit(machine("Labels"), {"parcelkit/labels.py": _lines("label", 3)}, date=_date("03-05", 13))
+    third = repo.commit(machine("Track"), {"parcelkit/track.py": _lines("track", 2)}, date=_date("03-05", 14))
+    fourth = repo.commit(machine("Util"), {"parcelkit/util.py": _lines("util", 2)}, date=_date("03-05", 15))
+    fact = {"rule": "tests.failing", "severity": "block", "path": "tests/t.py", "line": None, "message": "failed"}
+    own = {"rule": "calls.banned", "severity": "block", "path": "parcelkit/labels.py", "line": 2, "message": "shell"}
+    waiver = {"rule": "tests.failing", "path": "**", "reason": "flaky host", "owner": "ada", "expires": "2024-04-01"}
+    ranged = {"facts": [fact], "waivers": [waiver], "head": second}  # one check of the range first..second
+    bodies = {
+        first: [_entry("pass", "commit-hook", head=first), _entry("block", "pre-push", **ranged)],
+        second: [_entry("block", "pre-push", own=[own], **ranged)],
+        third: [_entry("block", "commit-hook", head=third), _entry("pass", "ci", checked_at="2024-03-07T00:00:00Z")],
+        fourth: [_entry("pass", "commit-hook", head=fourth), notes.skipped_entry("pre-push", "VERIFIER_SKIP was set")],
+    }
+    for sha, entries in bodies.items():
+        body = None
+        for entry in entries:
+            body = notes.appended(body, sha, entry)
+        repo.git("notes", f"--ref={NOTES}", "add", "-m", json.dumps(body), sha)
+    audit = run_audit(repo.path, AuditRequest(since="2024-03-04", until="2024-03-10", weeks=0))
+    rows = {r.sha: r for r in audit.commits}
+    assert (rows[first].status, rows[first].at_commit, rows[first].checks) == ("blocked-merged", "checked", 2)
+    assert rows[second].status == "blocked-merged" and rows[second].findings == (own,)
+    assert (rows[third].status, rows[third].checked_how) == ("pass", "ci")  # the newest check decides
+    assert rows[fourth].status == "unverified" and rows[fourth].at_commit == "checked"  # skipped at push time
+    assert "skipped" in (rows[fourth].note_problem or "")
+    # the failing test of the one range check is recorded on both of its commits: counted once; the banned
+    # call on the second commit's line once
+    assert dict(((r, s), n) for r, s, n in audit.findings_by_rule) == {
+        ("calls.banned", "block"): 1,
+        ("tests.failing", "block"): 1,
+    }
+    assert audit.waivers_by_rule == (("tests.failing", 1),)

@@ -11,6 +11,7 @@ from conftest import machine, run_check
 from verifier.demo import scenario as demo
 from verifier.demo.scratch import ScratchRepo
 from verifier.gitio import Git
+from verifier.models import Report
 from verifier.report import notes
 
 BASE_FILES = {"parcelkit/__init__.py": "", "parcelkit/rates.py": demo.RATES, "tests/test_rates.py": demo.TEST_RATES}
@@ -234,3 +235,54 @@ def test_an_unreadable_note_is_kept_when_a_check_is_added(repo: ScratchRepo) -> 
     notes.record_skipped(Git(repo.path), [sha], "commit-hook", "VERIFIER_SKIP was set")
     body = shown(repo, sha)
     assert body["unreadable_earlier_note"].startswith("hand-written") and body["checks"][0]["skipped"] is True
+
+
+# -- the per-commit split, on data ----------------------------------------------------------------------
+
+
+def _report(findings: list, waivers: tuple = ()) -> Report:
+    from verifier.models import Change, Commit, MachineMark, Provenance, Report
+
+    commits = tuple(Commit(sha, (), "a", "c", "m") for sha in ("A", "H", "B"))
+    provenance = Provenance(
+        machine_lines={"pk/a.py": (1, 3)},
+        line_commits={"pk/a.py": {1: "A", 2: "H", 3: "B"}},
+        marks={"A": MachineMark(demo.AGENT), "B": MachineMark(demo.AGENT)},
+    )
+    change = Change("base..B", "range", "base", "B", commits, ())
+    return Report("block", change, provenance, "verifier.yaml", None, None, tuple(findings), waivers_used=waivers)
+
+
+def test_findings_go_to_the_commit_of_their_line_and_the_rest_to_the_range() -> None:
+    from verifier.models import Finding, Waiver
+
+    waiver = Waiver("calls.banned", "pk/**", "vendored", "ada", "2099-01-01", source="verifier.yaml:7")
+    waived = {"waived_by": {"source": "verifier.yaml:7"}}
+    findings = [
+        Finding("calls.banned", "info", "a shell, waived", "pk/a.py", 1, waived),
+        Finding("coverage.new-lines", "block", "never executed", "pk/a.py", 3),
+        Finding("coverage.new-lines", "block", "1 of 2 lines executed"),  # sums up the located ones: B's
+        Finding("tests.failing", "block", "tests/test_a.py::test_x failed", "tests/test_a.py"),  # the range's
+        Finding("weakened.tests", "block", "assert removed", "tests/test_a.py", 9),  # a line no commit introduced
+    ]
+    report = _report(findings, (waiver,))
+    a_own, a_range = notes.split_findings(report, "A")
+    assert a_own == findings[:1] and a_range == findings[3:]
+    b_own, _ = notes.split_findings(report, "B")
+    assert b_own == findings[1:3]
+    entry_a = notes.check_entry(report, "A", "by-hand")
+    assert entry_a["verdict"] == "block"  # its own finding is waived, the failing test of the range blocks it
+    assert [w["rule"] for w in entry_a["waivers"]] == ["calls.banned"]
+    assert [f["rule"] for f in entry_a["range"]["findings"]] == ["tests.failing", "weakened.tests"]
+    assert notes.check_entry(report, "B", "by-hand")["waivers"] == []
+    person = notes.check_entry(report, "H", "by-hand")  # a person's commit: no machine lines, never block
+    assert (person["verdict"], person["findings"], person["machine_lines"]) == ("pass", [], 0)
+    assert person["range"]["verdict"] == "block"
+
+
+def test_an_entry_keeps_a_bounded_number_of_findings() -> None:
+    from verifier.models import Finding
+
+    many = [Finding("secrets.literal", "block", "a key", "pk/a.py", 1) for _ in range(notes.MAX_FINDINGS + 50)]
+    entry = notes.check_entry(_report(many), "A", "pre-push")
+    assert len(entry["findings"]) == notes.MAX_FINDINGS and entry["findings_left_out"] == 50
