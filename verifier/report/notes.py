@@ -42,7 +42,7 @@ import contextlib
 import json
 import os
 import time
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -189,7 +189,7 @@ def split_findings(report: Report, commit: str) -> tuple[list[Finding], list[Fin
     return own, range_facts
 
 
-def _owners(report: Report) -> Any:
+def _owners(report: Report) -> Callable[[Finding], str | None]:
     line_commits = report.provenance.line_commits
     in_change = {c.sha for c in report.change.commits}
 
@@ -299,7 +299,8 @@ def add_entries(git: Git, entries: Mapping[str, Mapping[str, Any]], ref: str = D
 
 
 def _current_notes(git: Git, ref: str, shas: Sequence[str]) -> dict[str, dict[str, Any]]:
-    blob_of = {sha: blob for sha, blob in git.note_blobs(ref).items() if sha in set(shas)}
+    wanted = set(shas)
+    blob_of = {sha: blob for sha, blob in git.note_blobs(ref).items() if sha in wanted}
     blobs = git.read_blobs(sorted(set(blob_of.values())))
     found = {}
     for sha, blob in blob_of.items():
