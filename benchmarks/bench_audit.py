@@ -159,12 +159,12 @@ def main() -> int:
             subprocess.run(cli, check=True, stderr=subprocess.DEVNULL, cwd=ROOT)
 
         def notes_again() -> None:
-            for cached in (repo / ".git" / "verifier" / "audit-cache").glob("notes-*"):
+            for cached in (repo / ".git" / "verifier" / "cache" / "audit").glob("notes-*"):
                 cached.unlink()
             run_audit(repo, request)
 
         def new_span() -> None:
-            for cached in (repo / ".git" / "verifier" / "audit-cache").glob("span-*"):
+            for cached in (repo / ".git" / "verifier" / "cache" / "audit").glob("span-*"):
                 cached.unlink()
             run_audit(repo, request)
 

@@ -12,7 +12,9 @@ from pathlib import Path
 import pytest
 
 from tests.conftest import ROOT, machine
-from verifier.audit.build import AuditRequest, FilePatch, parse_patch, run_audit
+from verifier.audit.build import AuditRequest, run_audit
+from verifier.audit.model import FilePatch
+from verifier.audit.patches import parse_patch
 from verifier.demo.scratch import ScratchRepo
 
 WINDOW = AuditRequest(
@@ -193,7 +195,7 @@ def test_cache_sees_a_new_note_and_survives_damage(tmp_path: Path):
     _note(repo, sha, "pass")  # the notes ref moves on: the cached span must not hide the new note
     assert run_audit(repo.path, window).window.unverified == 0
     cache = Path(repo.git("rev-parse", "--git-common-dir").strip())
-    cache = (cache if cache.is_absolute() else repo.path / cache) / "verifier" / "audit-cache"
+    cache = (cache if cache.is_absolute() else repo.path / cache) / "verifier" / "cache" / "audit"
     files = [f for f in cache.iterdir() if f.suffix == ".bin"]
     assert {f.name.split("-")[0] for f in files} >= {"span", "notes"}
     for damaged in files:
@@ -236,7 +238,8 @@ def test_json_text_is_what_the_json_module_writes(history):
     from verifier.audit.report.jsonfmt import as_dict
 
     audit = run_audit(repo_path(history), WINDOW)
-    assert audit.commits and any(c.findings for c in audit.commits)
+    # format-1 notes (written by _note) copied the whole change's findings onto each commit: range findings
+    assert audit.commits and any(c.findings or c.range_findings for c in audit.commits)
     # the reference layout is Python's own json.dumps with indent=2 (docs.python.org, json.dumps)
     assert render(audit, "json") == json.dumps(as_dict(audit), indent=2) + "\n"
 
@@ -383,4 +386,231 @@ def test_recheck_runs_the_gate_and_writes_the_note(tmp_path: Path):
     report = json.loads(after.stdout)
     assert report["totals"]["unverified"] == 0 and report["commits"][0]["verdict"] == "pass"
     note = json.loads(repo.git("notes", f"--ref={NOTES}", "show", sha))  # the note git holds now
-    assert note["format"] == 1 and note["verdict"] == "pass" and note["commit"] == sha
+    assert note["format"] == 2 and note["checks"][-1]["verdict"] == "pass" and note["commit"] == sha
+    assert note["checks"][-1]["how"] == "audit-recheck"
+
+
+def test_the_audit_reaches_git_only_through_gitio_and_reads_patches_with_the_gate_reader():
+    """No git command line of its own (no Git.run / text / ok, no subprocess) in any audit module, and
+    the patches come from the gate's diff reader with the gate's flags."""
+    import ast
+
+    from verifier.audit import patches
+    from verifier.change import diff
+
+    raw = []
+    for module in sorted((ROOT / "verifier" / "audit").rglob("*.py")):
+        tree = ast.parse(module.read_text())
+        for node in ast.walk(tree):
+            if isinstance(node, ast.Call) and isinstance(node.func, ast.Attribute):
+                receiver = ast.unparse(node.func.value)
+                if node.func.attr in ("run", "text", "ok", "_spawn") and "git" in receiver.lower():
+                    raw.append(f"{module.name}:{node.lineno}")
+            if isinstance(node, (ast.Import, ast.ImportFrom)):
+                names = [a.name for a in node.names] + [getattr(node, "module", None) or ""]
+                if "subprocess" in names:
+                    raw.append(f"{module.name}:{node.lineno} imports subprocess")
+    assert raw == []
+    assert patches.COMMIT_PATCH_ARGS is diff.COMMIT_PATCH_ARGS and patches.read_hunks is diff.read_hunks
+
+
+# -- the record end to end: real hooks, a real push, then the audit -------------------------------------------
+
+LABELS = '"""Parcel labels."""\n\n\ndef label(name):\n    return name.upper()\n'
+TEST_LABELS = 'from parcelkit.labels import label\n\n\ndef test_label():\n    assert label("a") == "A"\n'
+LAUNCH = 'import os\n\n\ndef launch(label):\n    return os.system("lp " + label)\n'  # calls.banned: a shell
+
+
+def _git(cwd: Path, *args: str, env: dict | None = None, message: str | None = None) -> subprocess.CompletedProcess:
+    """A real git command; the hooks it runs find the verifier themselves (no PYTHONPATH)."""
+    import os
+
+    from verifier.demo.scratch import IDENTITY
+
+    clean = {k: v for k, v in os.environ.items() if k not in ("PYTHONPATH", "VERIFIER_SKIP")}
+    return subprocess.run(
+        ["git", *args], cwd=cwd, capture_output=True, text=True, input=message, env={**clean, **IDENTITY, **(env or {})}
+    )
+
+
+def _hooked_repo(tmp_path: Path) -> ScratchRepo:
+    from tests.conftest import test_sandbox
+    from verifier.demo import scenario as demo
+
+    repo = ScratchRepo(tmp_path / "repo")
+    base_files = {"parcelkit/__init__.py": "", "parcelkit/rates.py": demo.RATES, "tests/test_rates.py": demo.TEST_RATES}
+    repo.commit("Start parcelkit", base_files)
+    repo.git("config", "verifier.sandbox", test_sandbox())
+    installed = subprocess.run(
+        [sys.executable, "-m", "verifier", "-C", str(repo.path), "hooks", "install"],
+        capture_output=True,
+        text=True,
+        env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"},
+    )
+    assert installed.returncode == 0, installed.stderr
+    remote = tmp_path / "remote.git"
+    subprocess.run(["git", "init", "-q", "--bare", str(remote)], check=True)
+    repo.git("remote", "add", "origin", str(remote))
+    assert _git(repo.path, "push", "-q", "origin", "main").returncode == 0  # a person's history: nothing to run
+    return repo
+
+
+def _commit_all(repo: ScratchRepo, files: dict[str, str], message: str, *extra: str, env: dict | None = None) -> str:
+    repo.write(files)
+    repo.git("add", "-A")
+    done = _git(repo.path, "commit", "-q", *extra, "-F", "-", env=env, message=message)
+    assert done.returncode == 0, done.stderr
+    return repo.head()
+
+
+def _window() -> AuditRequest:
+    from datetime import date, timedelta
+
+    today = date.today()
+    since, until = (today - timedelta(days=1)).isoformat(), (today + timedelta(days=1)).isoformat()
+    return AuditRequest(since=since, until=until, ref="feature", weeks=0)
+
+
+def test_the_record_through_real_hooks_and_a_push_then_the_audit(tmp_path: Path):
+    """A commit skipped at commit time, a person's commit, a push that passes them; a clean commit checked by
+    the commit hook, a commit with a banned call that bypassed it, and a refused push of the range of both.
+    Then the audit: each commit judged by its own lines, each finding counted once, the skip still shown."""
+    from verifier.demo import scenario as demo
+
+    repo = _hooked_repo(tmp_path)
+    repo.git("checkout", "-q", "-b", "feature")
+    skipped = _commit_all(
+        repo, {"parcelkit/labels.py": LABELS, "tests/test_labels.py": TEST_LABELS}, machine("Labels, in a hurry"),
+        env={"VERIFIER_SKIP": "1"},
+    )  # fmt: skip
+    person = _commit_all(repo, {"README.md": "# parcelkit\n"}, "Readme")
+    first_push = _git(repo.path, "push", "-q", "origin", "feature")
+    assert first_push.returncode == 0, first_push.stderr
+    clean = _commit_all(
+        repo, {"parcelkit/volume.py": demo.VOLUME, "tests/test_volume.py": demo.TEST_VOLUME}, machine("Add volume")
+    )
+    risky = _commit_all(repo, {"parcelkit/launch.py": LAUNCH}, machine("Print labels"), "--no-verify")
+    refused = _git(repo.path, "push", "-q", "origin", "feature")
+    assert refused.returncode != 0 and "calls.banned" in refused.stderr
+
+    def note(sha: str) -> dict:  # the note as git itself shows it
+        return json.loads(repo.git("notes", f"--ref={NOTES}", "show", sha))
+
+    assert [c["how"] for c in note(skipped)["checks"]] == ["pre-push"]
+    assert [(c["how"], c["verdict"]) for c in note(clean)["checks"]] == [("commit-hook", "pass"), ("pre-push", "pass")]
+    assert note(clean)["checks"][-1]["range"]["verdict"] == "block"  # the range blocked, its clean commit did not
+    assert note(risky)["checks"][-1]["verdict"] == "block"
+    assert note(person)["checks"][-1]["verdict"] == "pass" and note(person)["checks"][-1]["machine_lines"] == 0
+
+    audit = run_audit(repo.path, _window())
+    rows = {r.sha: r for r in audit.commits}
+    marked = repo.git("log", "--format=%H", "-E", "--grep=^Model-Written:", "feature").split()  # git's own grep
+    assert set(rows) == set(marked) == {skipped, clean, risky}
+    assert audit.window.commits == int(repo.git("rev-list", "--count", "feature").strip())
+    assert (rows[skipped].status, rows[skipped].at_commit, rows[skipped].checks) == ("pass", "skipped", 1)
+    assert (rows[clean].status, rows[clean].at_commit, rows[clean].checks) == ("pass", "checked", 2)
+    assert (rows[risky].status, rows[risky].at_commit) == ("blocked-merged", "skipped")
+    w = audit.window
+    assert (w.verified, w.passed, w.unverified, w.blocked_merged, w.skipped_at_commit) == (3, 2, 0, 1, 2)
+
+    newest = {sha: note(sha)["checks"][-1] for sha in marked}
+    own = sum(len(entry["findings"]) for entry in newest.values())
+    facts = {json.dumps(f, sort_keys=True) for e in newest.values() for f in e["range"]["findings"]}
+    assert sum(n for _rule, _severity, n in audit.findings_by_rule) == own + len(facts)
+    banned = [n for rule, _severity, n in audit.findings_by_rule if rule == "calls.banned"]
+    shell_lines = repo.git("grep", "-n", "os.system", risky, "--", "parcelkit/").splitlines()  # git grep
+    assert banned == [len(shell_lines)] == [1]
+    assert rows[clean].findings == () and rows[skipped].findings == ()
+
+
+def test_every_format_says_checked_and_passed_apart(tmp_path: Path):
+    repo = _hooked_repo(tmp_path)
+    repo.git("checkout", "-q", "-b", "feature")
+    skipped = _commit_all(
+        repo, {"parcelkit/labels.py": LABELS, "tests/test_labels.py": TEST_LABELS}, machine("Labels, in a hurry"),
+        env={"VERIFIER_SKIP": "1"},
+    )  # fmt: skip
+    assert _git(repo.path, "push", "-q", "origin", "feature").returncode == 0  # the pre-push check passes it
+    risky = _commit_all(repo, {"parcelkit/launch.py": LAUNCH}, machine("Print labels"), "--no-verify")
+    assert _git(repo.path, "push", "-q", "origin", "feature").returncode != 0
+    window = _window()
+    out = tmp_path / "out"
+    done = subprocess.run(
+        [sys.executable, "-m", "verifier", "-C", str(repo.path), "audit", "--ref", "feature", "--since",
+         str(window.since), "--until", str(window.until), "--weeks", "0", "--format", "all", "--output", str(out)],
+        capture_output=True, text=True, env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"},
+    )  # fmt: skip
+    assert done.returncode == 0, done.stderr
+    report = json.loads((out / "audit.json").read_text())
+    assert {k: report["totals"][k] for k in ("checked", "passed", "skipped_at_commit_time", "blocked_merged")} == {
+        "checked": 2,
+        "passed": 1,
+        "skipped_at_commit_time": 2,
+        "blocked_merged": 1,
+    }
+    by_sha = {c["sha"]: c for c in report["commits"]}
+    assert (by_sha[skipped]["checked"], by_sha[skipped]["passed"], by_sha[skipped]["at_commit_time"]) == (
+        True,
+        True,
+        "skipped",
+    )
+    assert (by_sha[risky]["checked"], by_sha[risky]["passed"]) == (True, False)
+    assert {"checked", "passed", "skipped at commit time"} <= set(report["definitions"])
+    rows = {r["sha"]: r for r in csv.DictReader(io.StringIO((out / "audit.csv").read_text()))}  # Python's csv
+    assert (rows[skipped]["checked"], rows[skipped]["passed"], rows[skipped]["at_commit_time"]) == (
+        "yes",
+        "yes",
+        "skipped",
+    )
+    assert (rows[risky]["checked"], rows[risky]["passed"]) == ("yes", "no")
+    summary = (out / "audit.md").read_text()
+    assert "checked by the gate: 2 of 2" in summary and "passed: 1 of 2" in summary
+    assert "2 skipped at commit time" in summary and "**passed**:" in summary
+    page = (out / "audit.html").read_text()
+    assert "skipped at commit time" in page and "<th>passed</th>" in page and "<th>checked</th>" in page
+
+
+def _entry(verdict: str, how: str, own=(), facts=(), waivers=(), checked_at="2024-03-06T00:00:00Z", head="") -> dict:
+    scope = {"base": "b", "head": head, "commits": 2, "verdict": "block", "findings": list(facts)}
+    return {"checked_at": checked_at, "how": how, "skipped": False, "verdict": verdict, "findings": list(own),
+            "waivers": list(waivers), "range": scope}  # fmt: skip
+
+
+def test_a_range_fact_and_a_waiver_count_once_and_the_newest_check_decides(tmp_path: Path):
+    from verifier.report import notes
+
+    repo = ScratchRepo(tmp_path / "repo")
+    repo.commit("Start", {"parcelkit/rates.py": _lines("rate", 2)}, date=_date("03-01"))
+    first = repo.commit(machine("Zones"), {"parcelkit/zones.py": _lines("zone", 3)}, date=_date("03-05"))
+    second = repo.commit(machine("Labels"), {"parcelkit/labels.py": _lines("label", 3)}, date=_date("03-05", 13))
+    third = repo.commit(machine("Track"), {"parcelkit/track.py": _lines("track", 2)}, date=_date("03-05", 14))
+    fourth = repo.commit(machine("Util"), {"parcelkit/util.py": _lines("util", 2)}, date=_date("03-05", 15))
+    fact = {"rule": "tests.failing", "severity": "block", "path": "tests/t.py", "line": None, "message": "failed"}
+    own = {"rule": "calls.banned", "severity": "block", "path": "parcelkit/labels.py", "line": 2, "message": "shell"}
+    waiver = {"rule": "tests.failing", "path": "**", "reason": "flaky host", "owner": "ada", "expires": "2024-04-01"}
+    ranged = {"facts": [fact], "waivers": [waiver], "head": second}  # one check of the range first..second
+    bodies = {
+        first: [_entry("pass", "commit-hook", head=first), _entry("block", "pre-push", **ranged)],
+        second: [_entry("block", "pre-push", own=[own], **ranged)],
+        third: [_entry("block", "commit-hook", head=third), _entry("pass", "ci", checked_at="2024-03-07T00:00:00Z")],
+        fourth: [_entry("pass", "commit-hook", head=fourth), notes.skipped_entry("pre-push", "VERIFIER_SKIP was set")],
+    }
+    for sha, entries in bodies.items():
+        body = None
+        for entry in entries:
+            body = notes.appended(body, sha, entry)
+        repo.git("notes", f"--ref={NOTES}", "add", "-m", json.dumps(body), sha)
+    audit = run_audit(repo.path, AuditRequest(since="2024-03-04", until="2024-03-10", weeks=0))
+    rows = {r.sha: r for r in audit.commits}
+    assert (rows[first].status, rows[first].at_commit, rows[first].checks) == ("blocked-merged", "checked", 2)
+    assert rows[second].status == "blocked-merged" and rows[second].findings == (own,)
+    assert (rows[third].status, rows[third].checked_how) == ("pass", "ci")  # the newest check decides
+    assert rows[fourth].status == "unverified" and rows[fourth].at_commit == "checked"  # skipped at push time
+    assert "skipped" in (rows[fourth].note_problem or "")
+    # the failing test of the one range check is recorded on both of its commits: counted once; the banned
+    # call on the second commit's line once
+    assert dict(((r, s), n) for r, s, n in audit.findings_by_rule) == {
+        ("calls.banned", "block"): 1,
+        ("tests.failing", "block"): 1,
+    }
+    assert audit.waivers_by_rule == (("tests.failing", 1),)

@@ -19,7 +19,7 @@ from verifier.demo import scenario as demo
 from verifier.demo.scratch import IDENTITY, ScratchRepo
 from verifier.gitio import Git
 from verifier.integration import hooks
-from verifier.report.notes import read_notes
+from verifier.report.notes import latest_check, read_notes
 
 BASE_FILES = {"parcelkit/__init__.py": "", "parcelkit/rates.py": demo.RATES, "tests/test_rates.py": demo.TEST_RATES}
 NOTES_REF = "refs/notes/verifier"
@@ -53,7 +53,8 @@ def commit(cwd: Path, message: str, *extra: str, env: dict | None = None) -> sub
 
 
 def notes_of(cwd: Path) -> dict[str, dict]:
-    return read_notes(Git(cwd), NOTES_REF)
+    """Each commit's newest check, as the note holds it (format 2 keeps one entry per check)."""
+    return {sha: latest_check(body) or body for sha, body in read_notes(Git(cwd), NOTES_REF).items()}
 
 
 def hooked(path: Path) -> ScratchRepo:
@@ -97,7 +98,10 @@ def test_blocked_commit_changes_nothing_and_the_saved_message_is_reusable(hrepo:
     assert hrepo.git("log", "-1", "--format=%B", head).strip() == message.strip()
     note = notes_of(hrepo.path)[head]
     assert note["verdict"] == "pass" and note["commit"] == head and note["agent"] == demo.AGENT
-    assert note["range"] == {"base": hrepo.git("rev-parse", "HEAD~1").strip(), "head": head}
+    assert {k: note["range"][k] for k in ("base", "head")} == {
+        "base": hrepo.git("rev-parse", "HEAD~1").strip(),
+        "head": head,
+    }
     assert note["tests"]["run"] >= 1 and note["tests"]["failed"] == 0 and note["coverage"]["percent"] == 100.0
 
 

@@ -11,6 +11,7 @@ import subprocess
 import tarfile
 from collections.abc import Iterator, Sequence
 from pathlib import Path
+from typing import Any
 
 from verifier.errors import GitError, UsageError
 from verifier.models import Commit
@@ -32,6 +33,7 @@ class Git:
             self._env.pop(leaking, None)
         if index_file:
             self._env["GIT_INDEX_FILE"] = index_file
+        self._common_dir: Path | None = None  # asked once per object: it never changes
 
     def _spawn(self, args: Sequence[str], input: bytes | None = None) -> subprocess.CompletedProcess[bytes]:
         try:
@@ -69,7 +71,24 @@ class Git:
         return Path(self.text(["rev-parse", "--absolute-git-dir"]))
 
     def common_dir(self) -> Path:
-        return (self.repo / self.text(["rev-parse", "--git-common-dir"])).resolve()
+        if self._common_dir is None:
+            self._common_dir = (self.repo / self.text(["rev-parse", "--git-common-dir"])).resolve()
+        return self._common_dir
+
+    def located(self) -> Git:
+        """A Git at the top of this working tree, its common dir already known: one git call for both
+        (a folder that is not a repository, or has no working tree, is reported as :meth:`toplevel` does)."""
+        found = self.run(["rev-parse", "--show-toplevel", "--git-common-dir"], check=False)
+        lines = found.decode("utf-8", "surrogateescape").splitlines()
+        if len(lines) != 2 or not lines[0]:
+            return Git(self.toplevel(), self.index_file)
+        top = Git(lines[0], self.index_file)
+        top._common_dir = (self.repo / lines[1]).resolve()
+        return top
+
+    def current_branch(self) -> str | None:
+        """The short name of the checked-out branch; None on a detached HEAD."""
+        return self.run(["symbolic-ref", "-q", "--short", "HEAD"], check=False).decode().strip() or None
 
     def has_commits(self) -> bool:
         return self.ok(["rev-parse", "--verify", "--quiet", "HEAD^{commit}"])
@@ -135,6 +154,40 @@ class Git:
                 touched[current].append(field.lstrip("\n"))
         return touched
 
+    def commit_or_none(self, rev: str) -> str | None:
+        """The commit ``rev`` names (a ref that may not exist yet, such as a notes ref), else None."""
+        out = self.run(["rev-parse", "-q", "--verify", "--end-of-options", f"{rev}^{{commit}}"], check=False)
+        return out.decode().strip() or None
+
+    def newest_first_parent_before(self, rev: str, until: int) -> str | None:
+        """The newest commit on the first-parent line of ``rev`` committed before ``until`` (epoch
+        seconds, exclusive); None when there is none. A ``rev`` that is not a commit is a usage error."""
+        ask = ["rev-list", "-1", "--first-parent", f"--until=@{until - 1}"]
+        out = self.run([*ask, "--end-of-options", f"{rev}^{{commit}}", "--"], check=False)
+        if not out.strip():
+            out = self.run([*ask, self.resolve(rev)])
+        return out.decode().strip() or None
+
+    def log_span(self, end: str, since: int, until: int, notes_ref: str, fmt: str) -> bytes:
+        """``git log`` of ``end``'s history committed in [since, until) (git's own bounds are inclusive and
+        its walk may overshoot: check each commit's date), parents before children, in ``fmt`` with
+        ``%N`` reading ``notes_ref``."""
+        window = [f"--since=@{since}", f"--until=@{until - 1}"]
+        return self.run(
+            ["log", "--topo-order", "--reverse", f"--notes={notes_ref}", *window, f"--format={fmt}", end, "--"]
+        )
+
+    def log_named(self, names: Sequence[str], fmt: str) -> bytes:
+        """``git log`` of exactly the commits ``names`` (full or abbreviated), in ``fmt``; unknown names are
+        left out."""
+        args = ["log", "--no-walk=unsorted", "--ignore-missing", f"--format={fmt}", "--stdin"]
+        return self.run(args, input="".join(f"{name}\n" for name in names).encode(), check=False)
+
+    def diff_commits(self, diff_args: Sequence[str], lines: Sequence[str]) -> bytes:
+        """``git <diff_args>`` reading ``lines`` on its standard input (``diff-tree --stdin``: a commit, or
+        ``commit parent``, per line); the diff's flags are :mod:`verifier.change.diff`'s."""
+        return self.run(diff_args, input="".join(f"{line}\n" for line in lines).encode())
+
     def first_parent(self, sha: str) -> str | None:
         out = self.run(["rev-parse", "--verify", "--quiet", f"{sha}^1"], check=False)
         return out.decode().strip() or None
@@ -198,6 +251,11 @@ class Git:
         self.run(["checkout-index", "--all", "--force", f"--prefix={dest}{os.sep}"])
 
     # -- notes ----------------------------------------------------------------------------------
+    def note_blobs(self, ref: str) -> dict[str, str]:
+        """commit sha -> the blob of its note under ``ref`` (``git notes list``); empty when none."""
+        listing = self.run(["notes", f"--ref={ref}", "list"], check=False).decode().split()
+        return dict(zip(listing[1::2], listing[::2], strict=True))
+
     def read_notes(self, ref: str) -> Iterator[tuple[str, str]]:
         """Yield (commit sha, note text) for every note under ``ref``."""
         listing = self.run(["notes", f"--ref={ref}", "list"], check=False).decode().split("\n")
@@ -237,6 +295,6 @@ def _extract_safely(archive: tarfile.TarFile, dest: Path) -> None:
         archive.extract(member, root, set_attrs=True, **_filter_kwargs())
 
 
-def _filter_kwargs() -> dict[str, object]:
+def _filter_kwargs() -> dict[str, Any]:
     # Python 3.12 warns without an explicit filter; "tar" keeps modes and symlinks inside the tree.
     return {"filter": "tar"} if hasattr(tarfile, "tar_filter") else {}

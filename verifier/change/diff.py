@@ -2,7 +2,9 @@
 
 Pure functions over bytes, so they can be tested without running git. gitio runs
 ``git <DIFF_ARGS> BASE HEAD`` (the patch) and ``git <RAW_ARGS> BASE HEAD`` (a NUL-separated listing of
-the same files in the same order) and hands both to :func:`parse_diff`.
+the same files in the same order) and hands both to :func:`parse_diff`. The audit reads many commits'
+patches at once with ``git <COMMIT_PATCH_ARGS>`` (``diff-tree --stdin``, the same flags) and keeps only
+each file's paths and hunk ranges: :func:`read_commit_patches` (the same header reader, no line lists).
 
 unidiff reads the hunks. The file headers are read here instead: git's ``diff --git a/X b/Y`` line is
 ambiguous when a path contains `` b/``, and unidiff keeps git's C-style quoting in the names. The
@@ -15,9 +17,7 @@ from __future__ import annotations
 import re
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, replace
-
-from unidiff import PatchSet
-from unidiff.errors import UnidiffParseError
+from typing import NamedTuple
 
 from verifier.errors import CannotVerify
 from verifier.models import FileChange, FileStatus
@@ -36,20 +36,27 @@ _SELECTION = (
     "--ignore-submodules=none",
     "-O/dev/null",
 )
-DIFF_ARGS: tuple[str, ...] = (
-    *_CONFIG,
-    "diff",
-    *_SELECTION,
+_PATCH_FORMAT = (
     "--patch",
-    "--full-index",
     "-U0",
     "--inter-hunk-context=0",
     "--src-prefix=a/",
     "--dst-prefix=b/",
-    "--submodule=short",
     "--diff-algorithm=myers",
 )
+DIFF_ARGS: tuple[str, ...] = (*_CONFIG, "diff", *_SELECTION, *_PATCH_FORMAT, "--full-index", "--submodule=short")
 RAW_ARGS: tuple[str, ...] = (*_CONFIG, "diff", *_SELECTION, "--raw", "-z")
+# one commit per input line (or ``merge parent``); --always prints a commit's sha line even when its diff is empty
+COMMIT_PATCH_ARGS: tuple[str, ...] = (
+    *_CONFIG,
+    "diff-tree",
+    "--stdin",
+    "--always",
+    "--root",
+    "-r",
+    *_SELECTION,
+    *_PATCH_FORMAT,
+)
 
 _GIT_HEADER = b"diff --git "
 _HUNK_HEADER = b"@@ "
@@ -72,6 +79,10 @@ _HEADER_KEYS = (
     b"Binary files ",
     b"GIT binary patch",
 )
+_HUNK_RANGES = re.compile(rb"@@ -(\d+)(?:,(\d+))? \+(\d+)(?:,(\d+))? @@")
+_COMMIT_LINE = re.compile(
+    rb"^[0-9a-f]{40}\n", re.MULTILINE
+)  # never a patch line: those start with a header word, @, +, - or space
 _INDEX_MODE = re.compile(rb"[0-9a-f]+\.\.[0-9a-f]+(?: ([0-7]{6}))?")
 # git's C-style quoting (quote.c): these letters after a backslash, or three octal digits for a byte
 _OCTAL = re.compile(rb"[0-7]{3}")
@@ -86,6 +97,15 @@ _LISTED_STATUS: dict[str, FileStatus] = {
     "T": "type-changed",
 }
 _HINT = "this git output could not be read safely; report it with the git version and the diff that failed"
+
+
+class FileHunks(NamedTuple):
+    """One file of a ``-U0`` patch: its paths (None for /dev/null) and its hunks, flat: old start, old
+    count, new start, new count, then the next hunk's four numbers (the audit's cache stores them so)."""
+
+    old_path: str | None
+    new_path: str | None
+    hunks: list[int]
 
 
 @dataclass(frozen=True)
@@ -105,6 +125,39 @@ def parse_diff(patch: bytes, listing: bytes | None = None) -> tuple[FileChange, 
     if listing is None:
         return tuple(changes)
     return tuple(_apply_listing(changes, _read_listing(listing)))
+
+
+def read_hunks(patch: bytes) -> list[FileHunks]:
+    """Each file of ``git diff -U0`` output with its hunk ranges, read by the same header reader as
+    :func:`parse_diff` (content lines are never taken for headers: they all start with a prefix)."""
+    return [_section_hunks(section) for section in _sections(patch)]
+
+
+def read_commit_patches(output: bytes, count: int) -> list[list[FileHunks]]:
+    """Split ``git <COMMIT_PATCH_ARGS>`` output into the ``count`` commits asked for, each one's files."""
+    parts = _COMMIT_LINE.split(output)
+    if len(parts) != count + 1 or parts[0].strip():
+        raise _refuse(f"git diff-tree gave {len(parts) - 1} patches for {count} commits")
+    return [read_hunks(part) for part in parts[1:]]
+
+
+def _section_hunks(section: list[bytes]) -> FileHunks:
+    first_hunk = next((i for i, line in enumerate(section) if line.startswith(_HUNK_HEADER)), len(section))
+    old_path, new_path = _header_paths(
+        section[0][len(_GIT_HEADER) :].rstrip(b"\n"), _header_fields(section[1:first_hunk])
+    )
+    hunks: list[int] = []
+    for line in section[first_hunk:]:
+        if line.startswith(_HUNK_HEADER):
+            found = _HUNK_RANGES.match(line)
+            if found is None:
+                raise _refuse(f"cannot read the hunk header {_decode(line).rstrip()!r}")
+            old_start, old_count, new_start, new_count = found.groups()
+            hunks += (int(old_start), 1 if old_count is None else int(old_count))
+            hunks += (int(new_start), 1 if new_count is None else int(new_count))
+    return FileHunks(
+        None if old_path is None else _decode(old_path), None if new_path is None else _decode(new_path), hunks
+    )
 
 
 def _refuse(problem: str) -> CannotVerify:
@@ -278,6 +331,9 @@ def _changed_lines(hunks: list[bytes], where: str) -> tuple[tuple[int, ...], tup
     """Head numbers of the '+' lines and base numbers of the '-' lines, read by unidiff."""
     if not hunks:
         return (), ()
+    from unidiff import PatchSet  # here: the audit reads hunk ranges only, and its warm runs skip this import
+    from unidiff.errors import UnidiffParseError
+
     # a neutral header: the real names were read above and could confuse unidiff's own name handling
     text = ["--- a/file\n", "+++ b/file\n", *(_decode(line) for line in hunks)]
     try:
@@ -287,8 +343,8 @@ def _changed_lines(hunks: list[bytes], where: str) -> tuple[tuple[int, ...], tup
     added: list[int] = []
     removed: list[int] = []
     for hunk in patched[0]:
-        added.extend(line.target_line_no for line in hunk if line.is_added)
-        removed.extend(line.source_line_no for line in hunk if line.is_removed)
+        added.extend(line.target_line_no for line in hunk if line.is_added and line.target_line_no is not None)
+        removed.extend(line.source_line_no for line in hunk if line.is_removed and line.source_line_no is not None)
     return tuple(added), tuple(removed)
 
 

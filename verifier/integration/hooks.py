@@ -353,7 +353,7 @@ def _record(git: Git, report: Report) -> None:
     from verifier.report import notes
 
     if notes.notes_enabled(git):
-        warning = notes.try_write_notes(git, report, notes.configured_ref(git))
+        warning = notes.try_write_notes(git, report, notes.configured_ref(git), how="pre-push")
         if warning:
             _say(warning)
 

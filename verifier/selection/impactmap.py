@@ -6,7 +6,7 @@ every measured line, which tests executed it; the empty context holds what ran o
 during collection). The map also keeps each test's outcome at base (a differential run reads them) and
 the fixtures each test used (a fixture's lines belong to every test that uses it).
 
-Maps are cached under ``<git common dir>/verifier/cache/impact/``, one JSON file per key: the base
+Maps are cached through :mod:`verifier.cache` (kind ``impact``), one JSON file per key: the base
 **tree** hash (content, not commit: a rebase that keeps the tree keeps the map) and the **environment**
 (interpreter, installed distributions, sandbox backend and image, the policy's test settings, the
 harness itself). The files are plain caches: deleting them costs one rebuild, never a wrong answer.
@@ -16,15 +16,14 @@ from __future__ import annotations
 
 import hashlib
 import json
-import os
 import platform
 import sys
-import tempfile
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
 
+from verifier import cache
 from verifier.models import Policy, RunResult, Selection
 
 if TYPE_CHECKING:
@@ -126,7 +125,7 @@ def environment_key(policy: Policy, backend: Backend) -> str:
 
 def cache_dir(git: Git) -> Path:
     """Outside the working tree: under git's common dir, so every worktree of a clone shares it."""
-    return git.common_dir() / "verifier" / "cache" / "impact"
+    return cache.folder(git, "impact")
 
 
 def cache_file(git: Git, tree: str, environment: str) -> Path:
@@ -135,25 +134,17 @@ def cache_file(git: Git, tree: str, environment: str) -> Path:
 
 def load(git: Git, tree: str, environment: str) -> ImpactMap | None:
     """The cached map of ``tree`` in ``environment``; None when absent or unreadable (then it is rebuilt)."""
+    data = cache.load_json(cache_file(git, tree, environment))
     try:
-        data = json.loads(cache_file(git, tree, environment).read_text(encoding="utf-8"))
-        return _decode(data) if data.get("format") == FORMAT else None
-    except (OSError, ValueError, KeyError, TypeError, IndexError):
+        return _decode(data) if isinstance(data, dict) and data.get("format") == FORMAT else None
+    except (ValueError, KeyError, TypeError, IndexError, AttributeError):
         return None
 
 
 def save(git: Git, impact: ImpactMap) -> Path:
     """Write the map atomically (a reader never sees half a file); return where it went."""
     target = cache_file(git, impact.tree, impact.environment)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    handle, temporary = tempfile.mkstemp(prefix=".impact-", dir=target.parent)
-    try:
-        with os.fdopen(handle, "w", encoding="utf-8") as out:
-            json.dump(_encode(impact), out, separators=(",", ":"))
-        os.replace(temporary, target)
-    except BaseException:
-        Path(temporary).unlink(missing_ok=True)
-        raise
+    cache.save_json(target, _encode(impact))
     return target
 
 

@@ -5,22 +5,20 @@ now), ``broken`` (passed at base, fails now), ``still-failing`` (fails at both),
 or ``unchanged``. Flaky outcomes count as passing on their side: they did pass on a re-run.
 
 The base outcomes come from the who-tests-what map when one was used (it is a whole-suite run at base),
-else from a run of the same tests at base, cached under git's common dir by base tree, environment and
-the tests asked for. A base run that cannot be read leaves the baseline unknown (``None``): then no
+else from a run of the same tests at base, cached (:mod:`verifier.cache`, kind ``baseline``) by base tree,
+environment and the tests asked for. A base run that cannot be read leaves the baseline unknown (``None``): then no
 failure can be shown to be old, and the regression rule counts every failure.
 """
 
 from __future__ import annotations
 
 import hashlib
-import json
-import os
-import tempfile
 from collections.abc import Callable, Mapping
 from dataclasses import replace
 from pathlib import Path
 from typing import TYPE_CHECKING
 
+from verifier import cache
 from verifier.models import Change, Policy, RunResult, Selection, TestOutcome
 from verifier.selection import impactmap
 from verifier.selection.impactmap import ImpactMap
@@ -108,20 +106,13 @@ def _run_at_base(
 
 def _cache_file(git: Git, tree: str, environment: str, wanted: list[str]) -> Path:
     digest = hashlib.sha256("\n".join(wanted).encode()).hexdigest()[:24]
-    return git.common_dir() / "verifier" / "cache" / "baseline" / f"{tree}-{environment}-{digest}.json"
+    return cache.folder(git, "baseline") / f"{tree}-{environment}-{digest}.json"
 
 
 def _load(path: Path) -> dict[str, str] | None:
-    try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return None
+    data = cache.load_json(path)
     return {str(k): str(v) for k, v in data.items()} if isinstance(data, dict) else None
 
 
 def _store(path: Path, baseline: Mapping[str, str]) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    handle, temporary = tempfile.mkstemp(prefix=".baseline-", dir=path.parent)
-    with os.fdopen(handle, "w", encoding="utf-8") as out:
-        json.dump(dict(baseline), out)
-    os.replace(temporary, path)
+    cache.save_json(path, dict(baseline))

@@ -10,7 +10,7 @@ from verifier.audit.report.numbers import percent
 __all__ = ["FORMATS", "SUFFIX", "percent", "render"]
 
 if TYPE_CHECKING:  # the CLI imports this package for the subcommand's arguments; the audit itself is lazy
-    from verifier.audit.build import Audit
+    from verifier.audit.model import Audit
 
 FORMATS = {
     "markdown": "verifier.audit.report.markdown:render",

@@ -1,11 +1,15 @@
-"""The audit's commit rows as CSV (RFC 4180, as Python's csv module writes it), attention first."""
+"""The audit's commit rows as CSV (RFC 4180, as Python's csv module writes it), attention first.
+
+``checked`` (yes: the gate has a record that judged the commit's own lines) and ``passed`` (yes: that
+verdict was pass or warn) are separate columns, as is ``at_commit_time`` (checked, skipped or unknown):
+see verifier.audit.model.DEFINITIONS."""
 
 from __future__ import annotations
 
 import csv
 import io
 
-from verifier.audit.build import Audit
+from verifier.audit.model import Audit
 
 COLUMNS = (
     "sha",
@@ -17,6 +21,10 @@ COLUMNS = (
     "subject",
     "status",
     "verified",
+    "checked",
+    "passed",
+    "at_commit_time",
+    "checked_how",
     "verdict",
     "coverage_percent",
     "lines_added",
@@ -24,6 +32,7 @@ COLUMNS = (
     "lines_alive",
     "lines_churned",
     "findings",
+    "range_findings",
     "waivers",
     "reverted_by",
 )
@@ -45,6 +54,10 @@ def render(audit: Audit) -> str:
                 c.subject,
                 c.status,
                 "yes" if c.verified else "no",
+                "yes" if c.checked else "no",
+                "yes" if c.passed else "no",
+                c.at_commit,
+                c.checked_how or "",
                 c.verdict or "",
                 "" if c.coverage_percent is None else c.coverage_percent,
                 c.lines_added,
@@ -52,6 +65,7 @@ def render(audit: Audit) -> str:
                 c.lines_alive,
                 c.lines_churned,
                 len(c.findings),
+                len(c.range_findings),
                 len(c.waivers),
                 c.reverted_by or "",
             ]

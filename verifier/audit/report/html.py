@@ -11,7 +11,7 @@ import io
 import re
 from html import escape
 
-from verifier.audit.build import Audit, AuditCommit, Group, Period
+from verifier.audit.model import DEFINITIONS, Audit, AuditCommit, Group, Period
 from verifier.audit.report.numbers import percent
 from verifier.errors import UsageError
 
@@ -79,6 +79,7 @@ def render(audit: Audit) -> str:
         _group_table("By person (committer)", audit.people),
         _counts(audit),
         _findings(audit.commits),
+        _definitions(),
         "</body></html>",
     ]
     return "\n".join(parts) + "\n"
@@ -95,8 +96,10 @@ def _cards(w: Period, audit: Audit) -> str:
             [
                 _card("machine commits", f"{w.machine_commits} / {w.commits}"),
                 _card("machine share of added lines", percent(w.machine_share)),
-                _card("verified", percent(w.verified_share)),
+                _card("checked by the gate", percent(w.verified_share)),
+                _card("passed", f"{w.passed} / {w.machine_commits}"),
                 _card("unverified", w.unverified, bad=w.unverified > 0),
+                _card("skipped at commit time", w.skipped_at_commit, bad=w.skipped_at_commit > 0),
                 _card("merged although blocked", w.blocked_merged, bad=w.blocked_merged > 0),
                 _card("machine lines alive at the end", f"{w.machine_lines_alive} / {w.machine_lines_added}"),
                 _card(f"rewritten within {audit.churn_days} days", w.machine_lines_churned),
@@ -123,7 +126,7 @@ def _charts(trend: tuple[Period, ...]) -> list[str]:
     labels = [p.since[5:10] for p in trend]
     charts = [
         ("chart-machine-share", "Machine share of added lines (%)", [p.machine_share or 0.0 for p in trend]),
-        ("chart-verified-share", "Verified machine commits (%)", [p.verified_share or 0.0 for p in trend]),
+        ("chart-verified-share", "Machine commits checked by the gate (%)", [p.verified_share or 0.0 for p in trend]),
     ]
     figures = []
     for chart_id, title, values in charts:
@@ -144,8 +147,15 @@ def _charts(trend: tuple[Period, ...]) -> list[str]:
 
 def _attention(audit: Audit) -> str:
     if not audit.attention:
-        return "<h2>Needs attention</h2><p>Nothing: every machine commit was verified and none was blocked.</p>"
+        skipped = sum(1 for c in audit.commits if c.at_commit == "skipped")
+        later = f" ({skipped} skipped at commit time, checked later)" if skipped else ""
+        return f"<h2>Needs attention</h2><p>Nothing: every machine commit was checked and none was blocked{later}.</p>"
     return "<h2>Needs attention</h2>" + _commit_table(audit.attention)
+
+
+def _definitions() -> str:
+    items = "".join(f"<dt>{escape(word)}</dt><dd>{escape(meaning)}</dd>" for word, meaning in DEFINITIONS.items())
+    return f"<h2>What the words mean</h2><dl>{items}</dl>"
 
 
 def _commit_table(commits: tuple[AuditCommit, ...]) -> str:
@@ -153,6 +163,9 @@ def _commit_table(commits: tuple[AuditCommit, ...]) -> str:
         "commit",
         "date",
         "status",
+        "checked",
+        "passed",
+        "at commit time",
         "agent",
         "committer",
         "subject",
@@ -166,7 +179,9 @@ def _commit_table(commits: tuple[AuditCommit, ...]) -> str:
     for c in commits:
         link = f'<a href="#findings-{c.sha}"><code>{c.sha[:12]}</code></a>'
         coverage = "" if c.coverage_percent is None else f"{c.coverage_percent:g}%"
-        cells = [link, escape(c.date[:10]), escape(c.status), escape(c.agent), escape(c.committer), escape(c.subject)]
+        flags = ["yes" if c.checked else "no", "yes" if c.passed else "no", escape(c.at_commit)]
+        cells = [link, escape(c.date[:10]), escape(c.status), *flags, escape(c.agent), escape(c.committer)]
+        cells.append(escape(c.subject))
         numbers = [c.machine_lines, c.lines_alive, c.lines_churned]
         rows.append(
             f'<tr class="{escape(c.status)}">'
@@ -239,7 +254,10 @@ def _findings(commits: tuple[AuditCommit, ...]) -> str:
     for c in commits:
         parts.append(f'<section id="findings-{c.sha}"><h3><code>{c.sha[:12]}</code> {escape(c.subject)}</h3>')
         parts.append(
-            f"<p>verdict: {escape(c.verdict or 'none')}"
+            f"<p>verdict on its own lines: {escape(c.verdict or 'none')}; {'checked' if c.checked else 'not checked'}"
+            f", {'passed' if c.passed else 'not passed'}; at commit time: {escape(c.at_commit)}; checks recorded: "
+            f"{c.checks}"
+            + (f" (newest: {escape(c.checked_how)})" if c.checked_how else "")
             + (f"; {escape(c.note_problem)}" if c.note_problem else "")
             + "</p>"
         )
@@ -251,6 +269,13 @@ def _findings(commits: tuple[AuditCommit, ...]) -> str:
                 for f in c.findings
             )
             parts.append(f"<ul>{items}</ul>")
+        if c.range_findings:
+            items = "".join(
+                f"<li><code>{escape(str(f.get('rule')))}</code> ({escape(str(f.get('severity')))}) "
+                f"{escape(str(f.get('message') or ''))}</li>"
+                for f in c.range_findings
+            )
+            parts.append(f"<p>of the whole checked range:</p><ul>{items}</ul>")
         if c.waivers:
             items = "".join(
                 f"<li>waiver <code>{escape(str(w.get('rule')))}</code> {escape(str(w.get('path')))}: "

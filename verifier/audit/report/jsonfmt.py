@@ -2,7 +2,10 @@
 
 FORMAT_VERSION history (one line per version):
   1: window, totals, commits (attention first), agents, people, findings and waivers by rule, expiring
-     waivers, reverts, trend (oldest week first, the window last), problems.
+     waivers, reverts, trend (oldest week first, the window last), problems. Added since, same version:
+     definitions (the words of the statuses), totals' checked (= verified), passed and
+     skipped_at_commit_time, commits' checked, passed, at_commit_time, checks, checked_how and
+     range_findings (findings then hold only the commit's own).
 """
 
 from __future__ import annotations
@@ -10,7 +13,7 @@ from __future__ import annotations
 import json
 from typing import Any
 
-from verifier.audit.build import FORMAT_VERSION, Audit, AuditCommit, Group, Period
+from verifier.audit.model import DEFINITIONS, FORMAT_VERSION, Audit, AuditCommit, Group, Period
 
 
 def as_dict(audit: Audit) -> dict[str, Any]:
@@ -23,6 +26,7 @@ def as_dict(audit: Audit) -> dict[str, Any]:
         "notes_ref": audit.notes_ref,
         "window": {"since": window.since, "until": window.until},
         "churn_days": audit.churn_days,
+        "definitions": dict(DEFINITIONS),
         "totals": period_dict(window),
         "attention": [c.sha for c in audit.attention],
         "commits": [commit_dict(c) for c in audit.commits],
@@ -55,6 +59,9 @@ def period_dict(period: Period) -> dict[str, Any]:
         "commits": period.commits,
         "machine_commits": period.machine_commits,
         "verified": period.verified,
+        "checked": period.verified,
+        "passed": period.passed,
+        "skipped_at_commit_time": period.skipped_at_commit,
         "unverified": period.unverified,
         "blocked_merged": period.blocked_merged,
         "lines_added": period.lines_added,
@@ -78,6 +85,11 @@ def commit_dict(commit: AuditCommit) -> dict[str, Any]:
         "subject": commit.subject,
         "merge": commit.merge,
         "verified": commit.verified,
+        "checked": commit.checked,
+        "passed": commit.passed,
+        "at_commit_time": commit.at_commit,
+        "checks": commit.checks,
+        "checked_how": commit.checked_how,
         "status": commit.status,
         "verdict": commit.verdict,
         "note_problem": commit.note_problem,
@@ -88,6 +100,7 @@ def commit_dict(commit: AuditCommit) -> dict[str, Any]:
         "lines_churned": commit.lines_churned,
         "reverted_by": commit.reverted_by,
         "findings": [dict(f) for f in commit.findings],
+        "range_findings": [dict(f) for f in commit.range_findings],
         "waivers": [dict(w) for w in commit.waivers],
     }
 

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from verifier.audit.build import Audit, Group
+from verifier.audit.model import DEFINITIONS, Audit, Group
 from verifier.audit.report.numbers import percent
 
 
@@ -13,8 +13,9 @@ def render(audit: Audit) -> str:
         "",
         f"- {w.machine_commits} of {w.commits} commits machine-written; {w.machine_lines_added} of "
         f"{w.lines_added} added lines ({percent(w.machine_share)})",
-        f"- verified by the gate: {w.verified} of {w.machine_commits} ({percent(w.verified_share)}); "
-        f"**{w.unverified} unverified**, **{w.blocked_merged} merged although blocked**",
+        f"- checked by the gate: {w.verified} of {w.machine_commits} ({percent(w.verified_share)}); passed: "
+        f"{w.passed} of {w.machine_commits}; **{w.unverified} unverified**, **{w.blocked_merged} merged although "
+        f"blocked**; {w.skipped_at_commit} skipped at commit time",
         f"- alive at the window's end: {w.machine_lines_alive} of {w.machine_lines_added} machine lines "
         f"({percent(w.survival)}); {w.machine_lines_churned} rewritten within {audit.churn_days} days; "
         f"{len(audit.reverts)} reverts of machine commits",
@@ -25,7 +26,12 @@ def render(audit: Audit) -> str:
     lines += _groups("By agent", audit.agents) + _groups("By person (committer)", audit.people)
     lines += _counts(audit)
     lines += _trend(audit)
+    lines += _definitions()
     return "\n".join(lines).rstrip() + "\n"
+
+
+def _definitions() -> list[str]:
+    return ["## What the words mean", "", *(f"- **{word}**: {meaning}" for word, meaning in DEFINITIONS.items()), ""]
 
 
 def _cell(text: str) -> str:
@@ -33,13 +39,26 @@ def _cell(text: str) -> str:
 
 
 def _attention(audit: Audit) -> list[str]:
+    skipped = [c for c in audit.commits if c.at_commit == "skipped" and c not in audit.attention]
     if not audit.attention:
-        return ["## Needs attention", "", "Nothing: every machine commit was verified and none was blocked.", ""]
-    rows = ["## Needs attention", "", "| commit | status | agent | committer | subject |", "|---|---|---|---|---|"]
+        later = f" ({len(skipped)} skipped at commit time, checked later)" if skipped else ""
+        return ["## Needs attention", "", f"Nothing: every machine commit was checked and none was blocked{later}.", ""]
+    rows = [
+        "## Needs attention",
+        "",
+        "| commit | status | passed | at commit time | agent | committer | subject |",
+        "|---|---|---|---|---|---|---|",
+    ]
     rows += [
-        f"| `{c.sha[:12]}` | {c.status} | {_cell(c.agent)} | {_cell(c.committer)} | {_cell(c.subject)} |"
+        f"| `{c.sha[:12]}` | {c.status} | {'yes' if c.passed else 'no'} | {c.at_commit} | {_cell(c.agent)} | "
+        f"{_cell(c.committer)} | {_cell(c.subject)} |"
         for c in audit.attention
     ]
+    if skipped:
+        rows += [
+            "",
+            "Skipped at commit time, checked later: " + ", ".join(f"`{c.sha[:12]}` ({c.status})" for c in skipped),
+        ]
     return [*rows, ""]
 
 
@@ -92,7 +111,7 @@ def _trend(audit: Audit) -> list[str]:
     rows = [
         "## Trend",
         "",
-        "| week from | machine commits | machine share | verified share | unverified | alive |",
+        "| week from | machine commits | machine share | checked share | unverified | alive |",
         "|---|---:|---:|---:|---:|---:|",
     ]
     rows += [
