@@ -12,6 +12,7 @@ from __future__ import annotations
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from verifier.change.stage import RevisionSpec, read_change
 from verifier.gitio import Git
@@ -19,6 +20,9 @@ from verifier.models import INDEX, Change, CoverageSummary, Finding, Policy, Pro
 from verifier.policy.loader import load_policy, policy_for_path, waivers_used
 from verifier.provenance.attribution import attribute
 from verifier.verdict.decision import decide
+
+if TYPE_CHECKING:
+    from verifier.sandbox import Backend
 
 Progress = Callable[[str], None]
 
@@ -137,14 +141,12 @@ def _select_and_run(
     return selection, run
 
 
-def _backend(git: Git, change: Change, policy: Policy, options: Options):  # type: ignore[no-untyped-def]
+def _backend(git: Git, change: Change, policy: Policy, options: Options) -> Backend:
     """The sandbox backend every run of this check uses (the map build at base, the run at head)."""
     from verifier import sandbox
 
     backend = sandbox.choose(options.sandbox, policy.allow_process_sandbox or options.sandbox == "process")
-    if backend.name == "docker":
-        _pick_image(backend, git, change)
-    return backend
+    return backend.for_repository(str(git.repo), change.base)
 
 
 def _run_tests(
@@ -152,8 +154,8 @@ def _run_tests(
     change: Change,
     policy: Policy,
     selection: Selection,
-    backend,
-    say: Progress,  # type: ignore[no-untyped-def]
+    backend: Backend,
+    say: Progress,
 ) -> RunResult:
     """Materialise the head tree outside the repository and run the selected tests there, in the sandbox."""
     from verifier.testrun import harness as testrun
@@ -161,17 +163,6 @@ def _run_tests(
     say(f"running the tests in the {backend.name} sandbox")
     judged = tuple(f.path for f in change.files if f.path.endswith(".py") and f.added_lines)
     return testrun.read_run(testrun.run_revision(git, change.head, policy, selection, backend, judged))
-
-
-def _pick_image(backend, git: Git, change: Change) -> None:  # type: ignore[no-untyped-def]
-    """Use the image built for this repository's test dependencies (at base) when there is one."""
-    import os
-
-    from verifier.sandbox.docker import IMAGE_ENV
-    from verifier.sandbox.images import image_for
-
-    if not os.environ.get(IMAGE_ENV):
-        backend.image = image_for(str(git.repo), change.base) or backend.image
 
 
 def _shown_sources(sources: dict[str, str], provenance: Provenance, findings: list[Finding]) -> dict:

@@ -287,8 +287,8 @@ def _changed_lines(hunks: list[bytes], where: str) -> tuple[tuple[int, ...], tup
     added: list[int] = []
     removed: list[int] = []
     for hunk in patched[0]:
-        added.extend(line.target_line_no for line in hunk if line.is_added)
-        removed.extend(line.source_line_no for line in hunk if line.is_removed)
+        added.extend(line.target_line_no for line in hunk if line.is_added and line.target_line_no is not None)
+        removed.extend(line.source_line_no for line in hunk if line.is_removed and line.source_line_no is not None)
     return tuple(added), tuple(removed)
 
 

@@ -12,7 +12,7 @@ from dataclasses import dataclass
 from verifier.change.diff import DIFF_ARGS, RAW_ARGS, parse_diff
 from verifier.errors import CannotVerify, UsageError
 from verifier.gitio import Git
-from verifier.models import INDEX, Change, Commit
+from verifier.models import INDEX, Change, Commit, FileChange
 
 
 @dataclass(frozen=True)
@@ -78,7 +78,7 @@ def _ident(git: Git, variable: str) -> str:
     return ident.rsplit(" ", 2)[0] if ident else "unknown"
 
 
-def _diff(git: Git, base: str | None, head: str | None):  # type: ignore[no-untyped-def]
+def _diff(git: Git, base: str | None, head: str | None) -> tuple[FileChange, ...]:
     start = base or git.empty_tree()
     listing = git.diff(RAW_ARGS, start, head) if RAW_ARGS else None
     return parse_diff(git.diff(DIFF_ARGS, start, head), listing)

@@ -78,6 +78,21 @@ class NamespaceBackend:
     def problem(self) -> str | None:
         return _probe()
 
+    def for_repository(self, repo: str, base: str | None) -> NamespaceBackend:
+        return self
+
+    def environment(self) -> str:
+        return ""
+
+    def facts(self) -> list[tuple[str, str]]:
+        import platform
+
+        limit = Path("/proc/sys/user/max_user_namespaces")
+        return [
+            ("kernel", platform.release()),
+            ("user namespaces allowed", limit.read_text().strip() if limit.exists() else "unknown"),
+        ]
+
     def run(self, request: SandboxRequest) -> SandboxResult:
         common.check_tree(request)
         folder = common.make_temp_dir("namespace")
