@@ -14,7 +14,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from verifier.change.stage import RevisionSpec, read_change
+from verifier.change.stage import RevisionSpec, read_change, refuse_machine_submodules
 from verifier.gitio import Git
 from verifier.models import INDEX, Change, CoverageSummary, Finding, Policy, Provenance, Report, RunResult, Selection
 from verifier.policy.loader import load_policy, policy_for_path, waivers_used
@@ -47,6 +47,7 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
     git = Git(Git(repo).toplevel(), index_file=options.index_file)
     change = read_change(git, spec)
     provenance = attribute(git, change)
+    refuse_machine_submodules(change, provenance.machine_touched)
     policy = load_policy(git, change.base, options.org_policy)
     if not provenance.machine_lines:
         return _report(change, provenance, policy, None, [], {}, notes=("no machine-written lines to verify",))
