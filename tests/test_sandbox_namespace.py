@@ -389,3 +389,45 @@ def test_nested_namespaces_work_on_this_host_outside_the_sandbox() -> None:
     if done.stdout.strip() != "unshare: 0 0":
         pytest.skip(f"this host refuses user namespaces itself: {done.stdout.strip()}")
     assert done.returncode == 0
+
+
+def test_the_doctor_says_whether_the_whole_run_has_one_memory_limit(backend: NamespaceBackend) -> None:
+    from verifier.sandbox.cgroup import whole_run_problem
+
+    facts = dict(backend.facts())
+    problem = whole_run_problem()
+    if problem is None:
+        assert facts["memory of the whole run"] == "limited by a cgroup v2 of its own"
+    else:
+        assert problem in facts["memory of the whole run"]
+        assert "each process has its own limit" in facts["memory of the whole run"]
+
+
+def test_many_children_together_run_into_the_whole_run_memory_limit(run: Runner) -> None:
+    """Eight children of 96 MB each stay under the per-process limit (256 MB) but not under the
+    run's (256 MB in all): the kernel ends one of them, and the result says it was memory."""
+    from verifier.sandbox.cgroup import whole_run_problem
+
+    problem = whole_run_problem()
+    if problem is not None:
+        pytest.skip(f"no whole-run memory limit here: {problem}")
+    result = run(
+        """
+        import os, time
+        children = []
+        for _ in range(8):
+            pid = os.fork()
+            if pid == 0:
+                block = bytearray(96 << 20)
+                for i in range(0, len(block), 4096):
+                    block[i] = 1
+                time.sleep(5)
+                os._exit(0)
+            children.append(pid)
+        codes = [os.waitstatus_to_exitcode(os.waitpid(pid, 0)[1]) for pid in children]
+        print("codes:", codes)
+        """,
+        memory_mb=256,
+    )
+    assert "-9" in result.output.split("codes:")[-1], result.output
+    assert result.limit_hit == "memory"
