@@ -23,6 +23,7 @@ import pytest
 from conftest import processes_carrying
 
 from verifier.models import Limits, SandboxRequest, SandboxResult
+from verifier.sandbox import Backend
 from verifier.sandbox.namespace import NamespaceBackend, interpreter_paths
 from verifier.sandbox.process import ProcessBackend
 
@@ -51,7 +52,7 @@ def run(backend: NamespaceBackend, tree: Path, tmp_path: Path, monkeypatch: pyte
 
     def run_code(
         code: str,
-        sandbox: object = backend,
+        sandbox: Backend = backend,
         collect: tuple[str, ...] = (),
         env: dict[str, str] | None = None,
         **limits: float,
@@ -64,7 +65,7 @@ def run(backend: NamespaceBackend, tree: Path, tmp_path: Path, monkeypatch: pyte
             limits=Limits(**{"wall_seconds": 30, **limits}),
             collect=collect,
         )
-        result = sandbox.run(request)  # type: ignore[attr-defined]
+        result = sandbox.run(request)
         assert processes_carrying(marker) == []
         assert os.listdir(private_temp) == []
         return result
@@ -324,3 +325,109 @@ def test_kill_9_of_the_parent_leaves_no_process(backend: NamespaceBackend, tree:
     parent.kill()
     parent.wait()
     assert _wait_until_gone(marker) == []  # the kernel's parent-death signals, not our cleanup, did this
+
+
+UNSHARE_USER = """
+import ctypes
+libc = ctypes.CDLL(None, use_errno=True)
+code = libc.unshare(0x10000000)  # CLONE_NEWUSER, <linux/sched.h>
+print("unshare:", code, ctypes.get_errno())
+"""
+NESTED = (
+    UNSHARE_USER
+    + """
+import os, subprocess, threading
+for command in (["unshare", "-U", "true"], ["unshare", "-Ur", "true"]):
+    try:
+        done = subprocess.run(command, capture_output=True)
+        print(" ".join(command), "exit:", done.returncode)
+    except OSError as error:
+        print(" ".join(command), "oserror:", error.errno)
+ran = []
+thread = threading.Thread(target=ran.append, args=("thread",))
+thread.start()
+thread.join()
+child = os.fork()
+if child == 0:
+    os._exit(7)
+print("ordinary:", ran, subprocess.run(["true"]).returncode, os.waitstatus_to_exitcode(os.waitpid(child, 0)[1]))
+"""
+)
+
+
+def test_no_nested_user_namespace_can_be_made_inside(run: Runner) -> None:
+    """unshare(2) with CLONE_NEWUSER fails (EPERM) in Python and in util-linux's unshare(1); threads,
+    subprocesses and fork still work (clone3 answers ENOSYS: the C library falls back to clone)."""
+    result = run(NESTED)
+    assert result.exit_status == 0, result.output
+    assert "unshare: -1 1\n" in result.output  # -1 with errno 1 = EPERM
+    assert "unshare -U true exit: 0" not in result.output and "unshare -Ur true exit: 0" not in result.output
+    assert "unshare -U true" in result.output  # the command was there to try (or its absence was reported)
+    assert "ordinary: ['thread'] 0 7" in result.output
+
+
+def test_the_kernel_surface_no_test_needs_is_refused(run: Runner) -> None:
+    result = run(
+        """
+        import ctypes, errno
+        libc = ctypes.CDLL(None, use_errno=True)
+        for name, number in (("keyctl", 250), ("bpf", 321), ("userfaultfd", 323), ("perf_event_open", 298)):
+            code = libc.syscall(number, 0, 0, 0, 0, 0)
+            print(name, code, ctypes.get_errno())
+        """
+    )
+    if os.uname().machine != "x86_64":
+        pytest.skip("the syscall numbers in this test are x86_64's")
+    for name in ("keyctl", "bpf", "userfaultfd", "perf_event_open"):
+        assert f"{name} -1 1\n" in result.output, result.output  # -1 with EPERM
+
+
+def test_nested_namespaces_work_on_this_host_outside_the_sandbox() -> None:
+    """The reference for the test above: here, outside the sandbox, the same call is allowed, so the
+    refusal inside is the sandbox's doing (skipped where the host itself forbids it)."""
+    done = subprocess.run([sys.executable, "-c", UNSHARE_USER], capture_output=True, text=True)
+    if done.stdout.strip() != "unshare: 0 0":
+        pytest.skip(f"this host refuses user namespaces itself: {done.stdout.strip()}")
+    assert done.returncode == 0
+
+
+def test_the_doctor_says_whether_the_whole_run_has_one_memory_limit(backend: NamespaceBackend) -> None:
+    from verifier.sandbox.cgroup import whole_run_problem
+
+    facts = dict(backend.facts())
+    problem = whole_run_problem()
+    if problem is None:
+        assert facts["memory of the whole run"] == "limited by a cgroup v2 of its own"
+    else:
+        assert problem in facts["memory of the whole run"]
+        assert "each process has its own limit" in facts["memory of the whole run"]
+
+
+def test_many_children_together_run_into_the_whole_run_memory_limit(run: Runner) -> None:
+    """Eight children of 96 MB each stay under the per-process limit (256 MB) but not under the
+    run's (256 MB in all): the kernel ends one of them, and the result says it was memory."""
+    from verifier.sandbox.cgroup import whole_run_problem
+
+    problem = whole_run_problem()
+    if problem is not None:
+        pytest.skip(f"no whole-run memory limit here: {problem}")
+    result = run(
+        """
+        import os, time
+        children = []
+        for _ in range(8):
+            pid = os.fork()
+            if pid == 0:
+                block = bytearray(96 << 20)
+                for i in range(0, len(block), 4096):
+                    block[i] = 1
+                time.sleep(5)
+                os._exit(0)
+            children.append(pid)
+        codes = [os.waitstatus_to_exitcode(os.waitpid(pid, 0)[1]) for pid in children]
+        print("codes:", codes)
+        """,
+        memory_mb=256,
+    )
+    assert "-9" in result.output.split("codes:")[-1], result.output
+    assert result.limit_hit == "memory"

@@ -130,3 +130,29 @@ def test_a_missing_tree_is_a_clear_error(tmp_path: Path) -> None:
     )
     with pytest.raises(UsageError, match="is not a folder"):
         ProcessBackend().run(request)
+
+
+def test_every_registered_backend_provides_the_whole_interface() -> None:
+    """Each backend has every member the Backend protocol declares, so no caller needs to test a name."""
+    from verifier.sandbox import BACKENDS, Backend, load
+
+    declared = {name for name in vars(Backend) if not name.startswith("_")}
+    assert {"name", "isolation", "problem", "for_repository", "environment", "facts", "run"} <= declared
+    for name in BACKENDS:
+        backend = load(name)
+        missing = {member for member in declared if not hasattr(backend, member)}
+        assert missing == set(), f"{name} lacks {missing}"
+        assert backend.name == name
+        assert isinstance(backend.environment(), str)
+        assert all(isinstance(key, str) and isinstance(value, str) for key, value in backend.facts())
+
+
+def test_the_doctor_lists_every_backend_with_its_facts(capsys: pytest.CaptureFixture[str]) -> None:
+    from verifier.sandbox.doctor import doctor
+
+    code = doctor()
+    shown = capsys.readouterr().out
+    assert code == 0  # the process backend works on any Linux
+    for name in ("docker", "namespace", "process"):
+        assert any(line.startswith(name) for line in shown.splitlines()), shown
+    assert "runs as: uid" in shown

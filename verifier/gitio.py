@@ -2,22 +2,52 @@
 
 Every command runs with ``GIT_OPTIONAL_LOCKS=0`` so that reading never refreshes the user's index, and
 nothing here writes to the repository (the gate's own notes ref is written by :mod:`verifier.report.notes`).
+
+Names are data: every listing is read NUL-framed (``-z``) and every batch read is framed by object ids or
+NUL-terminated input, so no byte a path may hold (newline, quote, non-UTF-8) shifts a record. A path is
+kept as ``str`` decoded from git's bytes with ``surrogateescape`` (:func:`path_text`; like ``os.fsdecode``
+on a UTF-8 system) and turned back into the same bytes with :func:`path_bytes` wherever it goes to git or
+to the filesystem. Trees are materialised from object ids and blobs, never through ``git archive`` or a
+checkout, so no git attribute (``export-ignore``, ``export-subst``, filters, end-of-line conversion)
+changes what is tested.
 """
 
 from __future__ import annotations
 
 import os
 import subprocess
-import tarfile
 from collections.abc import Iterator, Sequence
+from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
 
-from verifier.errors import GitError, UsageError
+from verifier.errors import CannotVerify, GitError, UsageError
 from verifier.models import Commit
 
 _FIELD = "\x1f"
 _RECORD = "\x1e"
+MODE_FILE, MODE_EXECUTABLE, MODE_SYMLINK, MODE_GITLINK = "100644", "100755", "120000", "160000"
+_BATCH_BYTES = 64 << 20  # blobs read per ``cat-file --batch`` call when a tree is materialised
+
+
+def path_text(raw: bytes) -> str:
+    """A path as git stores it (bytes) in the form the gate keeps it: str, undecodable bytes as surrogates."""
+    return raw.decode("utf-8", "surrogateescape")
+
+
+def path_bytes(path: str) -> bytes:
+    """The inverse of :func:`path_text`: the exact bytes git has for ``path``."""
+    return path.encode("utf-8", "surrogateescape")
+
+
+@dataclass(frozen=True)
+class TreeEntry:
+    """One non-tree entry of a recursive tree listing: a blob (file or symlink) or a gitlink (submodule)."""
+
+    mode: str
+    kind: str  # "blob" or "commit"
+    oid: str
+    size: int  # bytes of the blob; 0 for a gitlink
+    path: bytes
 
 
 class Git:
@@ -28,7 +58,7 @@ class Git:
         ``GIT_INDEX_FILE``, which ``git commit -a`` points at a temporary index)."""
         self.repo = Path(repo)
         self.index_file = index_file
-        self._env = {**os.environ, "GIT_OPTIONAL_LOCKS": "0", "GIT_TERMINAL_PROMPT": "0"}
+        self._env = {**os.environ, "GIT_OPTIONAL_LOCKS": "0", "GIT_TERMINAL_PROMPT": "0", "GIT_ATTR_NOSYSTEM": "1"}
         for leaking in ("GIT_DIR", "GIT_WORK_TREE", "GIT_INDEX_FILE", "GIT_DIFF_OPTS", "GIT_EXTERNAL_DIFF"):
             self._env.pop(leaking, None)
         if index_file:
@@ -140,18 +170,19 @@ class Git:
         read in one ``git diff-tree --stdin`` call."""
         if not shas:
             return {}
-        out = self.run(
-            ["diff-tree", "--stdin", "-r", "-m", "--first-parent", "--root", "--no-renames", "--name-only", "-z"],
-            input="\n".join(shas).encode() + b"\n",
-        )
+        args = ["diff-tree", "--stdin", "-r", "-m", "--first-parent", "--root", "--no-renames", "--name-only"]
+        out = self.run([*args, "-z", "--always"], input="\n".join(shas).encode() + b"\n")
+        # With --always every commit given prints its id, in order, then the paths; a path equal to the
+        # *next* commit's id would need that commit's id before it existed, so the framing cannot be faked.
         touched: dict[str, list[str]] = {}
-        current = None
-        for field in out.decode("utf-8", "surrogateescape").split("\0"):
-            if field in shas:
-                current = field
-                touched.setdefault(current, [])
+        pending = list(dict.fromkeys(shas))
+        current: str | None = None
+        for field in out.split(b"\0"):
+            if pending and field == pending[0].encode("ascii"):
+                current = pending.pop(0)
+                touched[current] = []
             elif field and current is not None:
-                touched[current].append(field.lstrip("\n"))
+                touched[current].append(path_text(field))
         return touched
 
     def commit_or_none(self, rev: str) -> str | None:
@@ -200,22 +231,58 @@ class Git:
         return done.stdout if done.returncode == 0 else None
 
     def read_blobs(self, specs: Sequence[str]) -> dict[str, bytes]:
-        """Read many ``rev:path`` (or ``:path`` for the index) blobs in one ``git cat-file --batch``;
-        specs that name no blob are left out."""
+        """Read many ``rev:path`` (or ``:path`` for the index, or object id) blobs in one
+        ``git cat-file --batch -z`` (NUL-terminated names: a path may hold a newline); specs that name
+        no blob are left out."""
         if not specs:
             return {}
-        out = self.run(["cat-file", "--batch"], input="".join(f"{spec}\n" for spec in specs).encode())
+        wanted = [path_bytes(spec) for spec in specs]
+        out = self.run(["cat-file", "--batch", "-z"], input=b"".join(spec + b"\0" for spec in wanted))
         blobs: dict[str, bytes] = {}
         offset = 0
-        for spec in specs:
-            header_end = out.index(b"\n", offset)
-            header = out[offset:header_end].split()
-            offset = header_end + 1
-            if len(header) == 3 and header[1] == b"blob":
-                size = int(header[2])
-                blobs[spec] = out[offset : offset + size]
-                offset += size + 1
+        for spec, raw in zip(specs, wanted, strict=True):
+            offset, kind, content = _batch_record(out, offset, raw)
+            if kind == b"blob" and content is not None:
+                blobs[spec] = content
         return blobs
+
+    def read_objects(self, oids: Sequence[str]) -> dict[str, bytes]:
+        """The content of the objects ``oids`` (hex ids: newline-safe input), in one ``cat-file --batch``."""
+        if not oids:
+            return {}
+        out = self.run(["cat-file", "--batch"], input=b"".join(oid.encode("ascii") + b"\n" for oid in oids))
+        found: dict[str, bytes] = {}
+        offset = 0
+        for oid in oids:
+            offset, _kind, content = _batch_record(out, offset, oid.encode("ascii"))
+            if content is None:
+                raise GitError(["cat-file", "--batch"], f"object {oid} is missing from the repository")
+            found[oid] = content
+        return found
+
+    def tree_entries(self, revision: str | None) -> list[TreeEntry]:
+        """Every blob and gitlink of ``revision``'s tree (None: the index), read NUL-framed.
+
+        An index with unmerged entries cannot be materialised: CannotVerify says so.
+        """
+        if revision is not None:
+            out = self.run(["ls-tree", "-r", "-z", "--long", "--full-tree", revision])
+            return [_tree_entry(record) for record in out.split(b"\0") if record]
+        out = self.run(["ls-files", "--stage", "-z"])
+        entries = []
+        for record in out.split(b"\0"):
+            if not record:
+                continue
+            meta, path = record.split(b"\t", 1)
+            mode, oid, stage_number = meta.decode("ascii").split(" ")
+            if stage_number != "0":
+                raise CannotVerify(
+                    f"the index has an unresolved merge conflict: {path_text(path)}",
+                    "resolve the conflict and stage the result, then run the check again",
+                )
+            kind = "commit" if mode == MODE_GITLINK else "blob"
+            entries.append(TreeEntry(mode, kind, oid, -1, path))
+        return entries
 
     def diff(self, diff_args: Sequence[str], base: str, head: str | None) -> bytes:
         """Run a diff from ``base`` to ``head`` (None = the index)."""
@@ -231,24 +298,47 @@ class Git:
 
     # -- materialising ------------------------------------------------------------------------
     def export_commit(self, sha: str, dest: Path) -> None:
-        """Write the tree of ``sha`` into ``dest`` (via ``git archive``; the working tree is untouched)."""
-        dest.mkdir(parents=True, exist_ok=True)
-        proc = subprocess.Popen(
-            ["git", "archive", "--format=tar", sha], cwd=self.repo, stdout=subprocess.PIPE, env=self._env
-        )
-        assert proc.stdout is not None
-        try:
-            with tarfile.open(fileobj=proc.stdout, mode="r|") as archive:
-                _extract_safely(archive, dest)
-        finally:
-            proc.stdout.close()
-            if proc.wait() != 0:
-                raise GitError(["archive", sha], "could not export the tree")
+        """Write the tree of ``sha`` into ``dest`` exactly as committed (no git attribute applies)."""
+        self._materialise(sha, self.tree_entries(sha), dest)
 
     def export_index(self, dest: Path) -> None:
-        """Write the index's content into ``dest`` (via ``git checkout-index --prefix``)."""
+        """Write the index's content into ``dest`` exactly as staged (no filter or conversion applies)."""
+        self._materialise(None, self.tree_entries(None), dest)
+
+    def _materialise(self, revision: str | None, entries: list[TreeEntry], dest: Path) -> None:
+        where = revision[:12] if revision else "the index"
+        try:
+            self._write_tree(where, entries, dest)
+        except OSError as error:
+            raise CannotVerify(
+                f"the tree of {where} could not be written for the sandbox: {error}",
+                "check the free space of the temp folder (TMPDIR); a tree git refuses to check out cannot be tested",
+            ) from error
+
+    def _write_tree(self, where: str, entries: list[TreeEntry], dest: Path) -> None:
+        plan = [(entry, _safe_relative(entry.path, where)) for entry in entries]
         dest.mkdir(parents=True, exist_ok=True)
-        self.run(["checkout-index", "--all", "--force", f"--prefix={dest}{os.sep}"])
+        blobs = [entry for entry, _ in plan if entry.kind == "blob"]
+        links: list[tuple[bytes, bytes]] = []
+        for batch in _batches(blobs):
+            contents = self.read_objects([entry.oid for entry in batch])
+            for entry in batch:
+                target = os.path.join(os.fsencode(dest), _safe_relative(entry.path, where))
+                if entry.mode == MODE_SYMLINK:
+                    links.append((target, _checked_link(entry.path, contents[entry.oid], where)))
+                else:
+                    _write_file(target, contents[entry.oid], executable=entry.mode == MODE_EXECUTABLE)
+        for entry, relative in plan:
+            if entry.kind == "commit":  # a submodule: an empty folder, as a fresh clone without it has
+                os.makedirs(os.path.join(os.fsencode(dest), relative), exist_ok=True)
+        for target, link in links:  # last: no file is ever written through a link of the tree
+            os.makedirs(os.path.dirname(target), exist_ok=True)
+            os.symlink(link, target)
+        root = os.path.realpath(os.fsencode(dest))
+        for target, link in links:  # a chain of links can leave the tree where no single link does
+            resolved = os.path.realpath(target)
+            if resolved != root and not resolved.startswith(root + b"/"):
+                raise _link_outside(target[len(os.fsencode(dest)) + 1 :], link, where)
 
     # -- notes ----------------------------------------------------------------------------------
     def note_blobs(self, ref: str) -> dict[str, str]:
@@ -283,18 +373,83 @@ def _runs(lines: Sequence[int]) -> list[tuple[int, int]]:
     return runs
 
 
-def _extract_safely(archive: tarfile.TarFile, dest: Path) -> None:
-    """Extract a git archive stream, refusing members that would land outside ``dest``."""
-    root = dest.resolve()
-    for member in archive:
-        target = (root / member.name).resolve()
-        if root != target and root not in target.parents:
-            continue
-        if member.isdev() or member.isfifo():
-            continue
-        archive.extract(member, root, set_attrs=True, **_filter_kwargs())
+def _batch_record(out: bytes, offset: int, asked: bytes) -> tuple[int, bytes | None, bytes | None]:
+    """One record of ``cat-file --batch`` output at ``offset``: (next offset, type, content).
+
+    A name git cannot resolve comes back as ``<name> missing`` (or ambiguous): matched against the exact
+    bytes asked for, so a name holding a newline cannot pose as an object header.
+    """
+    for problem in (b" missing\n", b" ambiguous\n", b" dangling\n"):
+        if out.startswith(asked + problem, offset):
+            return offset + len(asked) + len(problem), None, None
+    header_end = out.index(b"\n", offset)
+    _oid, kind, size_text = out[offset:header_end].split(b" ")
+    size = int(size_text)
+    start = header_end + 1
+    return start + size + 1, kind, out[start : start + size]
 
 
-def _filter_kwargs() -> dict[str, Any]:
-    # Python 3.12 warns without an explicit filter; "tar" keeps modes and symlinks inside the tree.
-    return {"filter": "tar"} if hasattr(tarfile, "tar_filter") else {}
+def _tree_entry(record: bytes) -> TreeEntry:
+    """``<mode> SP <type> SP <oid> SP+ <size> TAB <path>`` of ``ls-tree --long -z``."""
+    meta, path = record.split(b"\t", 1)
+    mode, kind, oid, size = meta.decode("ascii").split()
+    return TreeEntry(mode, kind, oid, 0 if size == "-" else int(size), path)
+
+
+def _batches(entries: list[TreeEntry]) -> Iterator[list[TreeEntry]]:
+    """Groups of entries of at most about ``_BATCH_BYTES`` of content (one large blob is its own group)."""
+    batch: list[TreeEntry] = []
+    total = 0
+    for entry in entries:
+        if batch and (total + max(entry.size, 0) > _BATCH_BYTES or len(batch) >= 5000):
+            yield batch
+            batch, total = [], 0
+        batch.append(entry)
+        total += max(entry.size, 0)
+    if batch:
+        yield batch
+
+
+def _safe_relative(path: bytes, where: str) -> bytes:
+    """``path`` as a relative path below the tree's root; refuse names git itself would not check out."""
+    parts = path.split(b"/")
+    if path.startswith(b"/") or any(part in (b"", b".", b"..") for part in parts):
+        raise CannotVerify(
+            f"{where} holds a path that cannot be written safely: {path_text(path)!r}",
+            "the tree was written with a tool other than git; repair the commit",
+        )
+    return path
+
+
+def _checked_link(path: bytes, target: bytes, where: str) -> bytes:
+    """The target of the symlink ``path``; refuse one that leaves the tree (absolute, or too many '..')."""
+    depth = path.count(b"/")  # folders between the tree's root and the link
+    for part in target.split(b"/"):
+        if part == b"..":
+            depth -= 1
+        elif part not in (b"", b"."):
+            depth += 1
+        if depth < 0:
+            break
+    if target.startswith(b"/") or depth < 0 or b"\0" in target or not target:
+        raise _link_outside(path, target, where)
+    return target
+
+
+def _link_outside(path: bytes, target: bytes, where: str) -> CannotVerify:
+    return CannotVerify(
+        f"{where} holds a symbolic link that points outside the repository: "
+        f"{path_text(path)!r} -> {path_text(target)!r}",
+        "the sandbox runs only what the commit holds; make the link relative and inside the repository, "
+        "or commit the file it points to",
+    )
+
+
+def _write_file(target: bytes, content: bytes, executable: bool) -> None:
+    """Create ``target`` (and its folders) with ``content``; rw-r--r-- or rwxr-xr-x, as git checks out."""
+    os.makedirs(os.path.dirname(target), exist_ok=True)
+    mode = 0o755 if executable else 0o644
+    handle = os.open(target, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW, mode)
+    with os.fdopen(handle, "wb") as stream:
+        stream.write(content)
+    os.chmod(target, mode)  # exactly the mode git records, whatever the umask

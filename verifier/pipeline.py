@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from verifier.change.stage import RevisionSpec, read_change
+from verifier.change.stage import RevisionSpec, read_change, refuse_machine_submodules
 from verifier.errors import PolicyError
 from verifier.gitio import Git
 from verifier.models import INDEX, Change, CoverageSummary, Finding, Policy, Provenance, Report, RunResult, Selection
@@ -25,6 +25,9 @@ from verifier.provenance.attribution import attribute, has_mark_text
 from verifier.verdict.decision import decide
 from verifier.verdict.settings import settings_for_path
 from verifier.verdict.waivers import waivers_used
+
+if TYPE_CHECKING:
+    from verifier.sandbox import Backend
 
 if TYPE_CHECKING:
     from verifier.sandbox import Backend
@@ -72,6 +75,7 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
     git = Git(Git(repo).toplevel(), index_file=options.index_file)
     change = read_change(git, spec)
     provenance = attribute(git, change)
+    refuse_machine_submodules(change, provenance.machine_touched)
     policy = load_policy(git, change.base, options.org_policy)
     if not options.vouched_code:
         refuse_forbidden_sandbox(policy, options.sandbox)
@@ -178,9 +182,7 @@ def _backend(check: CheckContext) -> Backend:
 
     allowed = check.policy.allow_process_sandbox or check.options.vouched_code
     backend = sandbox.choose(check.options.sandbox, allowed)
-    if backend.name == "docker":
-        _pick_image(backend, check)
-    return backend
+    return backend.for_repository(str(check.git.repo), check.change.base)
 
 
 def _run_tests(check: CheckContext, selection: Selection, backend: Backend) -> RunResult:
@@ -191,17 +193,6 @@ def _run_tests(check: CheckContext, selection: Selection, backend: Backend) -> R
     judged = tuple(f.path for f in check.change.files if f.path.endswith(".py") and f.added_lines)
     result = testrun.run_revision(check.git, check.change.head, check.policy, selection, backend, judged)
     return testrun.read_run(result)
-
-
-def _pick_image(backend: Backend, check: CheckContext) -> None:
-    """Use the image built for this repository's test dependencies (at base) when there is one."""
-    import os
-
-    from verifier.sandbox.docker import IMAGE_ENV
-    from verifier.sandbox.images import image_for
-
-    if not os.environ.get(IMAGE_ENV):
-        backend.image = image_for(str(check.git.repo), check.change.base) or backend.image  # type: ignore[attr-defined]
 
 
 def _coverage(check: CheckContext, run: RunResult) -> CoverageSummary | None:

@@ -14,6 +14,7 @@ two outputs do not describe the same diff, and the gate refuses to guess.
 
 from __future__ import annotations
 
+import os
 import re
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, replace
@@ -25,8 +26,20 @@ from verifier.models import FileChange, FileStatus
 # Command-line config wins over every config file, and the flags below pin what config could change:
 # prefixes (diff.noprefix, diff.mnemonicPrefix), colour, external diff drivers, textconv, diff.relative,
 # diff.renames (copy detection included), diff.orderFile, diff.interHunkContext, diff.submodule,
-# diff.algorithm and diff.ignoreSubmodules.
-_CONFIG = ("-c", "core.quotePath=false", "-c", "diff.noprefix=false", "-c", "diff.mnemonicPrefix=false")
+# diff.algorithm and diff.ignoreSubmodules. Git attributes are the change's own data (a ``.gitattributes``
+# in the tree): ``--text`` keeps ``-diff`` / ``binary`` from hiding added lines, ``--no-textconv`` and
+# ``--no-ext-diff`` keep a ``diff=`` driver from rewriting them, and the user's attributes file is off.
+# Whether a file is binary is decided here from its bytes instead (:func:`_looks_binary`).
+_CONFIG = (
+    "-c",
+    "core.quotePath=false",
+    "-c",
+    "diff.noprefix=false",
+    "-c",
+    "diff.mnemonicPrefix=false",
+    "-c",
+    f"core.attributesFile={os.devnull}",
+)
 _SELECTION = (
     "--no-color",
     "--no-ext-diff",
@@ -38,6 +51,8 @@ _SELECTION = (
 )
 _PATCH_FORMAT = (
     "--patch",
+    "--text",
+    "--full-index",
     "-U0",
     "--inter-hunk-context=0",
     "--src-prefix=a/",
@@ -62,6 +77,7 @@ _GIT_HEADER = b"diff --git "
 _HUNK_HEADER = b"@@ "
 _DEV_NULL = b"/dev/null"
 _NO_MODE = "000000"
+GITLINK_MODE = "160000"  # a submodule: the commit of another repository, no lines of this one
 _HEADER_KEYS = (
     b"old mode ",
     b"new mode ",
@@ -207,19 +223,31 @@ def _read_section(section: list[bytes]) -> FileChange:
     path = new_path if new_path is not None else old_path
     if path is None:
         raise _refuse(f"no path on either side of 'diff --git {_decode(section[0][11:]).rstrip()}'")
-    added, removed = _changed_lines(section[first_hunk:], _decode(path))
+    binary = b"Binary files " in header or b"GIT binary patch" in header or _looks_binary(section[first_hunk:])
+    added, removed = ((), ()) if binary else _changed_lines(section[first_hunk:], _decode(path))
     status = _header_status(header)
     old_mode, new_mode = _header_modes(header)
+    if old_mode == GITLINK_MODE:
+        removed = ()
+    if new_mode == GITLINK_MODE:
+        added = ()
     return FileChange(
         path=_decode(path),
         old_path=None if old_path is None else _decode(old_path),
         status=status,
-        binary=b"Binary files " in header or b"GIT binary patch" in header,
+        binary=binary,
         old_mode=None if status == "added" else old_mode,
         new_mode=None if status == "deleted" else new_mode,
         added_lines=added,
         removed_lines=removed,
     )
+
+
+def _looks_binary(hunks: list[bytes]) -> bool:
+    """A NUL byte in the changed lines: git's own test for binary content (a NUL in the first 8000 bytes,
+    xdiff-interface.c, from memory), applied to what the diff shows, whatever the attributes say.
+    Python refuses source holding a NUL byte, so no runnable Python line hides behind this."""
+    return any(b"\0" in line for line in hunks)
 
 
 def _header_fields(lines: Sequence[bytes]) -> dict[bytes, bytes]:
@@ -415,4 +443,11 @@ def _apply_listing(changes: list[FileChange], listed: list[_Listed]) -> list[Fil
         if seen != (entry.status, entry.path, entry.old_path):
             raise _refuse(f"the patch shows {seen} where the listing shows {entry}")
         result.append(replace(change, old_mode=entry.old_mode, new_mode=entry.new_mode))
-    return result
+    return [_without_gitlink_lines(change) for change in result]
+
+
+def _without_gitlink_lines(change: FileChange) -> FileChange:
+    """A submodule side has no lines of this repository ('Subproject commit ...' is git's notation)."""
+    removed = () if change.old_mode == GITLINK_MODE else change.removed_lines
+    added = () if change.new_mode == GITLINK_MODE else change.added_lines
+    return replace(change, added_lines=added, removed_lines=removed)

@@ -9,10 +9,10 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from verifier.change.diff import DIFF_ARGS, RAW_ARGS, parse_diff
+from verifier.change.diff import DIFF_ARGS, GITLINK_MODE, RAW_ARGS, parse_diff
 from verifier.errors import CannotVerify, UsageError
 from verifier.gitio import Git
-from verifier.models import INDEX, Change, Commit
+from verifier.models import INDEX, Change, Commit, FileChange
 
 
 @dataclass(frozen=True)
@@ -78,10 +78,27 @@ def _ident(git: Git, variable: str) -> str:
     return ident.rsplit(" ", 2)[0] if ident else "unknown"
 
 
-def _diff(git: Git, base: str | None, head: str | None):  # type: ignore[no-untyped-def]
+def _diff(git: Git, base: str | None, head: str | None) -> tuple[FileChange, ...]:
     start = base or git.empty_tree()
     listing = git.diff(RAW_ARGS, start, head) if RAW_ARGS else None
     return parse_diff(git.diff(DIFF_ARGS, start, head), listing)
+
+
+def submodules(change: Change) -> tuple[str, ...]:
+    """The paths of the change that are (or were) submodules."""
+    return tuple(f.path for f in change.files if GITLINK_MODE in (f.old_mode, f.new_mode))
+
+
+def refuse_machine_submodules(change: Change, machine_touched: frozenset[str]) -> None:
+    """A machine-written commit that adds, moves or updates a submodule brings in code of another
+    repository, which the gate cannot see into: could not verify, naming the path."""
+    touched = [path for path in submodules(change) if path in machine_touched]
+    if touched:
+        raise CannotVerify(
+            f"a machine-written commit changes the submodule {', '.join(repr(p) for p in touched)}: the code it "
+            "points to lives in another repository, which this check cannot verify",
+            "change the submodule in a separate, human-written commit (verify its repository on its own)",
+        )
 
 
 def _is_shallow_boundary(git: Git, sha: str) -> bool:

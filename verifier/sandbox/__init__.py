@@ -3,6 +3,10 @@
 A backend takes a :class:`~verifier.models.SandboxRequest` (a materialised tree and a Python command)
 and returns a :class:`~verifier.models.SandboxResult` (exit status, capped output, collected files,
 resource facts). Backends are imported lazily, so that choosing one costs nothing for the others.
+
+Everything a caller may need from a backend is in :class:`Backend`; steps only one backend has (the
+docker backend picking the image built for a repository, its engine facts for the doctor) sit behind
+these methods, so no caller tests a backend's name.
 """
 
 from __future__ import annotations
@@ -25,11 +29,26 @@ CHOICES = ("auto", *BACKENDS)
 class Backend(Protocol):
     """What every backend provides."""
 
-    name: str
-    isolation: str  # one line a report can show: what this backend protects against
+    @property
+    def name(self) -> str:
+        """The registry name (``docker``, ``namespace``, ``process``)."""
+
+    @property
+    def isolation(self) -> str:
+        """One line a report can show: what this backend protects against."""
 
     def problem(self) -> str | None:
         """None when the backend works here, else why not and what to do."""
+
+    def for_repository(self, repo: str, base: str | None) -> Backend:
+        """The backend to use for runs of the repository at ``repo`` whose trusted revision is ``base``
+        (the docker backend picks the image built for its test dependencies); often ``self``."""
+
+    def environment(self) -> str:
+        """What besides the name makes this backend's runs differ (the image), for content-keyed caches."""
+
+    def facts(self) -> list[tuple[str, str]]:
+        """Versions and details for ``verifier sandbox doctor``; never raises."""
 
     def run(self, request: SandboxRequest) -> SandboxResult:
         """Run ``request`` to the end (or its limits) and clean up everything it started."""
@@ -44,7 +63,8 @@ def load(name: str) -> Backend:
         module = importlib.import_module(module_name)
     except ImportError as error:
         raise SandboxUnavailable([(name, f"cannot be loaded: {error}")]) from error
-    return getattr(module, class_name)()
+    backend: Backend = getattr(module, class_name)()
+    return backend
 
 
 def choose(requested: str, allow_process: bool) -> Backend:

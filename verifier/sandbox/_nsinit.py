@@ -33,7 +33,7 @@ import struct
 import sys
 import traceback
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 from verifier.models import Limits
 from verifier.sandbox import common
@@ -54,6 +54,30 @@ SECUREBITS = 0b11101011
 SYS_PIVOT_ROOT = {"x86_64": 155, "aarch64": 41, "riscv64": 41, "ppc64le": 203, "s390x": 217}
 SYS_MOUNT_SETATTR = 442  # the same number on every architecture (added after the syscall tables merged)
 SIOCGIFFLAGS, SIOCSIFFLAGS, IFF_UP = 0x8913, 0x8914, 0x1
+PR_SET_SECCOMP, SECCOMP_MODE_FILTER = 22, 2
+# Classic BPF (<linux/filter.h>, <linux/seccomp.h>): the syscall number is at offset 0 of seccomp_data,
+# the audit architecture at 4, the low word of the first argument at 16 (little-endian machines).
+BPF_LD_W_ABS, BPF_JEQ_K, BPF_JSET_K, BPF_JGE_K, BPF_RET_K = 0x20, 0x15, 0x45, 0x35, 0x06
+SECCOMP_RET_ALLOW, SECCOMP_RET_ERRNO = 0x7FFF0000, 0x00050000
+X32_SYSCALL_BIT = 0x40000000
+# Per architecture: its audit id and the syscall numbers the filter names (from <asm/unistd.h>; the
+# x86_64 ones checked against this machine's headers, the aarch64 ones from the generic table, from memory).
+
+
+class SyscallTable(NamedTuple):
+    audit: int
+    unshare: int
+    clone: int
+    clone3: int
+    denied: tuple[int, ...]
+
+
+SECCOMP_ARCH = {
+    "x86_64": SyscallTable(0xC000003E, 272, 56, 435, (250, 248, 249, 321, 323, 298, 425, 246, 175, 313, 176)),
+    "aarch64": SyscallTable(0xC00000B7, 97, 220, 435, (219, 217, 218, 280, 282, 241, 425, 104, 105, 273, 106)),
+}
+# denied, in order: keyctl, add_key, request_key, bpf, userfaultfd, perf_event_open, io_uring_setup,
+# kexec_load, init_module, finit_module, delete_module: kernel surface no test run needs.
 
 SANDBOX_ID = 1000  # uid and gid of the command inside the sandbox
 HOST_ID_FOR_ROOT = 65534  # what that id is on the host when the verifier runs as root (nobody/nogroup)
@@ -229,6 +253,7 @@ def _inner(config: dict[str, Any], lifeline: int) -> int:
     status: dict[str, Any]
     try:
         _build_root(config)
+        _forbid_nested_user_namespaces()
         _pivot_into(config["new_root"])
         status = _run_command(config)
         files, too_large = common.collect_files(WORKSPACE, config["collect"])
@@ -337,6 +362,63 @@ def _pivot_into(root: str) -> None:
     _mount(None, "/", None, MS_REMOUNT | MS_BIND | MS_RDONLY | MS_NOSUID | MS_NODEV)
 
 
+def _bpf(code: int, k: int, jump_true: int = 0, jump_false: int = 0) -> bytes:
+    return struct.pack("HBBI", code, jump_true, jump_false, k)
+
+
+def seccomp_program(machine: str) -> bytes | None:
+    """The filter the command runs under: no new user namespace (unshare or clone with CLONE_NEWUSER;
+    clone3, whose flags a classic filter cannot read, answers ENOSYS so that the C library falls back
+    to clone), no key, BPF, perf, userfaultfd, io_uring or kernel-module calls; None on an unknown machine."""
+    table = SECCOMP_ARCH.get(machine)
+    if table is None:
+        return None
+    eperm, enosys = SECCOMP_RET_ERRNO | errno.EPERM, SECCOMP_RET_ERRNO | errno.ENOSYS
+    head = [
+        _bpf(BPF_LD_W_ABS, 4),
+        _bpf(BPF_JEQ_K, table.audit, 1, 0),
+        _bpf(BPF_RET_K, eperm),  # another ABI (32-bit compat): refused
+        _bpf(BPF_LD_W_ABS, 0),
+        _bpf(BPF_JGE_K, X32_SYSCALL_BIT, 0, 1),
+        _bpf(BPF_RET_K, eperm),  # the x32 ABI's numbers would slip past the ones below
+        _bpf(BPF_JEQ_K, table.clone3, 0, 1),
+        _bpf(BPF_RET_K, enosys),
+    ]
+    checks = []
+    for number in table.denied:
+        checks += [_bpf(BPF_JEQ_K, number, 0, 1), _bpf(BPF_RET_K, eperm)]
+    flags = [
+        _bpf(BPF_JEQ_K, table.unshare, 1, 0),
+        _bpf(BPF_JEQ_K, table.clone, 0, 3),
+        _bpf(BPF_LD_W_ABS, 16),
+        _bpf(BPF_JSET_K, CLONE_NEWUSER, 0, 1),
+        _bpf(BPF_RET_K, eperm),
+        _bpf(BPF_RET_K, SECCOMP_RET_ALLOW),
+    ]
+    return b"".join(head + checks + flags)
+
+
+def _install_seccomp() -> None:
+    """Install :func:`seccomp_program` for this process and all it starts (needs no_new_privs first)."""
+    program = seccomp_program(platform.machine())
+    if program is None:
+        return
+    buffer = ctypes.create_string_buffer(program, len(program))
+
+    class SockFprog(ctypes.Structure):
+        _fields_ = (("len", ctypes.c_ushort), ("filter", ctypes.c_void_p))
+
+    fprog = SockFprog(len(program) // 8, ctypes.cast(buffer, ctypes.c_void_p))
+    common.prctl(PR_SET_SECCOMP, SECCOMP_MODE_FILTER, ctypes.addressof(fprog))
+
+
+def _forbid_nested_user_namespaces() -> None:
+    """Set this user namespace's own limit of nested user namespaces to 0 (it binds every namespace below
+    it too), where the kernel lets the namespace's root do so; the seccomp filter stands in any case."""
+    with contextlib.suppress(OSError):
+        Path("/proc/sys/user/max_user_namespaces").write_text("0\n")
+
+
 def _drop_privileges(limits: Limits) -> None:
     """In the command's process before exec: rlimits, no capabilities ever again, the sandbox id."""
     common.apply_limits(limits, limits.processes)  # counted per user namespace (Linux >= 5.14)
@@ -350,6 +432,7 @@ def _drop_privileges(limits: Limits) -> None:
         os.setresgid(SANDBOX_ID, SANDBOX_ID, SANDBOX_ID)
         os.setresuid(SANDBOX_ID, SANDBOX_ID, SANDBOX_ID)
     common.prctl(PR_SET_NO_NEW_PRIVS, 1)
+    _install_seccomp()
 
 
 def _start_command(config: dict[str, Any]) -> int:

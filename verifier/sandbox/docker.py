@@ -34,8 +34,8 @@ from typing import TYPE_CHECKING, Any
 from verifier.errors import CannotVerify, SandboxUnavailable
 from verifier.models import Limits, SandboxRequest, SandboxResult
 
-if TYPE_CHECKING:
-    from docker import DockerClient
+if TYPE_CHECKING:  # the Docker SDK ships no type information (the ignore is unused where stubs exist)
+    from docker import DockerClient  # type: ignore[import-untyped,unused-ignore]
 
 NAME = "docker"
 DEFAULT_IMAGE = "verifier-sandbox:latest"
@@ -115,7 +115,7 @@ def connect(timeout: int = 60) -> DockerClient:
     _refuse_missing_socket(engine_endpoint())
     try:
         import docker
-        from docker.tls import TLSConfig
+        from docker.tls import TLSConfig  # type: ignore[import-untyped,unused-ignore]
     except ImportError as error:
         raise SandboxUnavailable(
             [(NAME, "the Docker SDK for Python is not installed")], hint="pip install 'verifier[docker]'"
@@ -277,7 +277,7 @@ def _labels(limits: Limits) -> dict[str, str]:
 
 def _host_settings(client: DockerClient, limits: Limits) -> dict[str, Any]:
     """The lock-down: everything a container is denied, in the SDK's create() keywords."""
-    from docker.types import DriverConfig, Mount, Ulimit
+    from docker.types import DriverConfig, Mount, Ulimit  # type: ignore[import-untyped,unused-ignore]
 
     workspace_options = f"size={limits.workspace_mb}m,uid={SANDBOX_UID},gid={SANDBOX_UID},mode=0700,nosuid,nodev"
     workspace = Mount(
@@ -318,9 +318,15 @@ def _command_env(env: Mapping[str, str]) -> dict[str, str]:
 
 def _untimed(raw: Any) -> None:
     """Let a blocking read of the exec stream wait as long as the command runs (the watchdog ends it)."""
-    for candidate in (raw, getattr(raw, "_sock", None)):
+    for candidate in _stream_layers(raw):
         if hasattr(candidate, "settimeout"):
             candidate.settimeout(None)
+
+
+def _stream_layers(raw: Any) -> list[Any]:
+    """The exec stream and the socket beneath it (the SDK wraps it differently per transport)."""
+    inner = getattr(raw, "_sock", None)
+    return [raw] if inner is None else [raw, inner]
 
 
 class _Run:
@@ -411,7 +417,7 @@ class _Run:
         return outcome
 
     def _read_output(self, raw: Any, outcome: _Outcome) -> None:
-        from docker.utils.socket import frames_iter
+        from docker.utils.socket import frames_iter  # type: ignore[import-untyped,unused-ignore]
 
         _untimed(raw)
         cap = self.limits.output_bytes
@@ -454,7 +460,7 @@ class _Run:
 
 def _close(raw: Any) -> None:
     """End the exec stream's connection for real (closing a socket file object alone may keep it open)."""
-    for candidate in (getattr(raw, "_sock", None), raw):
+    for candidate in reversed(_stream_layers(raw)):
         if hasattr(candidate, "shutdown"):
             with contextlib.suppress(OSError):
                 candidate.shutdown(socket.SHUT_RDWR)
@@ -492,6 +498,26 @@ class DockerBackend:
 
     def __init__(self, image: str | None = None) -> None:
         self.image = image or os.environ.get(IMAGE_ENV) or DEFAULT_IMAGE
+
+    def for_repository(self, repo: str, base: str | None) -> DockerBackend:
+        """The image built for the repository's test dependencies at ``base``, when there is one
+        (and no image was chosen through the environment)."""
+        if os.environ.get(IMAGE_ENV):
+            return self
+        from verifier.sandbox.images import image_for
+
+        return DockerBackend(image_for(repo, base) or self.image)
+
+    def environment(self) -> str:
+        return self.image
+
+    def facts(self) -> list[tuple[str, str]]:
+        try:
+            from verifier.sandbox.images import docker_facts
+
+            return docker_facts(self.image)
+        except Exception as error:  # the doctor reports; it never fails on a missing piece
+            return [("facts", f"unavailable: {_first_line(error)}")]
 
     def problem(self) -> str | None:
         try:

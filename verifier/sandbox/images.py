@@ -34,8 +34,8 @@ from typing import TYPE_CHECKING, Any
 from verifier.errors import SandboxUnavailable, VerifierError
 from verifier.sandbox.docker import DEFAULT_IMAGE, IMAGE_ENV, LABEL, NAME, SANDBOX_UID, WORKSPACE, connect
 
-if TYPE_CHECKING:
-    from docker import DockerClient
+if TYPE_CHECKING:  # the Docker SDK ships no type information (the ignore is unused where stubs exist)
+    from docker import DockerClient  # type: ignore[import-untyped,unused-ignore]
 
 Progress = Callable[[str], None]
 
@@ -310,10 +310,10 @@ def _include_target(line: str) -> str | None:
 
 def pyproject_requirements(text: str) -> list[str]:
     """``[project]`` dependencies, its test extras and test dependency groups (PEP 621, PEP 735)."""
-    try:
+    if sys.version_info >= (3, 11):
         import tomllib
-    except ImportError:  # Python 3.10
-        import tomli as tomllib  # type: ignore[no-redef]
+    else:
+        import tomli as tomllib
     data = tomllib.loads(text)
     project = data.get("project", {})
     found = list(project.get("dependencies", []))

@@ -25,6 +25,7 @@ from typing import Any
 from verifier.errors import CannotVerify
 from verifier.models import Limits, SandboxRequest, SandboxResult
 from verifier.sandbox import _nsinit, common
+from verifier.sandbox.cgroup import RunGroup, whole_run_problem
 
 _BOOT = "import sys; sys.path.insert(0, sys.argv[1]); from verifier.sandbox._nsinit import main; main(sys.argv[2])"
 _HOST_FOLDERS = ("/usr", "/bin", "/sbin", "/lib", "/lib32", "/lib64", "/libx32")
@@ -60,9 +61,11 @@ def _ask_init_to_stop(process: subprocess.Popen[bytes]) -> None:
         os.kill(process.pid, signal.SIGTERM)
 
 
-def _start_init(parent: int) -> None:
-    """Between fork and exec of the init: die with the verifier, whatever kills it."""
+def _start_init(parent: int, group: RunGroup | None) -> None:
+    """Between fork and exec of the init: die with the verifier, whatever kills it; join the run's cgroup."""
     common.die_with_parent(parent)
+    if group is not None:
+        group.join()
 
 
 class NamespaceBackend:
@@ -78,15 +81,50 @@ class NamespaceBackend:
     def problem(self) -> str | None:
         return _probe()
 
+    def for_repository(self, repo: str, base: str | None) -> NamespaceBackend:
+        return self
+
+    def environment(self) -> str:
+        return ""
+
+    def facts(self) -> list[tuple[str, str]]:
+        import platform
+
+        limit = Path("/proc/sys/user/max_user_namespaces")
+        whole_run = whole_run_problem()
+        machine = platform.machine()
+        return [
+            ("kernel", platform.release()),
+            ("user namespaces allowed", limit.read_text().strip() if limit.exists() else "unknown"),
+            (
+                "memory of the whole run",
+                "limited by a cgroup v2 of its own"
+                if whole_run is None
+                else f"not limited as a whole ({whole_run}); each process has its own limit (rlimit)",
+            ),
+            (
+                "system-call filter",
+                "seccomp: no new user namespaces, no keys, BPF, perf, userfaultfd, io_uring or modules"
+                if _nsinit.seccomp_program(machine) is not None
+                else f"none: no table of system calls for {machine}",
+            ),
+        ]
+
     def run(self, request: SandboxRequest) -> SandboxResult:
         common.check_tree(request)
         folder = common.make_temp_dir("namespace")
+        group = RunGroup.create(request.limits.memory_mb << 20)
         try:
-            return self._run_in(folder, request)
+            result = self._run_in(folder, request, group)
+            if group is not None and group.out_of_memory_kills() and result.limit_hit in (None, "memory"):
+                result = dataclasses.replace(result, limit_hit="memory")
+            return result
         finally:
+            if group is not None:
+                group.remove()
             common.remove_temp_dir(folder)
 
-    def _run_in(self, folder: Path, request: SandboxRequest) -> SandboxResult:
+    def _run_in(self, folder: Path, request: SandboxRequest, group: RunGroup | None) -> SandboxResult:
         out_dir, new_root = folder / "out", folder / "root"
         out_dir.mkdir(mode=0o700)
         new_root.mkdir(mode=0o700)
@@ -110,7 +148,7 @@ class NamespaceBackend:
             cwd=str(folder),
             env={"PATH": "/usr/bin:/bin", "LANG": "C.UTF-8"},
             limits=request.limits,
-            preexec=functools.partial(_start_init, os.getpid()),
+            preexec=functools.partial(_start_init, os.getpid(), group),
             stop=_ask_init_to_stop,
         )
         status = _read_status(out_dir)

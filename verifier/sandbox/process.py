@@ -51,6 +51,15 @@ class ProcessBackend:
             return f"needs Linux (this is {sys.platform}); use the docker sandbox"
         return None
 
+    def for_repository(self, repo: str, base: str | None) -> ProcessBackend:
+        return self
+
+    def environment(self) -> str:
+        return ""
+
+    def facts(self) -> list[tuple[str, str]]:
+        return [("runs as", f"uid {os.getuid()}, the invoking user")]
+
     def run(self, request: SandboxRequest) -> SandboxResult:
         common.check_tree(request)
         folder = common.make_temp_dir("process")

@@ -113,7 +113,7 @@ def environment_key(policy: Policy, backend: Backend) -> str:
         "format": FORMAT,
         "python": [sys.version, platform.python_implementation(), platform.machine()],
         "distributions": distributions,
-        "backend": [backend.name, str(getattr(backend, "image", "") or "")],
+        "backend": [backend.name, backend.environment()],
         "tests": [list(policy.test_paths), list(policy.pytest_args), list(policy.python_path)],
         "harness": hashlib.sha256((testrun.HARNESS + testrun.PLUGIN + testrun.COVERAGERC).encode()).hexdigest(),
     }

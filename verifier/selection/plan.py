@@ -38,6 +38,7 @@ from verifier.selection.impactmap import IMPORT_TIME, ImpactMap
 if TYPE_CHECKING:
     from verifier.gitio import Git
     from verifier.sandbox import Backend
+    from verifier.selection.imports import ImportGraph
 
 TEST_FILES = ("**/test_*.py", "**/*_test.py")
 MAX_REASONS = 3  # per test, in the report
@@ -356,18 +357,18 @@ def innermost(found: list[Function] | None, line: int) -> Function | None:
 def _importers(git: Git, change: Change, policy: Policy) -> Importers:
     from verifier.selection.imports import build_graph
 
-    graphs: dict[str, object] = {}
+    graphs: dict[str, ImportGraph] = {}
 
     def importers(side: str, path: str) -> set[str]:
         if side not in graphs:
             revision = change.base if side == "base" else change.head
             graphs[side] = _cached_graph(git, revision, lambda: build_graph(python_sources(git, revision)))
-        return graphs[side].importers([path])  # type: ignore[attr-defined]
+        return graphs[side].importers([path])
 
     return importers
 
 
-def _cached_graph(git: Git, revision: str | None, build):  # type: ignore[no-untyped-def]
+def _cached_graph(git: Git, revision: str | None, build: Callable[[], ImportGraph]) -> ImportGraph:
     """The import graph of a commit's tree, kept beside the who-tests-what maps (keyed by the tree hash,
     safe to delete); the index and the empty tree are read every time."""
     from verifier.selection.impactmap import cache_dir, tree_of
@@ -395,8 +396,8 @@ def python_sources(git: Git, revision: str | None) -> dict[str, str]:
         names = git.run(["ls-files", "-z"]).decode("utf-8", "surrogateescape").split("\0")
         prefix = ":"
     else:
-        names = git.run(["ls-tree", "-r", "-z", "--name-only", revision]).decode("utf-8", "surrogateescape")
-        names = names.split("\0")
+        listing = git.run(["ls-tree", "-r", "-z", "--name-only", revision])
+        names = listing.decode("utf-8", "surrogateescape").split("\0")
         prefix = f"{revision}:"
     python = [name for name in names if name.endswith(".py")]
     blobs = git.read_blobs([f"{prefix}{name}" for name in python])
