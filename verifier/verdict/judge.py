@@ -78,8 +78,3 @@ def capped(finding: Finding) -> Finding:
     if finding.severity == "block" and finding.details.get("max_severity") == "warn":
         return replace(finding, severity="warn")
     return finding
-
-
-def is_waived(finding: Finding) -> bool:
-    """True when a waiver turned this finding into ``info``."""
-    return isinstance(finding.details.get("waived_by"), dict)
