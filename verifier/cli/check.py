@@ -68,7 +68,8 @@ def run(args: argparse.Namespace) -> int:
     message = _read_message(args)
     if args.staged and not _has_machine_trailer(message):
         if not args.quiet:  # on stderr when a machine format was asked for: stdout is that format's alone
-            stream = sys.stderr if args.format and set(args.format) != {"text"} else sys.stdout
+            machine_on_stdout = args.output in (None, "-") and bool(set(args.format or ()) - {"text"})
+            stream = sys.stderr if machine_on_stdout else sys.stdout
             print("verifier: no Model-Written trailer in the message; nothing to verify", file=stream)
         return ExitCode.PASS
     plan = plan_output(args)
