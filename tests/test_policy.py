@@ -368,3 +368,8 @@ def test_a_list_as_a_key_is_refused_without_quoting_it() -> None:
 def test_yaml_anchors_in_an_ordinary_policy_still_work() -> None:
     text = "version: 1\ntests:\n  paths: &tests [tests/]\ncoverage:\n  exclude: *tests\n"
     assert parse_layer(text, "verifier.yaml")["coverage"]["exclude"].value == ["tests/"]
+
+
+def test_a_huge_key_is_quoted_short() -> None:
+    error = error_of("version: 1\ncoverage:\n  ? " + "k" * 100_000 + "\n  : 5\n")  # '?': a key of any length
+    assert error.key == "coverage" and "short word" in error.problem and len(str(error)) < 300

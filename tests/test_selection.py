@@ -144,7 +144,9 @@ def test_always_fails():
 
 
 def test_a_test_that_passes_on_a_rerun_is_reported_flaky_and_a_real_failure_still_blocks(repo):
-    library(repo, policy="selection:\n  mode: all\n  reruns: 2\n", extra={"tests/test_flaky.py": FLAKY})
+    # test_always_fails fails at base too: a pre-existing failure warns unless the policy blocks those as well
+    policy = "selection:\n  mode: all\n  reruns: 2\nrules:\n  tests.failing:\n    block_pre_existing: true\n"
+    library(repo, policy=policy, extra={"tests/test_flaky.py": FLAKY})
     change_heavy_branch(repo)
     out = run_check(repo, "HEAD")
     outcomes = {t["node_id"]: t for t in out.report["tests"]["outcomes"]}

@@ -169,11 +169,16 @@ def _select_and_run(check: CheckContext) -> tuple[Selection, RunResult]:
     )
     check.say(f"tests: {selection.reason} (map: {selection.map_status})")
     run = _run_tests(check, selection, backend)
-    if check.policy.selection.differential:
+    if check.policy.selection.differential or _fails(run):
+        # a failure is judged knowing whether it fails at base too (a pre-existing failure does not block)
         from verifier.testrun.differential import with_baseline
 
         run = with_baseline(check.git, check.change, check.policy, selection, run, backend, impact, check.say)
     return selection, run
+
+
+def _fails(run: RunResult) -> bool:
+    return run.status == "completed" and any(test.outcome in ("failed", "error") for test in run.tests)
 
 
 def _backend(check: CheckContext) -> Backend:

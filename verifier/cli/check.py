@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import sys
 from collections.abc import Callable
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -66,8 +67,10 @@ def add_org_policy_option(parser: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     message = _read_message(args)
     if args.staged and not _has_machine_trailer(message):
-        if not args.quiet:
-            print("verifier: no Model-Written trailer in the message; nothing to verify")
+        if not args.quiet:  # on stderr when a machine format was asked for: stdout is that format's alone
+            machine_on_stdout = args.output in (None, "-") and bool(set(args.format or ()) - {"text"})
+            stream = sys.stderr if machine_on_stdout else sys.stdout
+            print("verifier: no Model-Written trailer in the message; nothing to verify", file=stream)
         return ExitCode.PASS
     plan = plan_output(args)
     plan.clear_stale()

@@ -21,7 +21,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from verifier.errors import EXIT_PASS, UsageError, VerifierError
+from verifier.errors import EXIT_PASS, EXIT_USAGE, UsageError, VerifierError
 
 if TYPE_CHECKING:
     from verifier.gitio import Git
@@ -174,7 +174,7 @@ def run_hook(repo: str, name: str, args: Sequence[str], stdin: Iterable[str] = (
     if name == "post-commit":
         return post_commit(repo)
     if name == "pre-push":
-        return pre_push(repo, list(stdin))
+        return pre_push(repo, list(stdin), args)
     raise UsageError(f"no hook '{name}'", hint=f"one of {', '.join(HOOK_NAMES)}")
 
 
@@ -188,14 +188,24 @@ def commit_msg(repo: str, message_file: Path) -> int:
         message = message_file.read_text(encoding="utf-8", errors="replace")
     except OSError as error:
         raise UsageError(f"cannot read the message file {message_file}: {error.strerror}") from error
+    from verifier.gitio import Git
     from verifier.provenance.trailers import machine_mark
 
-    if machine_mark(message) is None:
-        return EXIT_PASS
-    from verifier.gitio import Git
-
-    git = Git(Git(repo).toplevel())
+    marked = machine_mark(message) is not None
+    probe = Git(repo)
+    if not marked and not probe.ok(["rev-parse", "--git-dir"]):
+        return EXIT_PASS  # outside a repository there is no policy to keep valid
     index_file = os.path.abspath(os.environ["GIT_INDEX_FILE"]) if os.environ.get("GIT_INDEX_FILE") else None
+    git = Git(probe.toplevel(), index_file=index_file)
+    from verifier.policy.guard import staged_policy_problem
+
+    problem = staged_policy_problem(git)
+    if problem:
+        _say(problem)
+        _refuse_commit(git, message_file, "the commit is stopped: it would leave the policy broken")
+        return EXIT_USAGE
+    if not marked:
+        return EXIT_PASS
     try:
         report = _verify(git, None, staged_message=message, index_file=index_file)
     except VerifierError as error:
@@ -255,13 +265,22 @@ def post_commit(repo: str) -> int:
 # -- pre-push --------------------------------------------------------------------------------------------
 
 
-def pre_push(repo: str, lines: Sequence[str]) -> int:
+def pre_push(repo: str, lines: Sequence[str], args: Sequence[str] = ()) -> int:
     """Verify every pushed range that holds machine-written commits; refuse the push when one fails."""
     from verifier.gitio import Git
 
     git = Git(Git(repo).toplevel())
-    specs = [spec for line in lines if line.strip() for spec in pushed_specs(git, *_push_line(line))]
+    remote = args[0] if args else None
+    specs = [
+        spec for line in lines if line.strip() for spec in pushed_specs(git, *_push_line(line), remote_name=remote)
+    ]
+    from verifier.policy.guard import pushed_policy_problem
+
     worst = EXIT_PASS
+    for problem in filter(None, (pushed_policy_problem(git, spec) for spec in specs)):
+        _say(problem)
+        _say("the push is refused: fix the policy in a new commit and push again")
+        worst = EXIT_USAGE
     for spec in specs:
         if not _has_machine_commits(git, spec):
             continue
@@ -273,6 +292,8 @@ def pre_push(repo: str, lines: Sequence[str]) -> int:
             worst = max(worst, error.exit_code)
             continue
         _print_report(report)
+        base = report.change.base[:12] if report.change.base else "none"
+        _say(f"judged by the policy at {base}, the base of {spec}: {report.policy_source}")
         _record(git, report)
         worst = max(worst, _exit_code(report))
     if worst != EXIT_PASS:
@@ -296,14 +317,18 @@ def _is_zero(sha: str) -> bool:
     return set(sha) == {"0"}
 
 
-def pushed_specs(git: Git, local: str, remote: str) -> list[str]:
+def pushed_specs(git: Git, local: str, remote: str, remote_name: str | None = None) -> list[str]:
     """The revision specs to verify for one pushed ref: none for a deletion; ``remote..local`` for a
-    fast-forward; from the merge-base for a force push; for a new branch, from the parent of the oldest
-    commit that no remote-tracking ref holds (a root commit is checked on its own)."""
+    fast-forward; from the merge-base for a force push; for a new branch, from where it left the remote's
+    main line (the remote's HEAD, else its main or master branch, when known here), else from the parent
+    of the oldest commit that no remote-tracking ref holds (a root commit is checked on its own)."""
     if _is_zero(local):
         return []
-    if not _is_zero(remote) and git.ok(["cat-file", "-e", f"{remote}^{{commit}}"]):
-        base = git.merge_base(remote, local)  # == remote for a fast-forward
+    known = [remote] if not _is_zero(remote) else _remote_main_line(git, remote_name)
+    for tip in known:
+        if not git.ok(["cat-file", "-e", f"{tip}^{{commit}}"]):
+            continue
+        base = git.merge_base(tip, local)  # == tip for a fast-forward
         if base == local:
             return []
         if base:
@@ -315,6 +340,19 @@ def pushed_specs(git: Git, local: str, remote: str) -> list[str]:
     if parent:
         return [f"{parent}..{local}"]
     return [new[0]] + ([f"{new[0]}..{local}"] if local != new[0] else [])
+
+
+def _remote_main_line(git: Git, remote_name: str | None) -> list[str]:
+    """The tips of the remote's main line (its HEAD, then main and master), as the remote reports them."""
+    if not remote_name:
+        return []
+    out = git.run(["ls-remote", "--symref", remote_name, "HEAD", "refs/heads/main", "refs/heads/master"], check=False)
+    tips = {}
+    for line in out.decode("utf-8", "replace").splitlines():
+        sha, _, ref = line.partition("\t")
+        if not sha.startswith("ref:"):
+            tips[ref] = sha
+    return [tips[ref] for ref in ("HEAD", "refs/heads/main", "refs/heads/master") if ref in tips]
 
 
 def _has_machine_commits(git: Git, spec: str) -> bool:

@@ -29,16 +29,18 @@ from verifier.gitio import Git
 from verifier.models import Policy
 from verifier.policy.build import build_policy
 from verifier.policy.parse import Layer, Located, error_at, parse_layer
-from verifier.policy.schema import is_path, shipped_dir, shipped_policies
+from verifier.policy.schema import POLICY_FILE, is_path, may_change_policy, shipped_dir, shipped_policies
 
 __all__ = [
     "ORG_POLICY_ENV",
     "POLICY_FILE",
     "Layer",
     "build_policy",
+    "check_policy_at",
     "file_layers",
     "load_policy",
     "load_policy_file",
+    "may_change_policy",
     "org_policy_path",
     "parse_layer",
     "policy_layers",
@@ -46,9 +48,9 @@ __all__ = [
     "shipped_dir",
     "shipped_layer",
     "shipped_policies",
+    "staged_policy_layers",
 ]
 
-POLICY_FILE = "verifier.yaml"
 ORG_POLICY_ENV = "VERIFIER_ORG_POLICY"
 MAX_EXTENDS_DEPTH = 8
 
@@ -81,12 +83,32 @@ def policy_layers(git: Git, base: str | None, org_policy: str | os.PathLike[str]
     _refuse_org_policy_inside(git, org_policy_path(org_policy))
     layers = [shipped_layer("default"), *_org_layers(org_policy)]
     if base is not None:
-        text = git.show_file(base, POLICY_FILE)
-        if text is not None:
-            label = f"{base[:12]}:{POLICY_FILE}"
-            layer = Layer(label, parse_layer(text.decode("utf-8", "replace"), label), repo_path=POLICY_FILE)
-            layers += _with_extends(layer, _revision_reader(git, base))
+        layers += _repository_layers(git, base)
     return _first_of_each(layers)
+
+
+def staged_policy_layers(git: Git, org_policy: str | os.PathLike[str] | None = None) -> list[Layer]:
+    """The layers as they would be after the commit being made: the repository's files from the index."""
+    _refuse_org_policy_inside(git, org_policy_path(org_policy))
+    return _first_of_each([shipped_layer("default"), *_org_layers(org_policy), *_repository_layers(git, None)])
+
+
+def check_policy_at(git: Git, revision: str | None, org_policy: str | os.PathLike[str] | None = None) -> Policy:
+    """Validate the policy as it is at ``revision`` (None: in the index); a broken one is a PolicyError
+    naming ``revision:file:line``."""
+    layers = staged_policy_layers(git, org_policy) if revision is None else policy_layers(git, revision, org_policy)
+    return build_policy(layers)
+
+
+def _repository_layers(git: Git, revision: str | None) -> list[Layer]:
+    """``verifier.yaml`` at ``revision`` (None: the index) and the files it extends, if it is there."""
+    text = git.show_file(revision, POLICY_FILE)
+    if text is None:
+        return []
+    prefix = "index" if revision is None else revision[:12]
+    label = f"{prefix}:{POLICY_FILE}"
+    layer = Layer(label, parse_layer(text.decode("utf-8", "replace"), label), repo_path=POLICY_FILE)
+    return _with_extends(layer, _revision_reader(git, revision))
 
 
 def _refuse_org_policy_inside(git: Git, path: Path | None) -> None:
@@ -140,13 +162,17 @@ def read_file_layer(path: Path) -> Layer:
 Reader = Callable[[str, Located], Layer]  # (relative path, the extends value) -> the layer it names
 
 
-def _revision_reader(git: Git, base: str) -> Reader:
+def _revision_reader(git: Git, base: str | None) -> Reader:
+    """Read the files a policy extends at ``base`` (None: from the index)."""
+    prefix = "index" if base is None else base[:12]
+    where_read = "in the index" if base is None else f"at the base revision {prefix}"
+
     def read(path: str, where: Located) -> Layer:
         clean = _relative(path, where)
-        label = f"{base[:12]}:{clean}"
+        label = f"{prefix}:{clean}"
         text = git.show_file(base, clean)
         if text is None:
-            raise error_at(where, "extends", f"no file '{clean}' at the base revision {base[:12]}")
+            raise error_at(where, "extends", f"no file '{clean}' {where_read}")
         return Layer(label, parse_layer(text.decode("utf-8", "replace"), label), repo_path=clean)
 
     return read

@@ -22,6 +22,7 @@ from verifier.rules import Rule
 from verifier.rules.catalog import load_all
 
 MAX_EXPANDED_NODES = 20_000
+MAX_KEY_LENGTH = 200  # rule ids and option names are far shorter; a longer key is quoted cut short
 
 
 @dataclass(frozen=True)
@@ -135,7 +136,10 @@ def _key(node: yaml.Node, source: str, prefix: str) -> str:
     """A mapping key: a plain word (a list or mapping as a key is refused without quoting it whole)."""
     if not isinstance(node, yaml.ScalarNode):
         raise _node_error(source, node, prefix.rstrip(".") or None, "a key must be a plain word, not a list or mapping")
-    return str(node.value)
+    key = str(node.value)
+    if len(key) > MAX_KEY_LENGTH:
+        raise _node_error(source, node, prefix.rstrip(".") or None, f"a key must be a short word, got {shown(key)}")
+    return key
 
 
 def _unknown(key: str, known: Iterable[str]) -> str:

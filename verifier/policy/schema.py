@@ -8,13 +8,14 @@ year of wall time or a petabyte of memory is a typo, not a setting.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 from verifier.policy import checks
 
+POLICY_FILE = "verifier.yaml"
 DAY_SECONDS = 86_400
 MEBIBYTES_IN_A_TEBIBYTE = 1_048_576
 
@@ -28,6 +29,12 @@ def shipped_dir() -> Path:
 
 def shipped_policies() -> tuple[str, ...]:
     return tuple(sorted(p.stem for p in shipped_dir().glob("*.yaml")))
+
+
+def may_change_policy(paths: Iterable[str]) -> bool:
+    """True when a change of ``paths`` can change the repository's policy: verifier.yaml, or a YAML file it
+    may build on (``extends:``). A cheap test on names (no YAML is read), for the commit hook's fast path."""
+    return any(path == POLICY_FILE or path.endswith((".yaml", ".yml")) for path in paths)
 
 
 def is_path(value: str) -> bool:

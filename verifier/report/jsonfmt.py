@@ -4,7 +4,8 @@ FORMAT_VERSION history (one line per version):
   1: verdict, base, head, sandbox, machine_lines, tests, coverage, findings (plus commits, policy, notes);
      added since: waivers_used, coverage.separate (files a per-path override judges on their own);
      selection (which tests ran and why), tests.flaky/flaky_ids/outcomes/differential, shard (a --shard
-     run's measurements, which verifier merge-reports joins).
+     run's measurements, which verifier merge-reports joins); a tests.failing finding's details.pre_existing
+     and details.at_base (the test fails at base too).
 """
 
 from __future__ import annotations

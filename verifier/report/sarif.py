@@ -172,7 +172,8 @@ def render(report: Report) -> str:
 
 
 def render_error(message: str, exit_code: int) -> str:
-    """A SARIF log saying the run did not complete (SARIF 2.1.0, 3.20.14 and 3.58: invocation, notifications)."""
+    """A SARIF log saying the run did not complete: the invocation's ``executionSuccessful`` false, its exit
+    code and a tool execution notification with the message (the tests validate it against the OASIS schema)."""
     from verifier import __version__
 
     invocation = {

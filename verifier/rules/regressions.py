@@ -24,8 +24,9 @@ def broken_tests(context: RuleContext) -> Iterator[Finding]:
     run = context.run
     if run is None:
         return
-    if run.baseline is None and context.policy.setting("tests.failing", "block") != "off":
-        return
+    differential = run.baseline is not None and context.policy.selection.differential
+    if not differential and context.policy.setting("tests.failing", "block") != "off":
+        return  # tests.failing reports the failures (with the base outcomes of a failing run, when known)
     for test in regressions(run.tests, run.baseline):
         kind = classify(run.baseline.get(test.node_id), test.outcome) if run.baseline is not None else "unknown"
         why = {

@@ -6,6 +6,7 @@ from collections.abc import Iterator
 
 from verifier.models import Finding
 from verifier.rules import RuleContext, rule
+from verifier.testrun.differential import classify
 
 _INCOMPLETE = {
     "timeout": "the test run hit its wall-clock limit and was stopped",
@@ -16,23 +17,35 @@ _INCOMPLETE = {
 }
 
 
-@rule("tests.failing", default="block", summary="a test fails at head", stage="dynamic")
+@rule(
+    "tests.failing",
+    default="block",
+    summary="a test fails at head",
+    stage="dynamic",
+    options={"block_pre_existing": False},
+)
 def failing_tests(context: RuleContext) -> Iterator[Finding]:
     """Every test that ran must pass. A failure or an error in setup or teardown at the head of the
     change is listed by its pytest node id with the first line of its message. Fix the code (or, if the
-    test was wrong, the test, in a human-reviewed change) and run the gate again."""
+    test was wrong, the test, in a human-reviewed change) and run the gate again. When a test fails, the
+    gate also runs the tests at the base revision: a test that fails there too is reported as
+    pre-existing and does not block a change that did not cause it (it warns), unless the policy sets
+    option ``block_pre_existing: true``."""
     run = context.run
     if run is None:
         return
     for test in run.tests:
         if test.outcome in ("failed", "error"):
             path = test.node_id.split("::", 1)[0]
+            at_base = None if run.baseline is None else run.baseline.get(test.node_id)
+            old = at_base is not None and classify(at_base, test.outcome) == "still-failing"
             yield Finding(
                 "tests.failing",
                 "block",
-                f"{test.node_id} {test.outcome}: {_gist(test.message)}",
+                f"{test.node_id} {test.outcome}{' (pre-existing: it fails at base too)' if old else ''}: "
+                f"{_gist(test.message)}",
                 path=path,
-                details={"message": test.message},
+                details={"message": test.message, **({"pre_existing": True, "at_base": at_base} if old else {})},
             )
 
 

@@ -1,6 +1,7 @@
 """Each finding's severity, decided in one place: the rule's setting at the finding's path (per-path
 overrides included), then a waiver (the finding becomes ``info``, saying who waived it until when), then
-the rule's cap (a finding that says it may at most warn never blocks).
+the caps: a failure that already happens at base warns (unless the policy blocks those too), and a
+finding that says it may at most warn never blocks.
 
 The rules report raw findings; :func:`apply_rules` runs the rules a policy enables and judges what they
 report, which is what the pipeline calls once per rule stage (static, dynamic).
@@ -42,7 +43,7 @@ def judge(policy: Policy, findings: Iterable[Finding]) -> list[Finding]:
             continue
         result = judge_finding(policy, registered.id, registered.default, registered.fixed, finding)
         if result is not None:
-            judged.append(capped(result))
+            judged.append(capped(_pre_existing(policy, registered, result)))
     return judged
 
 
@@ -61,14 +62,19 @@ def judge_finding(policy: Policy, rule_id: str, default: RuleSetting, fixed: boo
     return replace(finding, severity="info", details=details)
 
 
+def _pre_existing(policy: Policy, registered: Rule, finding: Finding) -> Finding:
+    """A failure that happens at the base revision too was not caused by the change: it warns, unless the
+    rule's option ``block_pre_existing`` (set in the policy) says it blocks anyway."""
+    if finding.severity != "block" or not finding.details.get("pre_existing"):
+        return finding
+    if "block_pre_existing" in registered.options and registered.option(policy, "block_pre_existing"):
+        return finding
+    return replace(finding, severity="warn", details={**finding.details, "max_severity": "warn"})
+
+
 def capped(finding: Finding) -> Finding:
     """A finding that says ``details["max_severity"] = "warn"`` never blocks (e.g. a changed expected value,
     which may be a legitimate fix): the rule's setting applies up to that cap."""
     if finding.severity == "block" and finding.details.get("max_severity") == "warn":
         return replace(finding, severity="warn")
     return finding
-
-
-def is_waived(finding: Finding) -> bool:
-    """True when a waiver turned this finding into ``info``."""
-    return isinstance(finding.details.get("waived_by"), dict)
