@@ -190,7 +190,7 @@ class Git:
             out = done.stdout
         elif any(b"\n" in spec for spec in wanted):  # a git older than 2.38 has no -z for cat-file
             said = done.stderr.decode("utf-8", "replace").strip()
-            raise CannotVerify(f"a path holds a newline and this git cannot read it in a batch: {said}", "use git 2.38+")
+            raise CannotVerify(f"a path holds a newline and this git cannot batch-read it: {said}", "use git 2.38+")
         else:
             out = self.run(["cat-file", "--batch"], input=b"".join(spec + b"\n" for spec in wanted))
         blobs: dict[str, bytes] = {}
