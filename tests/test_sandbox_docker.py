@@ -666,3 +666,22 @@ def test_only_a_full_workspace_is_reported_as_the_workspace_limit():
     other = docker_backend._copy_in_failure(docker.errors.APIError("archive/tar: invalid tar header"), 1, 8)
     assert "workspace limit" in (full.hint or "")
     assert "workspace limit" not in (other.hint or "") and "refused to copy the tree" in str(other)
+
+
+def test_an_image_chosen_through_the_environment_is_kept_for_every_repository(monkeypatch, tmp_path):
+    monkeypatch.setenv(docker_backend.IMAGE_ENV, "quill-sandbox:pinned")
+    backend = DockerBackend()
+    assert backend.for_repository(str(tmp_path), None) is backend
+    assert backend.environment() == "quill-sandbox:pinned"  # the image is part of the cache key
+
+
+@pytest.mark.docker
+def test_a_repository_gets_the_image_built_for_it_through_the_interface(docker_engine, tmp_path, monkeypatch):
+    monkeypatch.delenv(docker_backend.IMAGE_ENV, raising=False)
+    repo = tmp_path / "repo"
+    repo.mkdir()
+    subprocess.run(["git", "init", "-q"], cwd=repo, check=True)
+    chosen = DockerBackend().for_repository(str(repo), None)
+    assert isinstance(chosen, DockerBackend)
+    built = images.image_for(str(repo), None)
+    assert chosen.environment() == (built or docker_backend.DEFAULT_IMAGE)
