@@ -443,3 +443,16 @@ def test_copy_out_refuses_what_is_not_a_small_regular_file(run: Runner) -> None:
     assert "written" in result.output, result.output
     assert result.files == {"out/fine.json": b"{}"}
     assert "out/big.json" in result.output  # named as left behind, larger than the cap
+
+
+def test_a_tree_too_large_for_the_workspace_says_so_and_only_that(backend: NamespaceBackend, tmp_path: Path) -> None:
+    from verifier.errors import CannotVerify
+
+    tree = tmp_path / "big-tree"
+    tree.mkdir()
+    (tree / "blob.bin").write_bytes(os.urandom(3 << 20))
+    request = SandboxRequest(str(tree), ("-c", "pass"), {}, Limits(wall_seconds=30, workspace_mb=1), ())
+    with pytest.raises(CannotVerify, match="does not fit the 1 MB workspace") as raised:
+        backend.run(request)
+    assert "workspace limit" in (raised.value.hint or "")
+    assert "user namespaces" not in (raised.value.hint or "")
