@@ -431,3 +431,28 @@ def test_many_children_together_run_into_the_whole_run_memory_limit(run: Runner)
     )
     assert "-9" in result.output.split("codes:")[-1], result.output
     assert result.limit_hit == "memory"
+
+
+def test_copy_out_refuses_what_is_not_a_small_regular_file(run: Runner) -> None:
+    """A folder of sparse files, a sparse 1 GB file, a link to a host file and a FIFO in place of result
+    files: none is read on the host (the run fixture checks its temp folder is empty afterwards)."""
+    from test_sandbox_docker import HOSTILE_RESULTS
+
+    collect = ("out/results.jsonl", "out/big.json", "out/link.json", "out/pipe.json", "out/fine.json")
+    result = run(HOSTILE_RESULTS, collect=collect, file_size_mb=2048, workspace_mb=64)
+    assert "written" in result.output, result.output
+    assert result.files == {"out/fine.json": b"{}"}
+    assert "out/big.json" in result.output  # named as left behind, larger than the cap
+
+
+def test_a_tree_too_large_for_the_workspace_says_so_and_only_that(backend: NamespaceBackend, tmp_path: Path) -> None:
+    from verifier.errors import CannotVerify
+
+    tree = tmp_path / "big-tree"
+    tree.mkdir()
+    (tree / "blob.bin").write_bytes(os.urandom(3 << 20))
+    request = SandboxRequest(str(tree), ("-c", "pass"), {}, Limits(wall_seconds=30, workspace_mb=1), ())
+    with pytest.raises(CannotVerify, match="does not fit the 1 MB workspace") as raised:
+        backend.run(request)
+    assert "workspace limit" in (raised.value.hint or "")
+    assert "user namespaces" not in (raised.value.hint or "")

@@ -237,7 +237,14 @@ class Git:
         if not specs:
             return {}
         wanted = [path_bytes(spec) for spec in specs]
-        out = self.run(["cat-file", "--batch", "-z"], input=b"".join(spec + b"\0" for spec in wanted))
+        done = self._spawn(["cat-file", "--batch", "-z"], input=b"".join(spec + b"\0" for spec in wanted))
+        if done.returncode == 0:
+            out = done.stdout
+        elif any(b"\n" in spec for spec in wanted):  # a git older than 2.38 has no -z for cat-file
+            said = done.stderr.decode("utf-8", "replace").strip()
+            raise CannotVerify(f"a path holds a newline and this git cannot batch-read it: {said}", "use git 2.38+")
+        else:
+            out = self.run(["cat-file", "--batch"], input=b"".join(spec + b"\n" for spec in wanted))
         blobs: dict[str, bytes] = {}
         offset = 0
         for spec, raw in zip(specs, wanted, strict=True):

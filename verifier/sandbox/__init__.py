@@ -12,7 +12,7 @@ these methods, so no caller tests a backend's name.
 from __future__ import annotations
 
 import importlib
-from typing import Protocol
+from typing import TYPE_CHECKING, Protocol
 
 from verifier.errors import SandboxUnavailable, UsageError
 from verifier.models import SandboxRequest, SandboxResult
@@ -93,3 +93,13 @@ def choose(requested: str, allow_process: bool) -> Backend:
             return backend
         tried.append((name, problem))
     raise SandboxUnavailable(tried, hint="run 'verifier sandbox doctor' to see what each backend needs")
+
+
+if TYPE_CHECKING:  # mypy checks here that every registered backend provides the whole interface
+
+    def _every_backend_conforms() -> list[Backend]:
+        from verifier.sandbox.docker import DockerBackend
+        from verifier.sandbox.namespace import NamespaceBackend
+        from verifier.sandbox.process import ProcessBackend
+
+        return [DockerBackend(), NamespaceBackend(), ProcessBackend()]

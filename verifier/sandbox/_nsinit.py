@@ -258,7 +258,8 @@ def _inner(config: dict[str, Any], lifeline: int) -> int:
         status = _run_command(config)
         files, too_large = common.collect_files(WORKSPACE, config["collect"])
     except OSError as error:
-        _write_out(out_fd, STATUS_FILE, json.dumps({"error": str(error), "stage": "setup"}).encode())
+        failure = {"error": str(error), "stage": "setup", "errno": error.errno}
+        _write_out(out_fd, STATUS_FILE, json.dumps(failure).encode())
         return 1
     names = {}
     for number, (relative, data) in enumerate(files.items()):

@@ -6,10 +6,18 @@ filesystem, no capabilities, no new privileges and cgroup limits on processes, m
 CPU. The wall-clock limit is enforced from outside (the container is killed) and output is capped.
 
 How a run works, and why: an engine's archive API only sees a volume while the daemon has it
-mounted, so the container starts with a tiny *holder* as PID 1 (it reaps orphans and ends the
-container by itself once the wall limit plus a grace has passed), the tree is copied in, the command
-runs by ``exec`` and the collected files are copied out before the container is removed. Every
-container carries labels naming its owner process, so a later run reaps what a killed run left.
+mounted, so the container starts with a tiny *holder* as PID 1, the tree is copied in, the command
+runs by ``exec`` and the collected files are copied out before the container is removed. The holder
+runs as its own user (:data:`KEEPER_UID`), so the tests' user can neither trace nor signal it; it
+reaps orphans, and ends the container (so every test process in it) once the wall limit plus a grace
+has passed or as soon as the verifier's attached stream to its stdin closes: a ``kill -9`` of the
+verifier stops the tests within about a second, and the engine removes the stopped container. Every
+container also carries labels naming its owner process, so a later run reaps whatever is left.
+
+Copy-out trusts nothing: each result path is looked at in the engine's stat header and in the tar
+member's header before any content is read; only a regular file of at most
+:data:`~verifier.sandbox.common.COLLECT_CAP_BYTES` comes back, read within the run's wall clock plus a
+short grace, with the container paused so that nothing of the tests changes it meanwhile.
 
 The Docker SDK is imported here only, when a docker run or check is actually asked for.
 """
@@ -31,8 +39,9 @@ from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
 from typing import TYPE_CHECKING, Any
 
-from verifier.errors import CannotVerify, SandboxUnavailable
+from verifier.errors import CannotVerify, SandboxUnavailable, VerifierError
 from verifier.models import Limits, SandboxRequest, SandboxResult
+from verifier.sandbox.common import COLLECT_CAP_BYTES
 
 if TYPE_CHECKING:  # the Docker SDK ships no type information (the ignore is unused where stubs exist)
     from docker import DockerClient  # type: ignore[import-untyped,unused-ignore]
@@ -42,16 +51,23 @@ DEFAULT_IMAGE = "verifier-sandbox:latest"
 IMAGE_ENV = "VERIFIER_SANDBOX_IMAGE"
 WORKSPACE = "/workspace"
 SANDBOX_UID = 10001  # the image's ``sandbox`` user; numeric, so it works in any image
+KEEPER_UID = 10002  # the holder's user: not the tests', so they cannot trace or signal it
 LABEL = "verifier.sandbox"
 OWNER_LABEL = "verifier.owner"  # host/pid/start-ticks of the verifier process that started it
 EXPIRES_LABEL = "verifier.expires"  # host epoch after which the container is certainly orphaned
 ORPHAN_GRACE_SECONDS = 60
+COPY_OUT_GRACE_SECONDS = 10.0  # copy-out may run this long past the wall limit, never longer
+HEADER_ALLOWANCE = 1 << 20  # tar headers (PAX ones included) read besides a collected file's content
+# Go's os.FileMode type bits, as the engine's stat header reports them (dir, symlink, device, pipe, socket,
+# char device, irregular): a regular file has none of them.
+_FILE_TYPE_BITS = (1 << 31) | (1 << 27) | (1 << 26) | (1 << 25) | (1 << 24) | (1 << 21) | (1 << 19)
 MAX_CPUS = 2.0
 SPOOL_BYTES = 32 * 1024 * 1024
 
-# PID 1 of every sandbox container: reap orphaned children; end the container after argv[1] seconds.
+# PID 1 of every sandbox container: reap orphaned children; end the container after argv[1] seconds,
+# or at once when stdin (the verifier's attached stream) closes.
 HOLDER = """\
-import os, sys, time
+import os, select, sys, time
 end = time.monotonic() + float(sys.argv[1])
 while time.monotonic() < end:
     try:
@@ -59,7 +75,8 @@ while time.monotonic() < end:
             pass
     except ChildProcessError:
         pass
-    time.sleep(0.5)
+    if select.select([0], [], [], 0.5)[0] and not os.read(0, 4096):
+        break
 """
 
 
@@ -246,17 +263,84 @@ def collect_path(relative: str) -> str:
     return f"{WORKSPACE}/{path}"
 
 
-def _single_file(chunks: Iterator[bytes]) -> bytes | None:
-    with tempfile.SpooledTemporaryFile(max_size=SPOOL_BYTES) as spool:
-        for chunk in chunks:
-            spool.write(chunk)
-        spool.seek(0)
-        with tarfile.open(fileobj=spool, mode="r") as archive:
+class CopyOutRefused(Exception):
+    """A result path that is not brought back, and why (said in the run's output)."""
+
+
+def refuse_by_stat(stat: Mapping[str, Any], cap: int) -> None:
+    """Refuse from the engine's stat header alone, before a byte of the archive is read."""
+    mode = int(stat.get("mode", 0))
+    if mode & _FILE_TYPE_BITS or stat.get("linkTarget"):
+        raise CopyOutRefused("not a regular file")
+    if int(stat.get("size", 0)) > cap:
+        raise CopyOutRefused(f"larger than {cap >> 20} MB")
+
+
+class _BoundedStream(io.RawIOBase):
+    """The archive's chunks as a file, refusing to deliver more than ``limit`` bytes or past ``deadline``."""
+
+    def __init__(self, chunks: Iterator[bytes], limit: int, deadline: float) -> None:
+        self.chunks = chunks
+        self.limit = limit
+        self.deadline = deadline
+        self.pending = b""
+        self.total = 0
+
+    def readable(self) -> bool:
+        return True
+
+    def readinto(self, buffer: Any) -> int:
+        while not self.pending:
+            if time.monotonic() > self.deadline:
+                raise CopyOutRefused("not read within the run's time")
+            chunk = next(self.chunks, None)
+            if chunk is None:
+                return 0
+            self.total += len(chunk)
+            if self.total > self.limit:
+                raise CopyOutRefused("its archive is larger than any result file may be")
+            self.pending = chunk
+        size = min(len(buffer), len(self.pending))
+        buffer[:size] = self.pending[:size]
+        self.pending = self.pending[size:]
+        return size
+
+
+def single_file(chunks: Iterator[bytes], cap: int, deadline: float) -> bytes:
+    """The content of the one regular file an archive of a result path holds; CopyOutRefused otherwise.
+
+    The member's type and size come from its tar header and are checked before its content is read.
+    """
+    stream = _BoundedStream(chunks, cap + HEADER_ALLOWANCE, deadline)
+    try:
+        with tarfile.open(fileobj=stream, mode="r|") as archive:
             member = archive.next()
-            if member is None or not member.isfile():
-                return None
+            if member is None or not member.isreg():
+                raise CopyOutRefused("not a regular file (by its archive)")
+            if member.size > cap:
+                raise CopyOutRefused(f"its archive holds more than {cap >> 20} MB")
             extracted = archive.extractfile(member)
-            return extracted.read() if extracted else None
+            if extracted is None:
+                raise CopyOutRefused("not a regular file (by its archive)")
+            return extracted.read(member.size)
+    except tarfile.TarError as error:
+        raise CopyOutRefused(f"its archive is unreadable ({error})") from error
+
+
+_REFUSED_BY_STAT = ("not a regular file", "larger than")
+
+
+def _stat_passed(why: str) -> bool:
+    """Whether a refusal came after the stat header had passed (from the archive itself)."""
+    return not why.startswith(_REFUSED_BY_STAT) or why == "not a regular file (by its archive)"
+
+
+def left_behind_note(refused: Mapping[str, str]) -> str:
+    """A line for the output naming the result paths that were not brought back, and why."""
+    if not refused:
+        return ""
+    named = "; ".join(f"{path}: {why}" for path, why in refused.items())
+    return f"\n[verifier sandbox: left behind: {named}]\n"
 
 
 # -- one run ----------------------------------------------------------------------------------------
@@ -295,7 +379,7 @@ def _host_settings(client: DockerClient, limits: Limits) -> dict[str, Any]:
         "tmpfs": {"/tmp": f"size={limits.tmp_mb}m,mode=1777,exec,nosuid,nodev"},
         "cap_drop": ["ALL"],
         "security_opt": ["no-new-privileges:true"],
-        "user": f"{SANDBOX_UID}:{SANDBOX_UID}",
+        "user": f"{KEEPER_UID}:{KEEPER_UID}",  # the holder's; the command runs as SANDBOX_UID by exec
         "pids_limit": limits.processes,
         "mem_limit": f"{limits.memory_mb}m",
         "memswap_limit": f"{limits.memory_mb}m",  # equal to the memory limit: no swap
@@ -336,21 +420,33 @@ class _Run:
         self.client = client
         self.image = image
         self.limits = limits
-        self.container: Any = None
+        self._container: Any = None
+        self._lifeline: Any = None  # the attached stdin of the holder: closing it ends the container
         self._killed = threading.Event()
+        self.started = time.monotonic()
+        self.running = False  # True once the tests' code may have run: later engine errors may be theirs
+
+    @property
+    def container(self) -> Any:
+        if self._container is None:
+            raise RuntimeError("the sandbox container is not there (created and removed by _Run only)")
+        return self._container
 
     def __enter__(self) -> _Run:
         settings = _host_settings(self.client, self.limits)
         lifetime = self.limits.wall_seconds + ORPHAN_GRACE_SECONDS
-        self.container = self.client.containers.create(
+        self._container = self.client.containers.create(
             self.image,
             ["python", "-I", "-c", HOLDER, str(lifetime)],
-            detach=True,
+            detach=False,  # with stdin_open: the engine closes the holder's stdin when our stream closes
+            stdin_open=True,
+            auto_remove=True,
             labels=_labels(self.limits),
             working_dir=WORKSPACE,
             **settings,
         )
-        self.container.start()
+        self._lifeline = self.client.api.attach_socket(self._container.id, params={"stdin": 1, "stream": 1})
+        self._container.start()
         return self
 
     def __exit__(self, *_: object) -> None:
@@ -359,11 +455,20 @@ class _Run:
     def remove(self) -> None:
         import docker
 
-        if self.container is None:
+        if self._lifeline is not None:
+            _close(self._lifeline)
+            self._lifeline = None
+        if self._container is None:
             return
-        with contextlib.suppress(docker.errors.NotFound):
-            self.container.remove(force=True, v=True)
-        self.container = None
+        container, self._container = self._container, None
+        try:
+            container.remove(force=True, v=True)
+        except docker.errors.NotFound:
+            return
+        except docker.errors.APIError as error:
+            if error.status_code != 409:  # 409: the engine is removing it already (auto_remove)
+                raise
+        _wait_until_gone(container)
 
     def kill(self, reason: str, outcome: _Outcome) -> None:
         import docker
@@ -384,16 +489,13 @@ class _Run:
             try:
                 self.container.put_archive(WORKSPACE, archive)
             except docker.errors.APIError as error:
-                raise CannotVerify(
-                    f"the tree ({size_mb:.1f} MB as an archive) could not be copied into the sandbox "
-                    f"workspace (limit {self.limits.workspace_mb} MB): {_first_line(error)}",
-                    hint="raise the policy's workspace limit, or make the tree smaller",
-                ) from error
+                raise _copy_in_failure(error, size_mb, self.limits.workspace_mb) from error
 
     def execute(self, python_args: tuple[str, ...], env: Mapping[str, str]) -> _Outcome:
         """Run ``python *python_args`` in the workspace; kill at the wall limit or the output cap."""
         outcome = _Outcome()
         api = self.client.api
+        self.running = True
         exec_id = api.exec_create(
             self.container.id,
             ["python", *python_args],
@@ -432,19 +534,52 @@ class _Run:
             if not self._killed.is_set():
                 raise  # the stream broke without our kill: the engine went away
 
-    def copy_out(self, paths: tuple[str, ...]) -> dict[str, bytes]:
+    def copy_out(self, paths: tuple[str, ...]) -> tuple[dict[str, bytes], dict[str, str]]:
+        """The collected files that are regular and small enough, and the paths refused (with why).
+
+        Each path's stat header is fetched alone first (a HEAD request: no content); only a path that
+        passes is fetched. An archive left unread would hold the engine's archive lock on the container.
+        """
         import docker
 
         files: dict[str, bytes] = {}
-        for relative in paths:
+        refused: dict[str, str] = {}
+        deadline = max(self.started + self.limits.wall_seconds, time.monotonic()) + COPY_OUT_GRACE_SECONDS
+        with contextlib.suppress(docker.errors.APIError):  # frozen: nothing of the tests changes the files now
+            self.container.pause()
+        wanted = list(dict.fromkeys(paths))
+        for number, relative in enumerate(wanted):
             try:
+                stat = self._stat(collect_path(relative))
+                if stat is None:
+                    continue  # the command did not write it; the caller decides what that means
+                refuse_by_stat(stat, COLLECT_CAP_BYTES)
                 chunks, _stat = self.container.get_archive(collect_path(relative))
-            except docker.errors.NotFound:
-                continue  # the command did not write it; the caller decides what that means
-            content = _single_file(chunks)
-            if content is not None:
-                files[relative] = content
-        return files
+                files[relative] = single_file(chunks, COLLECT_CAP_BYTES, deadline)
+            except CopyOutRefused as why:
+                refused[relative] = str(why)
+                if _stat_passed(refused[relative]):  # the archive was left half read: the engine holds it
+                    refused.update({rest: "not read after an earlier refusal" for rest in wanted[number + 1 :]})
+                    break
+        return files, refused
+
+    def _stat(self, path: str) -> dict[str, Any] | None:
+        """The engine's stat header of ``path`` in the container (None: no such path), without its content."""
+        import base64
+
+        api = self.client.api
+        response = api.head(api._url("/containers/{0}/archive", self.container.id), params={"path": path})
+        if response.status_code == 404:
+            return None
+        api._raise_for_status(response)
+        header = response.headers.get("X-Docker-Container-Path-Stat", "")
+        try:
+            stat = json.loads(base64.b64decode(header))
+        except ValueError as error:
+            raise CopyOutRefused("the engine's stat header is unreadable") from error
+        if not isinstance(stat, dict):
+            raise CopyOutRefused("the engine's stat header is unreadable")
+        return stat
 
     def usage(self) -> tuple[float, int, int, int]:
         """CPU seconds, peak memory (KB), the memory limit (KB) and the peak's failure count, if known."""
@@ -456,6 +591,34 @@ class _Run:
         memory = stats.get("memory_stats", {})
         peak = int(memory.get("max_usage", 0)) // 1024
         return cpu, peak, int(memory.get("limit", 0)) // 1024, int(memory.get("failcnt", 0))
+
+
+def _wait_until_gone(container: Any, timeout: float = 30.0) -> None:
+    """Wait (bounded) until the engine has finished removing ``container``."""
+    import docker
+
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        try:
+            container.reload()
+        except docker.errors.NotFound:
+            return
+        time.sleep(0.1)
+
+
+def _copy_in_failure(error: BaseException, size_mb: float, limit_mb: int) -> CannotVerify:
+    """Say what stopped the copy of the tree: the workspace's size only when that is what the engine said."""
+    text = _first_line(error)
+    if "no space left" in text.lower() or "file too large" in text.lower():
+        return CannotVerify(
+            f"the tree ({size_mb:.1f} MB as an archive) does not fit the sandbox workspace "
+            f"(limit {limit_mb} MB): {text}",
+            hint="raise the policy's workspace limit, or make the tree smaller",
+        )
+    return CannotVerify(
+        f"the engine refused to copy the tree into the sandbox: {text}",
+        hint="the engine's own log says more; 'verifier sandbox doctor' shows the engine in use",
+    )
 
 
 def _close(raw: Any) -> None:
@@ -548,29 +711,30 @@ class DockerBackend:
         import requests
 
         client = connect()
+        box = _Run(client, self.image, request.limits)
         try:
             reap_orphans(client)
             problem = self._image_problem(client)
             if problem:
                 raise SandboxUnavailable([(NAME, problem)])
-            return self._run_in_container(client, request)
+            return self._run_in_container(box, request)
         except (docker.errors.DockerException, requests.exceptions.RequestException) as error:
-            raise SandboxUnavailable(
-                [(NAME, f"the engine refused or stopped answering: {_first_line(error)}")],
-                hint="see 'verifier sandbox doctor'; the engine's own log says more",
-            ) from error
+            raise _engine_failure(error, box.running) from error
         finally:
             client.close()
 
-    def _run_in_container(self, client: DockerClient, request: SandboxRequest) -> SandboxResult:
+    def _run_in_container(self, box: _Run, request: SandboxRequest) -> SandboxResult:
         started = time.monotonic()
-        with _Run(client, self.image, request.limits) as box:
+        refused: dict[str, str] = {}
+        with box:
             box.copy_in(request.tree)
             outcome = box.execute(request.python_args, request.env)
             exit_status, signal = _exit_and_signal(outcome.exit_code)
             # The engine's stats cost about half a second, so they are read only to explain a kill.
             cpu, peak_kb, limit_kb, _failures = box.usage() if signal else (0.0, 0, 0, 0)
-            files = {} if outcome.killed_for else box.copy_out(request.collect)
+            files: dict[str, bytes] = {}
+            if not outcome.killed_for:
+                files, refused = box.copy_out(request.collect)
         if outcome.killed_for:
             signal = 9
         _refuse_missing_python(exit_status, outcome)
@@ -580,7 +744,7 @@ class DockerBackend:
             exit_status=exit_status,
             signal=signal,
             timed_out=outcome.killed_for == "wall",
-            output=bytes(outcome.output).decode("utf-8", "replace"),
+            output=bytes(outcome.output).decode("utf-8", "replace") + left_behind_note(refused),
             output_truncated=outcome.truncated,
             files=files,
             wall_seconds=round(time.monotonic() - started, 3),
@@ -588,6 +752,19 @@ class DockerBackend:
             max_rss_kb=peak_kb,  # the container's peak memory (cgroup), known only after a kill
             limit_hit=_limit_hit(outcome, signal, peak_kb, limit_kb),
         )
+
+
+def _engine_failure(error: BaseException, tests_ran: bool) -> VerifierError:
+    """An engine error before the tests' code ran means no sandbox could be had; after, it is a failed run."""
+    if not tests_ran:
+        return SandboxUnavailable(
+            [(NAME, f"the engine refused or stopped answering: {_first_line(error)}")],
+            hint="see 'verifier sandbox doctor'; the engine's own log says more",
+        )
+    return CannotVerify(
+        f"the Docker engine failed while the tests ran or their results were collected: {_first_line(error)}",
+        hint="the tests themselves may have caused it (the run's output says more); the engine's log has details",
+    )
 
 
 def _refuse_missing_python(exit_status: int | None, outcome: _Outcome) -> None:

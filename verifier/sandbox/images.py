@@ -277,8 +277,8 @@ def _git_text(repo_path: str, revision: str, path: str) -> str | None:
 def _requirement_files(repo_path: str, revision: str) -> list[str]:
     from verifier.gitio import Git
 
-    listing = Git(repo_path).run(["ls-tree", "-r", "--name-only", revision, "--", "."]).decode()
-    names = listing.splitlines()
+    listing = Git(repo_path).run(["ls-tree", "-r", "-z", "--name-only", "--full-tree", revision])
+    names = [name.decode("utf-8", "surrogateescape") for name in listing.split(b"\0") if name]
     top = [n for n in names if "/" not in n and fnmatch.fnmatch(n, "*requirements*.txt")]
     nested = [n for n in names if n.startswith("requirements/") and n.endswith(".txt")]
     return sorted(top + nested)

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
+import errno
 import functools
 import hashlib
 import json
@@ -154,12 +155,22 @@ class NamespaceBackend:
         status = _read_status(out_dir)
         if "error" in status:
             raise CannotVerify(
-                f"the namespace sandbox could not be set up ({status.get('stage')}): {status['error']}", hint=_HINT
+                f"the namespace sandbox could not be set up ({status.get('stage')}): {status['error']}",
+                hint=_setup_hint(status),
             )
         if "exit_status" not in status and not (outcome.timed_out or outcome.output_killed):
             tail = outcome.output[-2000:].strip() or "no output"
             raise CannotVerify(f"the namespace sandbox's init ended without a report: {tail}", hint=_HINT)
         return common.sandbox_result(self.name, self.isolation, _merge(outcome, status), _collected(out_dir, status))
+
+
+def _setup_hint(status: dict[str, Any]) -> str:
+    """What to do about a failed setup: the workspace's size only when that is what ran out."""
+    if status.get("errno") in (errno.ENOSPC, errno.EDQUOT):
+        return "raise the policy's workspace limit, or make the tree smaller"
+    if status.get("stage") == "unshare":
+        return _HINT
+    return "'verifier sandbox doctor' shows what works on this machine; otherwise use --sandbox docker"
 
 
 def _read_status(out_dir: Path) -> dict[str, Any]:
