@@ -29,6 +29,7 @@ _FAMILIES = (
     "verifier.rules.tampering",
     "verifier.rules.marks",
     "verifier.rules.regressions",
+    "verifier.rules.census",
 )
 
 
