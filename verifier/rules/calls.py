@@ -29,6 +29,7 @@ from fnmatch import fnmatchcase
 from typing import Any
 
 from verifier.astnames import (
+    PIECES,
     ModuleIndex,
     Names,
     canonical,
@@ -423,9 +424,6 @@ _DYNAMIC_TEXTS = (
     "pwsh",
     "busybox",
 )
-# string pieces joined by the parser or at run time ('sys' 'tem', "ev" + "al", "".join(...)): a name or a
-# shell may be spelt in pieces, so a source holding such pieces is always checked
-_PIECES = re.compile(r"""['"](?:[ \t]|\\?\n)+[rbuRBUfF]{0,2}['"]|['"]\s*\+\s*[rbuRBUfF]{0,2}['"]|['"]\.join\(""")
 
 
 class _Needs:
@@ -448,7 +446,7 @@ class _Needs:
         the text; ``getattr(obj, "na" "me")`` builds an attribute from a string; both are always checked."""
         if self.always or not source.isascii() or any(text in source for text in _DYNAMIC_TEXTS):
             return True
-        if _PIECES.search(source):
+        if PIECES.search(source):
             return True
         present = {text for text in self.texts if text in source}
         for first in present.intersection(self.by_first):

@@ -22,7 +22,7 @@ from __future__ import annotations
 import ast
 from collections.abc import Iterator
 
-from verifier.astnames import ModuleIndex, canonical, constant_string, module_index, resolve, span
+from verifier.astnames import PIECES, ModuleIndex, canonical, constant_string, module_index, resolve, span
 from verifier.models import Finding
 from verifier.rules import RuleContext, rule
 from verifier.rules.machine import glob_matcher, machine_lines, machine_may_have_touched, option
@@ -125,7 +125,7 @@ def tampering_means(context: RuleContext) -> Iterator[Finding]:
     harness_dir = _harness_dir()
     for path, lines in context.provenance.machine_lines.items():
         source = context.head_sources.get(path)
-        if not path.endswith(".py") or source is None:
+        if not path.endswith(".py") or source is None or not _may_hold(source, (*_MEANS_TEXTS, harness_dir)):
             continue
         index = module_index(source, path)
         if index is not None:
@@ -160,7 +160,8 @@ def hidden_code(context: RuleContext) -> Iterator[Finding]:
             )
     for path, lines in context.provenance.machine_lines.items():
         source = context.head_sources.get(path)
-        index = module_index(source, path) if source is not None and path.endswith(".py") else None
+        readable = source is not None and path.endswith(".py") and _may_hold(source, _HIDDEN_TEXTS)
+        index = module_index(source, path) if readable and source is not None else None
         if index is None:
             continue
         for call in index.calls:
@@ -170,6 +171,29 @@ def hidden_code(context: RuleContext) -> Iterator[Finding]:
                 if name in _LOADER_CALLS:
                     yield Finding(HIDDEN, "block", f"{name}() {_LOADER_CALLS[name]}", path=path, line=call.lineno)
                     break
+
+
+# Every means above is named in the source by one of these texts (an import, an attribute, a key), unless
+# the name is built at run time (getattr, a namespace read as a mapping, string pieces): a source without
+# any of them is skipped without a parse.
+_MEANS_TEXTS = (
+    "_pytest", "pluggy", "coverage", "xdist", "pytest_cov", "ctypes", "_exit", "abort", "kill", "signal",
+    "exit", "atexit", "settrace", "setprofile", "get_objects", "get_refer", "_getframe", "currentframe",
+    "stack", "getouterframes", "addaudithook", "monitoring", "exec", "modules", "f_back", "f_globals",
+    "f_locals", "f_builtins", "tb_frame", "gi_frame", "cr_frame", "pytest_plugins", "environ", "putenv",
+    "setenv", "setitem", "__code__", "__globals__", "KeyboardInterrupt", "SystemExit", ".verifier-harness",
+    "getattr", "__dict__", "vars(", "__builtins__", "import_module", "__import__",
+)  # fmt: skip
+_HIDDEN_TEXTS = (
+    "runpy", "machinery", "spec_from", "module_from_spec", "zipimport", "load_source", "load_compiled",
+    "CodeType", "marshal", "getattr", "__dict__", "vars(", "__builtins__", "import_module", "__import__",
+)  # fmt: skip
+
+
+def _may_hold(source: str, texts: tuple[str, ...]) -> bool:
+    """False only when ``source`` cannot name any of the means (identifiers outside ASCII are normalised
+    by the parser, so such a source is always read)."""
+    return not source.isascii() or any(text in source for text in texts) or PIECES.search(source) is not None
 
 
 def _harness_dir() -> str:

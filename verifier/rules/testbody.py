@@ -21,10 +21,11 @@ being reported; only shapes that cannot fail are.
 from __future__ import annotations
 
 import ast
+import weakref
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 
-from verifier.astnames import Names, canonical, is_literal, resolve
+from verifier.astnames import Names, canonical, is_literal, resolve, walk
 
 LIVE = "live"
 State = tuple[str, str, int] | None  # None: live; else (status, why, the line that causes it)
@@ -244,7 +245,7 @@ class _Walker:
 
     def expressions(self, nodes: Iterable[ast.AST], state: State, skip: ast.AST | None = None) -> None:
         for root in nodes:
-            for node in ast.walk(root):
+            for node in walk(root):
                 if node is skip or not isinstance(node, ast.Call):
                     continue
                 if _is_assert_helper(node, self.names, self.helpers):
@@ -317,29 +318,44 @@ def inert(body: list[ast.stmt], names: Names, check_reads: frozenset[str] = froz
 
 def check_reads(function: ast.AST, names: Names) -> frozenset[str]:
     """The names the function's assertions (and assertion-helper calls) read."""
-    found: set[str] = set()
-    for node in ast.walk(function):
-        if isinstance(node, ast.Assert) or (isinstance(node, ast.Call) and _is_assert_helper(node, names, frozenset())):
-            found.update(n.id for n in ast.walk(node) if isinstance(n, ast.Name))
-    return frozenset(found)
+    return _reads_and_references(function, names)[0]
+
+
+def _reads_and_references(function: ast.AST, names: Names) -> tuple[frozenset[str], frozenset[str]]:
+    """(the names the checks read, every name the function loads), in one walk."""
+    reads: set[str] = set()
+    loaded: set[str] = set()
+    for node in walk(function):
+        if isinstance(node, ast.Name):
+            if isinstance(node.ctx, ast.Load):
+                loaded.add(node.id)
+        elif isinstance(node, ast.Assert) or (
+            isinstance(node, ast.Call) and _is_assert_helper(node, names, frozenset())
+        ):
+            reads.update(n.id for n in walk(node) if isinstance(n, ast.Name))
+    return frozenset(reads), frozenset(loaded)
 
 
 def _swallows(handler: ast.ExceptHandler, names: Names, reads: frozenset[str]) -> bool:
     return _catches_assertion(handler.type, names) and inert(handler.body, names, reads)
 
 
-def referenced_names(function: ast.AST) -> frozenset[str]:
-    """Every name the function loads (a nested function it refers to counts as called)."""
-    return frozenset(n.id for n in ast.walk(function) if isinstance(n, ast.Name) and isinstance(n.ctx, ast.Load))
+_memo: weakref.WeakKeyDictionary[ast.AST, tuple[frozenset[str], list[Check]]] = weakref.WeakKeyDictionary()
 
 
 def checks_of(
     function: ast.FunctionDef | ast.AsyncFunctionDef, names: Names, helpers: frozenset[str] = frozenset()
 ) -> list[Check]:
-    """Every check of ``function`` with its status, in source order."""
-    walker = _Walker(names, helpers, referenced_names(function), check_reads(function, names))
+    """Every check of ``function`` with its status, in source order (kept while the tree lives: the parse
+    is shared by the rules, and several read the same tests)."""
+    kept = _memo.get(function)
+    if kept is not None and kept[0] == helpers:
+        return kept[1]
+    reads, referenced = _reads_and_references(function, names)
+    walker = _Walker(names, helpers, referenced, reads)
     walker.block(function.body, None)
     walker.found.sort(key=lambda c: (c.line, getattr(c.node, "col_offset", 0)))
+    _memo[function] = (helpers, walker.found)
     return walker.found
 
 

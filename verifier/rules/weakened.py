@@ -11,11 +11,12 @@ import ast
 import builtins
 import fnmatch
 import functools
+import weakref
 from collections import Counter, deque
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 
-from verifier.astnames import Names, canonical, module_index, module_names, resolve, span
+from verifier.astnames import Names, canonical, module_index, module_names, resolve, span, walk
 from verifier.models import FileChange, Finding
 from verifier.rules import RuleContext, rule
 from verifier.rules.machine import base_text, glob_matcher, head_text, machine_lines, machine_removed, option
@@ -152,20 +153,36 @@ class TestModule:
     names: Names
     functions: dict[str, TestFunction]
     scope_markers: dict[str, dict[str, int]]  # "" (module) or class qualname -> skip marker -> line
-    helpers: frozenset[str] = frozenset()  # module functions that hold a live check (assertion helpers)
+    tree: ast.Module | None = None
     module_skips: list[ast.AST] = field(default_factory=list)  # skips at module level (every test skipped)
     fixtures: dict[str, ast.FunctionDef | ast.AsyncFunctionDef] = field(default_factory=dict)  # autouse ones
     definitions: dict[str, ast.FunctionDef | ast.AsyncFunctionDef] = field(default_factory=dict)  # module level
 
+    @functools.cached_property
+    def helpers(self) -> frozenset[str]:
+        """Module functions that hold a live check (assertion helpers), read when a test body is."""
+        return assertion_helpers(self.tree, self.names) if self.tree is not None else frozenset()
+
+
+_read: weakref.WeakKeyDictionary[ast.Module, TestModule] = weakref.WeakKeyDictionary()
+
 
 def read_module(tree: ast.Module, names: Names | None = None) -> TestModule:
-    names = names or module_names(tree)
-    module = TestModule(names, {}, {"": _pytestmark(tree.body, names)}, assertion_helpers(tree, names))
+    """The test functions of a module and what they check; read once per tree (the rules share the parse)."""
+    kept = _read.get(tree)
+    if kept is None:
+        kept = _read[tree] = _read_module(tree, names or module_names(tree))
+    return kept
+
+
+def _read_module(tree: ast.Module, names: Names) -> TestModule:
+    module = TestModule(names, {}, {"": _pytestmark(tree.body, names)}, tree)
     module.module_skips = [n for n in tree.body if _skip_at_module_level(n, names)]
+    class_bodies = [s for n in tree.body if isinstance(n, ast.ClassDef) for s in n.body]
     module.fixtures = {
         n.name: n
-        for n in ast.walk(tree)
-        if isinstance(n, (ast.FunctionDef, ast.AsyncFunctionDef)) and _is_autouse_fixture(n, names)
+        for n in [*tree.body, *class_bodies]
+        if isinstance(n, (ast.FunctionDef, ast.AsyncFunctionDef)) and n.decorator_list and _is_autouse_fixture(n, names)
     }
     module.definitions = {n.name: n for n in tree.body if isinstance(n, (ast.FunctionDef, ast.AsyncFunctionDef))}
     disabled = _disabled_by_attribute(tree.body)
@@ -237,7 +254,9 @@ def _disabled_by_attribute(body: list[ast.stmt], own: bool = False) -> frozenset
 def _skip_at_module_level(node: ast.stmt, names: Names) -> bool:
     """``pytest.skip(..., allow_module_level=True)``, ``pytest.importorskip(...)``, ``raise unittest.SkipTest``
     as a module-level statement (also inside a module-level ``if`` or ``try``)."""
-    for child in ast.walk(node):
+    if isinstance(node, (ast.Import, ast.ImportFrom, ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef)):
+        return False
+    for child in walk(node):
         if isinstance(child, (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef, ast.Lambda)):
             return False
         if isinstance(child, ast.Call) and any(n in SKIP_CALLS for n in called_names(child, names)):
@@ -306,7 +325,7 @@ def load(function: TestFunction, module: TestModule) -> TestFunction:
                 function.skip_calls.append(child)
             if any(n in RAISES_CALLS for n in called):
                 function.raises.append(child)
-    function.skip_calls += [n for n in ast.walk(node) if isinstance(n, ast.Raise) and _raises_skip(n, names)]
+    function.skip_calls += [n for n in walk(node) if isinstance(n, ast.Raise) and _raises_skip(n, names)]
     for found in (function.skip_calls, function.raises):
         found.sort(key=lambda n: (n.lineno, n.col_offset))  # source order: pairs base and head by position
     return function
@@ -364,9 +383,9 @@ def _compare_file(context: RuleContext, file: FileChange, at_base: bool, at_head
         return  # every finding below needs a line a model added or may have removed
     base_source = base_text(context, file) if at_base else None
     head_source = head_text(context, file) if at_head else None
-    # keep=False: only this rule reads most test files (calls.banned, which runs first, shares its index)
-    base_index = module_index(base_source, file.old_path or file.path, keep=False) if base_source is not None else None
-    head_index = module_index(head_source, file.path, keep=False) if head_source is not None else None
+    # kept: the test-strength rules (verifier.rules.strength, registered after this one) read the same files
+    base_index = module_index(base_source, file.old_path or file.path) if base_source is not None else None
+    head_index = module_index(head_source, file.path) if head_source is not None else None
     base = read_module(base_index.tree, base_index.names) if base_index is not None else None
     if base is not None and base.functions and head_source is None and removed_by_machine:
         yield Finding(
