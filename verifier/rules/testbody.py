@@ -21,6 +21,7 @@ being reported; only shapes that cannot fail are.
 from __future__ import annotations
 
 import ast
+import functools
 import weakref
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
@@ -135,14 +136,24 @@ def _same(one: ast.AST, other: ast.AST) -> bool:
 
 
 class _Walker:
-    def __init__(
-        self, names: Names, helpers: frozenset[str], referenced: frozenset[str], reads: frozenset[str]
-    ) -> None:
+    def __init__(self, function: ast.AST, names: Names, helpers: frozenset[str]) -> None:
+        self.function = function
         self.names = names
-        self.reads = reads
         self.helpers = helpers
-        self.referenced = referenced
         self.found: list[Check] = []
+
+    # read only when a nested definition or a try statement needs them (most tests have neither)
+    @functools.cached_property
+    def _names_read(self) -> tuple[frozenset[str], frozenset[str]]:
+        return _reads_and_references(self.function, self.names)
+
+    @property
+    def reads(self) -> frozenset[str]:
+        return self._names_read[0]
+
+    @property
+    def referenced(self) -> frozenset[str]:
+        return self._names_read[1]
 
     def block(self, body: Iterable[ast.stmt], state: State) -> bool:
         """Walk ``body`` in ``state`` (None: live, else (status, why)); True when the block always ends early."""
@@ -351,8 +362,7 @@ def checks_of(
     kept = _memo.get(function)
     if kept is not None and kept[0] == helpers:
         return kept[1]
-    reads, referenced = _reads_and_references(function, names)
-    walker = _Walker(names, helpers, referenced, reads)
+    walker = _Walker(function, names, helpers)
     walker.block(function.body, None)
     walker.found.sort(key=lambda c: (c.line, getattr(c.node, "col_offset", 0)))
     _memo[function] = (helpers, walker.found)

@@ -111,11 +111,11 @@ def _branch_fields(node_type: type) -> tuple[str, ...]:
 
 
 def _checks_in(node: ast.AST) -> list[ast.AST]:
-    """The assertions and calls of ``ast.walk(node)``, in the same order, in a cheaper loop that skips
-    the fields that can hold neither."""
+    """The assertions, calls and raises of ``ast.walk(node)``, in the same order, in a cheaper loop that
+    skips the fields that can hold none."""
     found: list[ast.AST] = []
     queue = deque([node])
-    node_type, wanted = ast.AST, (ast.Assert, ast.Call)
+    node_type, wanted = ast.AST, (ast.Assert, ast.Call, ast.Raise)
     while queue:
         node = queue.popleft()
         if isinstance(node, wanted):
@@ -319,13 +319,14 @@ def load(function: TestFunction, module: TestModule) -> TestFunction:
     function.checks = checks_of(node, names, module.helpers)
     function.asserts = [c.node for c in function.checks if c.live]
     for child in _checks_in(node):
-        if isinstance(child, ast.Call):
+        if isinstance(child, ast.Raise) and _raises_skip(child, names):
+            function.skip_calls.append(child)
+        elif isinstance(child, ast.Call):
             called = _names_of(child, names)
             if any(n in SKIP_CALLS for n in called):
                 function.skip_calls.append(child)
             if any(n in RAISES_CALLS for n in called):
                 function.raises.append(child)
-    function.skip_calls += [n for n in walk(node) if isinstance(n, ast.Raise) and _raises_skip(n, names)]
     for found in (function.skip_calls, function.raises):
         found.sort(key=lambda n: (n.lineno, n.col_offset))  # source order: pairs base and head by position
     return function
@@ -541,10 +542,16 @@ class _FileComparison:
 
     def _decorators(self, before: TestFunction, now: TestFunction) -> Iterator[Finding]:
         """A decorator added to an existing test can replace it by anything; known testing libraries' are fine."""
-        for decorator in _new_items(before.node.decorator_list, now.node.decorator_list):
+        # compared by what they name: a decorator whose arguments changed (more parametrize cases) is not new
+        assert self.base is not None
+        old = Counter(_names_of(d, self.base.names) for d in before.node.decorator_list)
+        for decorator in now.node.decorator_list:
+            meanings = _names_of(decorator, self.head.names)
+            if old[meanings]:
+                old[meanings] -= 1
+                continue
             if not any(n in self.added for n in span(decorator)):
                 continue
-            meanings = _names_of(decorator, self.head.names)
             if any(m.startswith(_KNOWN_DECORATORS) for m in meanings):
                 continue
             local = next((m.removeprefix("<local>.") for m in meanings if m.startswith("<local>.")), None)
