@@ -44,11 +44,8 @@ _INTERNAL_IMPORTS = {
 _CALLS = {
     "os._exit": "ends the process at once, skipping the harness's handlers (the run can look complete)",
     "os.abort": "ends the process at once",
-    "os.kill": "sends a signal to a process (its own, or the runner's)",
-    "os.killpg": "sends a signal to a process group (the runner's)",
     "signal.raise_signal": "sends a signal to its own process",
     "signal.pthread_kill": "sends a signal to a thread of its own process",
-    "signal.signal": "installs a signal handler in the test process",
     "signal.alarm": "schedules a signal to its own process",
     "pytest.exit": "ends the pytest session early, with an exit code of its choosing",
     "atexit.register": "registers an exit handler, which runs after the tests (when the results are written)",
@@ -69,7 +66,19 @@ _PREFIX_CALLS = {
     "ctypes.": "uses ctypes, which can rewrite any memory of the process",
 }
 # only in test files: ordinary in a program's entry point, a way out of the session in a test
-_TEST_ONLY_CALLS = {"sys.exit": "ends the test process", "os.exec": "replaces the test process by another program"}
+_TEST_ONLY_CALLS = {
+    "sys.exit": "ends the test process",
+    "exit": "ends the test process",
+    "quit": "ends the test process",
+    "os.exec": "replaces the test process by another program",
+    "os.kill": "sends a signal from a test",
+    "os.killpg": "sends a signal to a process group from a test",
+    "signal.signal": "installs a signal handler in the test process",
+}
+# a signal to these ends the run itself, wherever the call is: its own process, its parent (the runner),
+# its group, every process (os.kill's pid 0 and -1, Python docs, os.kill / kill(2))
+_OWN_PROCESS = frozenset({"os.getpid", "os.getppid", "os.getpgrp", "os.getpgid"})
+_SIGNAL_SENDERS = ("os.kill", "os.killpg")
 _FRAME_ATTRIBUTES = frozenset({"f_back", "f_globals", "f_locals", "f_builtins", "tb_frame", "gi_frame", "cr_frame"})
 _SYS_MODULES_WRITES = frozenset({"pop", "popitem", "update", "setdefault", "clear", "__setitem__", "__delitem__"})
 # coverage.py's default data file is .coverage, its parallel files .coverage.<suffix> (coverage.py docs, data file)
@@ -251,12 +260,24 @@ class _MeansFinder:
         for name in (canonical(n) for n in resolve(node.func, self.names)):
             why = _CALLS.get(name) or next((w for p, w in _PREFIX_CALLS.items() if name.startswith(p)), None)
             if why is None and self.in_test:
-                why = next((w for p, w in _TEST_ONLY_CALLS.items() if name.startswith(p)), None)
+                why = next((w for p, w in _TEST_ONLY_CALLS.items() if name == p or name.startswith(p + "v")), None)
+                why = why or ("replaces the test process by another program" if name.startswith("os.exec") else None)
+            if why is None and name in _SIGNAL_SENDERS and node.args and self.own_process(node.args[0]):
+                why = "sends a signal to its own process, its parent or its group (the test run)"
             if why is None:
                 why = self.module_or_setting_write(name, node)
             if why is not None:
                 yield from self.finding(node, f"{name}() {why}")
                 return
+
+    def own_process(self, target: ast.expr) -> bool:
+        if isinstance(target, ast.Constant) and target.value in (0, -1):
+            return True
+        if isinstance(target, ast.UnaryOp) and isinstance(target.operand, ast.Constant):
+            return True  # -1, or -pid
+        if isinstance(target, ast.Call):
+            return any(canonical(n) in _OWN_PROCESS for n in resolve(target.func, self.names))
+        return False
 
     def module_or_setting_write(self, name: str, node: ast.Call) -> str | None:
         """``sys.modules.pop("coverage")``, ``monkeypatch.setitem(sys.modules, "_pytest", x)``,
