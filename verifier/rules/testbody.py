@@ -78,14 +78,30 @@ def is_raises_call(call: ast.Call, names: Names) -> bool:
     return any(n in RAISES_CALLS for n in called_names(call, names))
 
 
+# Names that say a helper checks something (common practice in test suites: check_*, verify_*, expect_*).
+_CHECKING_NAMES = ("assert", "check", "verify", "expect", "ensure")
+
+
 def _is_assert_helper(call: ast.Call, names: Names, helpers: frozenset[str]) -> bool:
+    """A call that can fail the test: an assertion helper by name, pytest's or unittest's failures and
+    raises-contexts, a helper of this module that checks, or a helper imported from a test module (the
+    gate cannot read it; a test suite's shared checks live there)."""
     for name in called_names(call, names):
-        last = name.rsplit(".", 1)[-1]
-        if last.startswith("assert") or name in FAIL_CALLS or name in RAISES_CALLS:
+        head, _, last = name.rpartition(".")
+        if last.startswith(_CHECKING_NAMES) or name in FAIL_CALLS or name in RAISES_CALLS:
             return True
-        if name.startswith("<local>.") and name.removeprefix("<local>.") in helpers:
+        if head == "<local>" and last in helpers:
+            return True
+        if head and not head.startswith(("<local>", "self", "?")) and _is_test_module(head):
             return True
     return False
+
+
+def _is_test_module(dotted: str) -> bool:
+    return any(
+        part.startswith("test") or part.endswith(("_test", "tests", "testing")) or part == "conftest"
+        for part in dotted.split(".")
+    )
 
 
 def is_ending_call(node: ast.stmt, names: Names) -> bool:
