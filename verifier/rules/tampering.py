@@ -70,7 +70,7 @@ _TEST_ONLY_CALLS = {
     "sys.exit": "ends the test process",
     "exit": "ends the test process",
     "quit": "ends the test process",
-    "os.exec": "replaces the test process by another program",
+    "os.exec": "replaces the test process by another program",  # the os.exec* family
     "os.kill": "sends a signal from a test",
     "os.killpg": "sends a signal to a process group from a test",
     "signal.signal": "installs a signal handler in the test process",
@@ -260,8 +260,7 @@ class _MeansFinder:
         for name in (canonical(n) for n in resolve(node.func, self.names)):
             why = _CALLS.get(name) or next((w for p, w in _PREFIX_CALLS.items() if name.startswith(p)), None)
             if why is None and self.in_test:
-                why = next((w for p, w in _TEST_ONLY_CALLS.items() if name == p or name.startswith(p + "v")), None)
-                why = why or ("replaces the test process by another program" if name.startswith("os.exec") else None)
+                why = _TEST_ONLY_CALLS.get("os.exec" if name.startswith("os.exec") else name)
             if why is None and name in _SIGNAL_SENDERS and node.args and self.own_process(node.args[0]):
                 why = "sends a signal to its own process, its parent or its group (the test run)"
             if why is None:
