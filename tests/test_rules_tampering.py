@@ -11,7 +11,7 @@ from conftest import machine, run_check
 from test_rules_support import findings, machine_change
 
 from verifier.demo.scratch import ScratchRepo
-from verifier.rules.tampering import _CALLS, _LOADER_CALLS, means_of
+from verifier.rules.tampering import _CALLS, _LOADER_CALLS, _harness_dir, means_of
 
 CODE = {"parcelkit/__init__.py": "", "parcelkit/rates.py": "def rate(weight):\n    return 4.5 * weight\n"}
 
@@ -65,7 +65,7 @@ MEANS = {
         "sets pytest or coverage settings",
     ),
     "the harness's folder": (
-        "from pathlib import Path\nPath('.verifier-harness/out/results.jsonl').write_text('')\n",
+        f"from pathlib import Path\nPath('{_harness_dir()}/out/results.jsonl').write_text('')\n",
         "names the harness's folder",
     ),
     "coverage's data file": ("import os\nos.remove('.coverage')\n", "names coverage.py's data file (.coverage)"),
