@@ -39,6 +39,7 @@ from verifier.astnames import (
     namespace_of,
     resolve,
     span,
+    walk,
 )
 from verifier.models import Finding
 from verifier.rules import RuleContext, rule
@@ -572,9 +573,9 @@ def hidden_calls(module: ModuleIndex, path: str, lines: frozenset[int], calls: _
     ``os.__dict__``, ``sys.modules[name]``, ``__builtins__[name]``), and an entry's function passed on as a
     value (``map(eval, rows)``, ``callback=os.system``), which the entry can no longer see called."""
     names = module.names
-    called_funcs = {id(call.func) for call in module.calls}
-    alias_values = {id(a.value) for a in module.assignments if isinstance(a.value, (ast.Name, ast.Attribute))}
-    for node in ast.walk(module.tree):
+    not_values = {id(call.func) for call in module.calls}  # called where the entries see the arguments
+    not_values |= {id(a.value) for a in module.assignments if isinstance(a.value, (ast.Name, ast.Attribute))}
+    for node in walk(module.tree):
         if not isinstance(node, (ast.List, ast.Tuple, ast.Call, ast.Attribute, ast.Subscript, ast.Name)):
             continue
         if not any(n in lines for n in span(node)):
@@ -586,7 +587,7 @@ def hidden_calls(module: ModuleIndex, path: str, lines: frozenset[int], calls: _
         if dynamic:
             yield _hidden(path, node.lineno, f"{dynamic}: the gate cannot see which function it reaches", "CWE-470")
             continue
-        if isinstance(node, (ast.Name, ast.Attribute)) and id(node) not in called_funcs | alias_values:
+        if isinstance(node, (ast.Name, ast.Attribute)) and id(node) not in not_values:
             yield from _passed_as_value(node, names, path, calls)
 
 
@@ -634,7 +635,8 @@ def _module_by_computed_name(node: ast.AST, names: Names) -> bool:
 
 
 def _guarded(meanings: Sequence[str]) -> str:
-    return next((m for m in meanings if canonical(m).split(".", 1)[0] in GUARDED_MODULES or m == "builtins"), "")
+    """The guarded module among ``meanings`` (the module itself, not an object it holds), or ''."""
+    return next((m for m in meanings if canonical(m) in GUARDED_MODULES or m == "builtins"), "")
 
 
 def _passed_as_value(node: ast.Name | ast.Attribute, names: Names, path: str, calls: _EntryTable) -> Iterator[Finding]:
@@ -649,14 +651,14 @@ def _passed_as_value(node: ast.Name | ast.Attribute, names: Names, path: str, ca
 
 
 def _hidden(path: str, line: int, what: str, cwe: str | None, doc: str = "") -> Finding:
-    entry = Entry("call", "(hidden)", what, (), cwe, doc or _IMPORT_DOC)
+    """A finding for a call the entries cannot see (it has no entry of its own)."""
     return Finding(
         RULE_ID,
         "block",
         f"{what} ({cwe})" if cwe else what,
         path=path,
         line=line,
-        details={"cwe": cwe, "entry": entry.target, "doc": entry.doc},
+        details={"cwe": cwe, "entry": "(hidden)", "doc": doc or _IMPORT_DOC},
     )
 
 
