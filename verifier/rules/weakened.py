@@ -16,11 +16,11 @@ from collections import Counter, deque
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 
-from verifier.astnames import Names, canonical, module_index, module_names, resolve, span, walk
+from verifier.astnames import Names, canonical, is_literal, module_index, module_names, resolve, span, walk
 from verifier.models import FileChange, Finding
 from verifier.rules import RuleContext, rule
 from verifier.rules.machine import base_text, glob_matcher, head_text, machine_lines, machine_removed, option
-from verifier.rules.testbody import RAISES_CALLS, Check, assertion_helpers, called_names, checks_of
+from verifier.rules.testbody import RAISES_CALLS, Check, assertion_helpers, called_names, check_reads, checks_of
 
 RULE_ID = "tests.weakened"
 DEFAULT_TEST_GLOBS = ["tests/**/*.py", "test/**/*.py", "**/test_*.py", "**/*_test.py"]
@@ -522,6 +522,26 @@ class _FileComparison:
             if old is not None and count < old[0]:
                 yield self.finding(f"{name}: parametrize cases cut from {old[0]} to {count}", line)
         yield from self._changed_expectations(before, now)
+        if self.report_expectations:
+            yield from self._changed_expected_variables(before, now)
+
+    def _changed_expected_variables(self, before: TestFunction, now: TestFunction) -> Iterator[Finding]:
+        """``expected = 5.70`` becoming ``expected = 6.00`` where a check reads ``expected``: the usual way to
+        hold an expected value, and a changed expectation like a changed literal in the assertion (warns)."""
+        assert self.base is not None
+        read = check_reads(now.node, self.head.names)
+        old = _literal_assignments(before.node)
+        for name, (value, line) in _literal_assignments(now.node).items():
+            previous = old.get(name)
+            if name in read and previous is not None and previous[0] != value and line in self.added:
+                yield Finding(
+                    RULE_ID,
+                    "warn",
+                    f"{now.qualname}: expected value changed ({name}: {previous[0]} -> {value})",
+                    self.path,
+                    line,
+                    {"max_severity": "warn"},
+                )
 
     def _lost_checks(self, before: TestFunction, now: TestFunction, skips: frozenset[int]) -> Iterator[Finding]:
         """Fewer checks that can fail the test: each one the change made dead, then the ones removed (a
@@ -621,6 +641,17 @@ _OPERATORS = {
     ast.In: "in",
     ast.NotIn: "not in",
 }
+
+
+def _literal_assignments(function: ast.FunctionDef | ast.AsyncFunctionDef) -> dict[str, tuple[str, int]]:
+    """``name = <literal>`` statements of the function's own body: name -> (the literal's source, line)."""
+    found: dict[str, tuple[str, int]] = {}
+    for statement in function.body:
+        if isinstance(statement, ast.Assign) and len(statement.targets) == 1 and is_literal(statement.value):
+            target = statement.targets[0]
+            if isinstance(target, ast.Name):
+                found[target.id] = (ast.unparse(statement.value), statement.lineno)
+    return found
 
 
 def _operator_change(old: ast.AST, new: ast.AST) -> str:
