@@ -117,6 +117,10 @@ HONEST = {
     "a helper named for checking": (
         "from parcelkit.testing_tools import check_price\n\n\ndef test_rate():\n    check_price(2)\n"
     ),
+    "a fixture whose name starts with test": (
+        "@pytest.fixture\ndef test_weights():\n    return [1, 2]\n\n\n"
+        "def test_rate(test_weights):\n    assert [rate(w) for w in test_weights] == [4.5, 9.0]\n"
+    ),
     "approx comparison": "def test_rate():\n    assert rate(2) == pytest.approx(9.0)\n",
     "conditional early return": (
         "def test_rate():\n    if sys_platform() == 'win32':\n        return\n    assert rate(2) == 9.0\n\n\n"

@@ -205,7 +205,11 @@ def _collect(
             module.scope_markers[qualname] = markers
             reason = outer or _class_not_collected(node, names, local_classes, disabled)
             _collect(node.body, f"{qualname}.", names, module, reason, _disabled_by_attribute(node.body))
-        elif isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef)) and node.name.startswith("test"):
+        elif (
+            isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef))
+            and node.name.startswith("test")
+            and not _is_fixture(node, names)  # a fixture is no test, whatever its name
+        ):
             qualname = f"{prefix}{node.name}"
             reason = outer or (f"{node.name}.__test__ is set to False" if node.name in disabled else "")
             module.functions[qualname] = TestFunction(qualname, node, _decorator_markers(node, names), reason)
@@ -269,6 +273,10 @@ def _skip_at_module_level(node: ast.stmt, names: Names) -> bool:
 def _raises_skip(node: ast.Raise, names: Names) -> bool:
     exc = node.exc.func if isinstance(node.exc, ast.Call) else node.exc
     return exc is not None and any(n in SKIP_EXCEPTIONS for n in called_names(exc, names))
+
+
+def _is_fixture(node: ast.FunctionDef | ast.AsyncFunctionDef, names: Names) -> bool:
+    return any("pytest.fixture" in _names_of(d, names) for d in node.decorator_list)
 
 
 def _is_autouse_fixture(node: ast.FunctionDef | ast.AsyncFunctionDef, names: Names) -> bool:
