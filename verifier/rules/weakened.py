@@ -536,16 +536,19 @@ class _FileComparison:
     def _changed_expected_variables(self, before: TestFunction, now: TestFunction) -> Iterator[Finding]:
         """``expected = 5.70`` becoming ``expected = 6.00`` where a check reads ``expected``: the usual way to
         hold an expected value, and a changed expectation like a changed literal in the assertion (warns)."""
-        assert self.base is not None
-        read = check_reads(now.node, self.head.names)
         old = _literal_assignments(before.node)
-        for name, (value, line) in _literal_assignments(now.node).items():
-            previous = old.get(name)
-            if name in read and previous is not None and previous[0] != value and line in self.added:
+        changed = {
+            name: (value, line, old[name][0])
+            for name, (value, line) in _literal_assignments(now.node).items()
+            if name in old and old[name][0] != value and line in self.added
+        }
+        read = check_reads(now.node, self.head.names) if changed else frozenset()
+        for name, (value, line, previous) in changed.items():
+            if name in read:
                 yield Finding(
                     RULE_ID,
                     "warn",
-                    f"{now.qualname}: expected value changed ({name}: {previous[0]} -> {value})",
+                    f"{now.qualname}: expected value changed ({name}: {previous} -> {value})",
                     self.path,
                     line,
                     {"max_severity": "warn"},
