@@ -86,6 +86,8 @@ def _is_assert_helper(call: ast.Call, names: Names, helpers: frozenset[str]) -> 
     """A call that can fail the test: an assertion helper by name, pytest's or unittest's failures and
     raises-contexts, a helper of this module that checks, or a helper imported from a test module (the
     gate cannot read it; a test suite's shared checks live there)."""
+    if isinstance(call.func, ast.Attribute) and not _may_check(call.func, names):
+        return False  # the quick answer for most method calls: no resolving needed
     for name in called_names(call, names):
         head, _, last = name.rpartition(".")
         if last.startswith(_CHECKING_NAMES) or name in FAIL_CALLS or name in RAISES_CALLS:
@@ -95,6 +97,24 @@ def _is_assert_helper(call: ast.Call, names: Names, helpers: frozenset[str]) -> 
         if head and not head.startswith(("<local>", "self", "?")) and _is_test_module(head):
             return True
     return False
+
+
+_CHECKING_METHODS = frozenset(n.rsplit(".", 1)[-1] for n in FAIL_CALLS | RAISES_CALLS)
+
+
+def _may_check(func: ast.Attribute, names: Names) -> bool:
+    """Whether ``x.y.method(...)`` can be a check: by the method's name, or by a root that may name a test
+    module (resolving the whole chain is left to the caller)."""
+    if func.attr.startswith(_CHECKING_NAMES) or func.attr in _CHECKING_METHODS:
+        return True
+    root: ast.expr = func
+    while isinstance(root, ast.Attribute):
+        root = root.value
+    if not isinstance(root, ast.Name):
+        return False
+    return any(_is_test_module(m) for m in names.aliases.get(root.id, ())) or (
+        root.id not in names.aliases and _is_test_module(root.id)
+    )
 
 
 def _is_test_module(dotted: str) -> bool:
