@@ -233,7 +233,7 @@ def test_timeout_is_exit_3(repo: ScratchRepo) -> None:
         machine("Slow"),
         {
             "parcelkit/slow.py": "def wait():\n    while True:\n        pass\n",
-            "tests/test_slow.py": "from parcelkit.slow import wait\n\n\ndef test_wait():\n    wait()\n",
+            "tests/test_slow.py": "from parcelkit.slow import wait\n\n\ndef test_wait():\n    assert wait() is None\n",
         },
     )
     out = run_check(repo, sha)

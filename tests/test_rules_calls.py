@@ -131,6 +131,7 @@ CASES: dict[str, tuple[str, list[tuple[int, str]]]] = {
     "os.system as a callback": ("import os\ndef f(run=os.system):\n    return run\n", [(2, "CWE-78")]),
     "subprocess.run passed as a value": ("import subprocess\ndef f(runner=subprocess.run):\n    return runner\n", []),
     "getattr with a literal default": ("import os\nflag = getattr(os, 'O_BINARY', 0)\n", []),
+    "getattr on an object a module holds": ("import sys\ndef f(name):\n    return getattr(sys.stdout, name)\n", []),
     "vars of a local object": ("def f(obj):\n    return vars(obj)['name']\n", []),
     "ordinary git call": ("import subprocess\nout = subprocess.run(['git', 'log', '-c'], capture_output=True)\n", []),
 }

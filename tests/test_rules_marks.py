@@ -154,3 +154,22 @@ def test_gate_passes_an_unmarked_human_commit(repo: ScratchRepo) -> None:
     sha = repo.commit("Add zones\n\nWritten by hand.\n", {"parcelkit/zones.py": ZONES})
     out = run_check(repo, sha)
     assert out.code == 0 and out.report is not None and out.report["findings"] == []
+
+
+def test_gate_judges_a_machine_commit_that_only_deletes(repo: ScratchRepo) -> None:
+    """A machine commit with no added line (it deletes a safety check and the test that pins it) still goes
+    through the static rules: the deleted test is a finding, not a silent pass."""
+    guarded = RATES.replace("    return", "    if weight < 0:\n        raise ValueError(weight)\n    return")
+    test = (
+        "import pytest\n\nfrom parcelkit.rates import rate\n\n\ndef test_rate():\n    assert rate(1) == 4.5\n\n\n"
+        "def test_negative():\n    with pytest.raises(ValueError):\n        rate(-1)\n"
+    )
+    repo.commit(
+        "Start parcelkit", {"parcelkit/__init__.py": "", "parcelkit/rates.py": guarded, "tests/test_rates.py": test}
+    )
+    cut = test[: test.index("\n\n\ndef test_negative")] + "\n"
+    sha = repo.commit(machine("Simplify rates"), {"parcelkit/rates.py": RATES, "tests/test_rates.py": cut})
+    out = run_check(repo, sha)
+    assert out.report is not None, out.stderr
+    weakened = [f["message"] for f in out.report["findings"] if f["rule"] == "tests.weakened"]
+    assert weakened == ["test function test_negative deleted"] and out.code == 1

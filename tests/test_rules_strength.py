@@ -64,6 +64,10 @@ WEAK = {
         "    assert value == 9.0\n",
         [("tests.swallowed-errors", 9)],
     ),
+    "a call of an ordinary helper only": (
+        "from parcelkit.reports import print_rates\n\n\ndef test_rate():\n    print_rates(rate(2))\n",
+        [("tests.cannot-fail", 11)],  # the def is on line 11 here (the import comes first)
+    ),
     "uncollected test class": (
         "class RateChecks:\n    def test_rate(self):\n        assert rate(2) == 9.0\n",
         [("tests.cannot-fail", 9)],
@@ -106,6 +110,16 @@ HONEST = {
     "an error recorded as a flag a check reads": (
         "def test_rate():\n    failed = False\n    try:\n        rate(2)\n    except Exception:\n"
         "        failed = True\n    assert not failed\n"
+    ),
+    "a checking helper from a shared test module": (
+        "from tests.helpers import price_matches\n\n\ndef test_rate():\n    price_matches(rate, 2, 9.0)\n"
+    ),
+    "a helper named for checking": (
+        "from parcelkit.testing_tools import check_price\n\n\ndef test_rate():\n    check_price(2)\n"
+    ),
+    "a fixture whose name starts with test": (
+        "@pytest.fixture\ndef test_weights():\n    return [1, 2]\n\n\n"
+        "def test_rate(test_weights):\n    assert [rate(w) for w in test_weights] == [4.5, 9.0]\n"
     ),
     "approx comparison": "def test_rate():\n    assert rate(2) == pytest.approx(9.0)\n",
     "conditional early return": (

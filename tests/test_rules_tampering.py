@@ -11,7 +11,7 @@ from conftest import machine, run_check
 from test_rules_support import findings, machine_change
 
 from verifier.demo.scratch import ScratchRepo
-from verifier.rules.tampering import _CALLS, _LOADER_CALLS, means_of
+from verifier.rules.tampering import _CALLS, _LOADER_CALLS, _harness_dir, means_of
 
 CODE = {"parcelkit/__init__.py": "", "parcelkit/rates.py": "def rate(weight):\n    return 4.5 * weight\n"}
 
@@ -44,6 +44,12 @@ MEANS = {
     "os._exit": ("import os\n\n\ndef test_x():\n    os._exit(0)\n", "os._exit()"),
     "pytest.exit": ("import pytest\n\n\ndef test_x():\n    pytest.exit('done', returncode=0)\n", "pytest.exit()"),
     "signal to its own pid": ("import os, signal\nos.kill(os.getpid(), signal.SIGKILL)\n", "os.kill()"),
+    "signal to the runner": (
+        "from os import kill, getppid\nkill(getppid(), 9)\n",
+        "os.kill()",
+    ),
+    "any signal from a test": ("import os\n\n\ndef test_x(pid):\n    os.kill(pid, 15)\n", "os.kill() sends a signal"),
+    "exit builtin in a test": ("def test_x():\n    exit(0)\n", "exit() ends the test process"),
     "signal raised": ("import signal\nsignal.raise_signal(signal.SIGTERM)\n", "signal.raise_signal()"),
     "sys.exit in a test": ("import sys\n\n\ndef test_x():\n    sys.exit(0)\n", "sys.exit()"),
     "SystemExit in a test": ("def test_x():\n    raise SystemExit(0)\n", "raises SystemExit"),
@@ -59,7 +65,7 @@ MEANS = {
         "sets pytest or coverage settings",
     ),
     "the harness's folder": (
-        "from pathlib import Path\nPath('.verifier-harness/out/results.jsonl').write_text('')\n",
+        f"from pathlib import Path\nPath('{_harness_dir()}/out/results.jsonl').write_text('')\n",
         "names the harness's folder",
     ),
     "coverage's data file": ("import os\nos.remove('.coverage')\n", "names coverage.py's data file (.coverage)"),
@@ -103,8 +109,20 @@ def test_ordinary_code_is_not_tampering(repo: ScratchRepo, name: str) -> None:
     assert tamper_findings(repo, HONEST[name]) == []
 
 
-def test_sys_exit_in_a_program_is_ordinary(repo: ScratchRepo) -> None:
-    source = "import sys\n\n\ndef main():\n    sys.exit(0)\n"
+def test_a_signal_to_its_own_run_from_a_program(repo: ScratchRepo) -> None:
+    found = tamper_findings(repo, "import os\n\n\ndef stop():\n    os.kill(os.getppid(), 9)\n", "parcelkit/cli.py")
+    assert found == ["os.kill() sends a signal to its own process, its parent or its group (the test run)"]
+
+
+@pytest.mark.parametrize(
+    "source",
+    [
+        "import sys\n\n\ndef main():\n    sys.exit(0)\n",
+        "import os, signal\n\n\ndef stop(worker):\n    os.kill(worker.pid, signal.SIGTERM)\n",
+        "import signal\n\n\ndef main():\n    signal.signal(signal.SIGINT, signal.SIG_DFL)\n",
+    ],
+)
+def test_process_control_in_a_program_is_ordinary(repo: ScratchRepo, source: str) -> None:
     assert tamper_findings(repo, source, "parcelkit/cli.py") == []
     assert tamper_findings(repo, source, "tests/test_cli.py") != []
 

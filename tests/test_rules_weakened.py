@@ -323,3 +323,22 @@ HONEST_REFACTORS = {
 @pytest.mark.parametrize("name", list(HONEST_REFACTORS))
 def test_honest_refactor_of_a_test_is_not_weakening(repo: ScratchRepo, name: str) -> None:
     assert run(repo, HONEST_REFACTORS[name]) == []
+
+
+VARIABLE_BASE = (
+    "from parcelkit.rates import rate\n\n\ndef test_rate():\n    expected = 4.5\n    assert rate(1) == expected\n"
+)
+
+
+def test_expected_value_held_in_a_variable_changed_warns(repo: ScratchRepo) -> None:
+    head = VARIABLE_BASE.replace("4.5", "5.0")
+    context = machine_change(repo, {"tests/test_rates.py": VARIABLE_BASE}, {"tests/test_rates.py": head})
+    found = [(f.line, f.severity, f.message) for f in findings("tests.weakened", context)]
+    assert found == [(5, "warn", "test_rate: expected value changed (expected: 4.5 -> 5.0)")]
+
+
+def test_a_changed_variable_no_check_reads_is_not_an_expectation(repo: ScratchRepo) -> None:
+    base = VARIABLE_BASE.replace("    expected = 4.5\n", "    expected = 4.5\n    label = 'one kilo'\n")
+    head = base.replace("'one kilo'", "'1 kg'")
+    context = machine_change(repo, {"tests/test_rates.py": base}, {"tests/test_rates.py": head})
+    assert findings("tests.weakened", context) == []

@@ -13,6 +13,7 @@ import ast
 import builtins
 import functools
 import gc
+import re
 import symtable
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass, field
@@ -78,7 +79,7 @@ class ModuleIndex:
 
     @functools.cached_property
     def calls(self) -> list[ast.Call]:
-        found = [node for node in _walk(self.tree) if isinstance(node, ast.Call)]
+        found = [node for node in walk(self.tree) if isinstance(node, ast.Call)]
         found.sort(key=lambda node: (node.lineno, node.col_offset))  # stable: ties keep the walk's order
         return found
 
@@ -109,14 +110,30 @@ def clear_caches() -> None:
     _indexes.clear()
 
 
-def _walk(tree: ast.AST) -> Iterator[ast.AST]:
-    """Every node under ``tree`` (like ``ast.walk``, in a cheaper loop; the order does not matter here)."""
+# Fields that hold no node, or only nodes no rule looks for (contexts, operators): walk skips them.
+_LEAF_FIELDS = frozenset(
+    {"ctx", "id", "attr", "arg", "name", "module", "level", "kind", "type_comment", "op", "ops", "is_async"}
+    | {"conversion", "tag"}
+)
+
+
+@functools.cache
+def _node_fields(node_type: type) -> tuple[str, ...]:
+    if issubclass(node_type, ast.Constant):
+        return ()  # its value is data, never a node
+    return tuple(name for name in node_type._fields if name not in _LEAF_FIELDS)  # type: ignore[attr-defined]
+
+
+def walk(tree: ast.AST) -> Iterator[ast.AST]:
+    """Every node under ``tree`` but contexts and operators (like ``ast.walk``, in a cheaper loop; the order
+    does not matter here)."""
     stack = [tree]
     node_type = ast.AST
+    fields_of = _node_fields
     while stack:
         node = stack.pop()
         yield node
-        for name in node._fields:
+        for name in fields_of(type(node)):  # type: ignore[arg-type]  # an AST class is hashable
             value = getattr(node, name, None)
             if isinstance(value, node_type):
                 stack.append(value)
@@ -270,6 +287,12 @@ def namespace_of(node: ast.expr, names: Names) -> tuple[str, ...] | None:
     if "builtins" in meanings:
         return ("builtins",)
     return None
+
+
+# Source text where string pieces are joined, by the parser ('sys' 'tem', over lines too) or at run time
+# ("ev" + "al", "".join(...)): the rules' quick looks at a source let such a source through, since a name,
+# a shell or a secret may be spelt in pieces there.
+PIECES = re.compile(r"""['"](?:[ \t]|\\?\n)+[rbuRBUfF]{0,2}['"]|['"]\s*\+\s*[rbuRBUfF]{0,2}['"]|['"]\.join\(""")
 
 
 def constant_string(node: ast.AST) -> str | None:

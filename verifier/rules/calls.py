@@ -29,6 +29,7 @@ from fnmatch import fnmatchcase
 from typing import Any
 
 from verifier.astnames import (
+    PIECES,
     ModuleIndex,
     Names,
     canonical,
@@ -38,6 +39,7 @@ from verifier.astnames import (
     namespace_of,
     resolve,
     span,
+    walk,
 )
 from verifier.models import Finding
 from verifier.rules import RuleContext, rule
@@ -424,9 +426,6 @@ _DYNAMIC_TEXTS = (
     "pwsh",
     "busybox",
 )
-# string pieces joined by the parser or at run time ('sys' 'tem', "ev" + "al", "".join(...)): a name or a
-# shell may be spelt in pieces, so a source holding such pieces is always checked
-_PIECES = re.compile(r"""['"](?:[ \t]|\\?\n)+[rbuRBUfF]{0,2}['"]|['"]\s*\+\s*[rbuRBUfF]{0,2}['"]|['"]\.join\(""")
 
 
 class _Needs:
@@ -449,7 +448,7 @@ class _Needs:
         the text; ``getattr(obj, "na" "me")`` builds an attribute from a string; both are always checked."""
         if self.always or not source.isascii() or any(text in source for text in _DYNAMIC_TEXTS):
             return True
-        if _PIECES.search(source):
+        if PIECES.search(source):
             return True
         present = {text for text in self.texts if text in source}
         for first in present.intersection(self.by_first):
@@ -575,9 +574,9 @@ def hidden_calls(module: ModuleIndex, path: str, lines: frozenset[int], calls: _
     ``os.__dict__``, ``sys.modules[name]``, ``__builtins__[name]``), and an entry's function passed on as a
     value (``map(eval, rows)``, ``callback=os.system``), which the entry can no longer see called."""
     names = module.names
-    called_funcs = {id(call.func) for call in module.calls}
-    alias_values = {id(a.value) for a in module.assignments if isinstance(a.value, (ast.Name, ast.Attribute))}
-    for node in ast.walk(module.tree):
+    not_values = {id(call.func) for call in module.calls}  # called where the entries see the arguments
+    not_values |= {id(a.value) for a in module.assignments if isinstance(a.value, (ast.Name, ast.Attribute))}
+    for node in walk(module.tree):
         if not isinstance(node, (ast.List, ast.Tuple, ast.Call, ast.Attribute, ast.Subscript, ast.Name)):
             continue
         if not any(n in lines for n in span(node)):
@@ -589,7 +588,7 @@ def hidden_calls(module: ModuleIndex, path: str, lines: frozenset[int], calls: _
         if dynamic:
             yield _hidden(path, node.lineno, f"{dynamic}: the gate cannot see which function it reaches", "CWE-470")
             continue
-        if isinstance(node, (ast.Name, ast.Attribute)) and id(node) not in called_funcs | alias_values:
+        if isinstance(node, (ast.Name, ast.Attribute)) and id(node) not in not_values:
             yield from _passed_as_value(node, names, path, calls)
 
 
@@ -637,7 +636,8 @@ def _module_by_computed_name(node: ast.AST, names: Names) -> bool:
 
 
 def _guarded(meanings: Sequence[str]) -> str:
-    return next((m for m in meanings if canonical(m).split(".", 1)[0] in GUARDED_MODULES or m == "builtins"), "")
+    """The guarded module among ``meanings`` (the module itself, not an object it holds), or ''."""
+    return next((m for m in meanings if canonical(m) in GUARDED_MODULES or m == "builtins"), "")
 
 
 def _passed_as_value(node: ast.Name | ast.Attribute, names: Names, path: str, calls: _EntryTable) -> Iterator[Finding]:
@@ -652,14 +652,14 @@ def _passed_as_value(node: ast.Name | ast.Attribute, names: Names, path: str, ca
 
 
 def _hidden(path: str, line: int, what: str, cwe: str | None, doc: str = "") -> Finding:
-    entry = Entry("call", "(hidden)", what, (), cwe, doc or _IMPORT_DOC)
+    """A finding for a call the entries cannot see (it has no entry of its own)."""
     return Finding(
         RULE_ID,
         "block",
         f"{what} ({cwe})" if cwe else what,
         path=path,
         line=line,
-        details={"cwe": cwe, "entry": entry.target, "doc": entry.doc},
+        details={"cwe": cwe, "entry": "(hidden)", "doc": doc or _IMPORT_DOC},
     )
 
 

@@ -26,6 +26,7 @@ FAMILIES = (
     "verifier.rules.secrets",
     "verifier.rules.tampering",
     "verifier.rules.marks",
+    "verifier.rules.census",
     "verifier.rules.regressions",
 )
 

@@ -8,7 +8,7 @@ import re
 from collections import Counter
 from collections.abc import Iterator
 
-from verifier.astnames import constant_string, module_index, span
+from verifier.astnames import PIECES, constant_string, module_index, span
 from verifier.models import Finding
 from verifier.rules import RuleContext, rule
 from verifier.rules.machine import mask, option
@@ -161,7 +161,7 @@ def _texts(path: str, source: str, lines: frozenset[int]) -> Iterator[tuple[int,
         for number in sorted(lines):
             if 0 < number <= len(rows):
                 yield number, rows[number - 1]
-    if path.endswith(".py"):
+    if path.endswith(".py") and PIECES.search(source):
         yield from _joined_strings(source, path, lines)
 
 

@@ -19,7 +19,7 @@ import ast
 from collections.abc import Iterator
 from dataclasses import dataclass
 
-from verifier.astnames import module_index
+from verifier.astnames import module_index, walk
 from verifier.models import FileChange, Finding
 from verifier.rules import RuleContext, rule
 from verifier.rules.machine import base_text, glob_matcher, head_text, machine_lines, option
@@ -53,13 +53,20 @@ class _TestUnderReview:
         return self.before is not None and len(self.function.asserts) < len(self.before.asserts)
 
 
-def _machine_tests(context: RuleContext) -> Iterator[_TestUnderReview]:
+_last: list[tuple[RuleContext, list[_TestUnderReview]]] = []  # the three rules read one change's tests once
+
+
+def _machine_tests(context: RuleContext) -> list[_TestUnderReview]:
+    if _last and _last[0][0] is context:
+        return _last[0][1]
     is_test = glob_matcher(tuple(option(context, WEAKENED, "test_paths")))
+    found: list[_TestUnderReview] = []
     for file in context.change.files:
         lines = machine_lines(context, file.path)
-        if not lines or not file.path.endswith(".py") or not is_test(file.path):
-            continue
-        yield from _tests_of_file(context, file, lines)
+        if lines and file.path.endswith(".py") and is_test(file.path):
+            found.extend(_tests_of_file(context, file, lines))
+    _last[:] = [(context, found)]
+    return found
 
 
 def _tests_of_file(context: RuleContext, file: FileChange, lines: frozenset[int]) -> Iterator[_TestUnderReview]:
@@ -69,7 +76,7 @@ def _tests_of_file(context: RuleContext, file: FileChange, lines: frozenset[int]
         return
     head = read_module(index.tree, index.names)
     base_source = base_text(context, file)
-    base_index = module_index(base_source, file.old_path or file.path, keep=False) if base_source else None
+    base_index = module_index(base_source, file.old_path or file.path) if base_source else None
     base = read_module(base_index.tree, base_index.names) if base_index is not None else None
     for qualname, function in head.functions.items():
         if not any(n in lines for n in _span(function.node)):
@@ -164,10 +171,8 @@ def swallowed_errors(context: RuleContext) -> Iterator[Finding]:
     for test in _machine_tests(context):
         names = test.module.names
         reads = check_reads(test.function.node, names)
-        for node in ast.walk(test.function.node):
-            if not isinstance(node, ast.Try) or not any(
-                isinstance(n, ast.Call) for s in node.body for n in ast.walk(s)
-            ):
+        for node in walk(test.function.node):
+            if not isinstance(node, ast.Try) or not any(isinstance(n, ast.Call) for s in node.body for n in walk(s)):
                 continue
             handler = next(
                 (h for h in node.handlers if catches_everything(h, names) and inert(h.body, names, reads)), None

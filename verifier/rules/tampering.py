@@ -22,7 +22,7 @@ from __future__ import annotations
 import ast
 from collections.abc import Iterator
 
-from verifier.astnames import ModuleIndex, canonical, constant_string, module_index, resolve, span
+from verifier.astnames import PIECES, ModuleIndex, canonical, constant_string, module_index, resolve, span
 from verifier.models import Finding
 from verifier.rules import RuleContext, rule
 from verifier.rules.machine import glob_matcher, machine_lines, machine_may_have_touched, option
@@ -44,11 +44,8 @@ _INTERNAL_IMPORTS = {
 _CALLS = {
     "os._exit": "ends the process at once, skipping the harness's handlers (the run can look complete)",
     "os.abort": "ends the process at once",
-    "os.kill": "sends a signal to a process (its own, or the runner's)",
-    "os.killpg": "sends a signal to a process group (the runner's)",
     "signal.raise_signal": "sends a signal to its own process",
     "signal.pthread_kill": "sends a signal to a thread of its own process",
-    "signal.signal": "installs a signal handler in the test process",
     "signal.alarm": "schedules a signal to its own process",
     "pytest.exit": "ends the pytest session early, with an exit code of its choosing",
     "atexit.register": "registers an exit handler, which runs after the tests (when the results are written)",
@@ -69,7 +66,19 @@ _PREFIX_CALLS = {
     "ctypes.": "uses ctypes, which can rewrite any memory of the process",
 }
 # only in test files: ordinary in a program's entry point, a way out of the session in a test
-_TEST_ONLY_CALLS = {"sys.exit": "ends the test process", "os.exec": "replaces the test process by another program"}
+_TEST_ONLY_CALLS = {
+    "sys.exit": "ends the test process",
+    "exit": "ends the test process",
+    "quit": "ends the test process",
+    "os.exec": "replaces the test process by another program",  # the os.exec* family
+    "os.kill": "sends a signal from a test",
+    "os.killpg": "sends a signal to a process group from a test",
+    "signal.signal": "installs a signal handler in the test process",
+}
+# a signal to these ends the run itself, wherever the call is: its own process, its parent (the runner),
+# its group, every process (os.kill's pid 0 and -1, Python docs, os.kill / kill(2))
+_OWN_PROCESS = frozenset({"os.getpid", "os.getppid", "os.getpgrp", "os.getpgid"})
+_SIGNAL_SENDERS = ("os.kill", "os.killpg")
 _FRAME_ATTRIBUTES = frozenset({"f_back", "f_globals", "f_locals", "f_builtins", "tb_frame", "gi_frame", "cr_frame"})
 _SYS_MODULES_WRITES = frozenset({"pop", "popitem", "update", "setdefault", "clear", "__setitem__", "__delitem__"})
 # coverage.py's default data file is .coverage, its parallel files .coverage.<suffix> (coverage.py docs, data file)
@@ -125,7 +134,7 @@ def tampering_means(context: RuleContext) -> Iterator[Finding]:
     harness_dir = _harness_dir()
     for path, lines in context.provenance.machine_lines.items():
         source = context.head_sources.get(path)
-        if not path.endswith(".py") or source is None:
+        if not path.endswith(".py") or source is None or not _may_hold(source, (*_MEANS_TEXTS, harness_dir)):
             continue
         index = module_index(source, path)
         if index is not None:
@@ -160,7 +169,8 @@ def hidden_code(context: RuleContext) -> Iterator[Finding]:
             )
     for path, lines in context.provenance.machine_lines.items():
         source = context.head_sources.get(path)
-        index = module_index(source, path) if source is not None and path.endswith(".py") else None
+        readable = source is not None and path.endswith(".py") and _may_hold(source, _HIDDEN_TEXTS)
+        index = module_index(source, path) if readable and source is not None else None
         if index is None:
             continue
         for call in index.calls:
@@ -170,6 +180,29 @@ def hidden_code(context: RuleContext) -> Iterator[Finding]:
                 if name in _LOADER_CALLS:
                     yield Finding(HIDDEN, "block", f"{name}() {_LOADER_CALLS[name]}", path=path, line=call.lineno)
                     break
+
+
+# Every means above is named in the source by one of these texts (an import, an attribute, a key), unless
+# the name is built at run time (getattr, a namespace read as a mapping, string pieces): a source without
+# any of them is skipped without a parse.
+_MEANS_TEXTS = (
+    "_pytest", "pluggy", "coverage", "xdist", "pytest_cov", "ctypes", "_exit", "abort", "kill", "signal",
+    "exit", "atexit", "settrace", "setprofile", "get_objects", "get_refer", "_getframe", "currentframe",
+    "stack", "getouterframes", "addaudithook", "monitoring", "exec", "modules", "f_back", "f_globals",
+    "f_locals", "f_builtins", "tb_frame", "gi_frame", "cr_frame", "pytest_plugins", "environ", "putenv",
+    "setenv", "setitem", "__code__", "__globals__", "KeyboardInterrupt", "SystemExit", ".verifier-harness",
+    "getattr", "__dict__", "vars(", "__builtins__", "import_module", "__import__",
+)  # fmt: skip
+_HIDDEN_TEXTS = (
+    "runpy", "machinery", "spec_from", "module_from_spec", "zipimport", "load_source", "load_compiled",
+    "CodeType", "marshal", "getattr", "__dict__", "vars(", "__builtins__", "import_module", "__import__",
+)  # fmt: skip
+
+
+def _may_hold(source: str, texts: tuple[str, ...]) -> bool:
+    """False only when ``source`` cannot name any of the means (identifiers outside ASCII are normalised
+    by the parser, so such a source is always read)."""
+    return not source.isascii() or any(text in source for text in texts) or PIECES.search(source) is not None
 
 
 def _harness_dir() -> str:
@@ -227,12 +260,23 @@ class _MeansFinder:
         for name in (canonical(n) for n in resolve(node.func, self.names)):
             why = _CALLS.get(name) or next((w for p, w in _PREFIX_CALLS.items() if name.startswith(p)), None)
             if why is None and self.in_test:
-                why = next((w for p, w in _TEST_ONLY_CALLS.items() if name.startswith(p)), None)
+                why = _TEST_ONLY_CALLS.get("os.exec" if name.startswith("os.exec") else name)
+            if why is None and name in _SIGNAL_SENDERS and node.args and self.own_process(node.args[0]):
+                why = "sends a signal to its own process, its parent or its group (the test run)"
             if why is None:
                 why = self.module_or_setting_write(name, node)
             if why is not None:
                 yield from self.finding(node, f"{name}() {why}")
                 return
+
+    def own_process(self, target: ast.expr) -> bool:
+        if isinstance(target, ast.Constant) and target.value in (0, -1):
+            return True
+        if isinstance(target, ast.UnaryOp) and isinstance(target.operand, ast.Constant):
+            return True  # -1, or -pid
+        if isinstance(target, ast.Call):
+            return any(canonical(n) in _OWN_PROCESS for n in resolve(target.func, self.names))
+        return False
 
     def module_or_setting_write(self, name: str, node: ast.Call) -> str | None:
         """``sys.modules.pop("coverage")``, ``monkeypatch.setitem(sys.modules, "_pytest", x)``,

@@ -21,10 +21,12 @@ being reported; only shapes that cannot fail are.
 from __future__ import annotations
 
 import ast
+import functools
+import weakref
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 
-from verifier.astnames import Names, canonical, is_literal, resolve
+from verifier.astnames import Names, canonical, is_literal, resolve, walk
 
 LIVE = "live"
 State = tuple[str, str, int] | None  # None: live; else (status, why, the line that causes it)
@@ -76,14 +78,50 @@ def is_raises_call(call: ast.Call, names: Names) -> bool:
     return any(n in RAISES_CALLS for n in called_names(call, names))
 
 
+# Names that say a helper checks something (common practice in test suites: check_*, verify_*, expect_*).
+_CHECKING_NAMES = ("assert", "check", "verify", "expect", "ensure")
+
+
 def _is_assert_helper(call: ast.Call, names: Names, helpers: frozenset[str]) -> bool:
+    """A call that can fail the test: an assertion helper by name, pytest's or unittest's failures and
+    raises-contexts, a helper of this module that checks, or a helper imported from a test module (the
+    gate cannot read it; a test suite's shared checks live there)."""
+    if isinstance(call.func, ast.Attribute) and not _may_check(call.func, names):
+        return False  # the quick answer for most method calls: no resolving needed
     for name in called_names(call, names):
-        last = name.rsplit(".", 1)[-1]
-        if last.startswith("assert") or name in FAIL_CALLS or name in RAISES_CALLS:
+        head, _, last = name.rpartition(".")
+        if last.startswith(_CHECKING_NAMES) or name in FAIL_CALLS or name in RAISES_CALLS:
             return True
-        if name.startswith("<local>.") and name.removeprefix("<local>.") in helpers:
+        if head == "<local>" and last in helpers:
+            return True
+        if head and not head.startswith(("<local>", "self", "?")) and _is_test_module(head):
             return True
     return False
+
+
+_CHECKING_METHODS = frozenset(n.rsplit(".", 1)[-1] for n in FAIL_CALLS | RAISES_CALLS)
+
+
+def _may_check(func: ast.Attribute, names: Names) -> bool:
+    """Whether ``x.y.method(...)`` can be a check: by the method's name, or by a root that may name a test
+    module (resolving the whole chain is left to the caller)."""
+    if func.attr.startswith(_CHECKING_NAMES) or func.attr in _CHECKING_METHODS:
+        return True
+    root: ast.expr = func
+    while isinstance(root, ast.Attribute):
+        root = root.value
+    if not isinstance(root, ast.Name):
+        return False
+    return any(_is_test_module(m) for m in names.aliases.get(root.id, ())) or (
+        root.id not in names.aliases and _is_test_module(root.id)
+    )
+
+
+def _is_test_module(dotted: str) -> bool:
+    return any(
+        part.startswith("test") or part.endswith(("_test", "tests", "testing")) or part == "conftest"
+        for part in dotted.split(".")
+    )
 
 
 def is_ending_call(node: ast.stmt, names: Names) -> bool:
@@ -134,14 +172,24 @@ def _same(one: ast.AST, other: ast.AST) -> bool:
 
 
 class _Walker:
-    def __init__(
-        self, names: Names, helpers: frozenset[str], referenced: frozenset[str], reads: frozenset[str]
-    ) -> None:
+    def __init__(self, function: ast.AST, names: Names, helpers: frozenset[str]) -> None:
+        self.function = function
         self.names = names
-        self.reads = reads
         self.helpers = helpers
-        self.referenced = referenced
         self.found: list[Check] = []
+
+    # read only when a nested definition or a try statement needs them (most tests have neither)
+    @functools.cached_property
+    def _names_read(self) -> tuple[frozenset[str], frozenset[str]]:
+        return _reads_and_references(self.function, self.names)
+
+    @property
+    def reads(self) -> frozenset[str]:
+        return self._names_read[0]
+
+    @property
+    def referenced(self) -> frozenset[str]:
+        return self._names_read[1]
 
     def block(self, body: Iterable[ast.stmt], state: State) -> bool:
         """Walk ``body`` in ``state`` (None: live, else (status, why)); True when the block always ends early."""
@@ -244,7 +292,7 @@ class _Walker:
 
     def expressions(self, nodes: Iterable[ast.AST], state: State, skip: ast.AST | None = None) -> None:
         for root in nodes:
-            for node in ast.walk(root):
+            for node in walk(root):
                 if node is skip or not isinstance(node, ast.Call):
                     continue
                 if _is_assert_helper(node, self.names, self.helpers):
@@ -317,29 +365,43 @@ def inert(body: list[ast.stmt], names: Names, check_reads: frozenset[str] = froz
 
 def check_reads(function: ast.AST, names: Names) -> frozenset[str]:
     """The names the function's assertions (and assertion-helper calls) read."""
-    found: set[str] = set()
-    for node in ast.walk(function):
-        if isinstance(node, ast.Assert) or (isinstance(node, ast.Call) and _is_assert_helper(node, names, frozenset())):
-            found.update(n.id for n in ast.walk(node) if isinstance(n, ast.Name))
-    return frozenset(found)
+    return _reads_and_references(function, names)[0]
+
+
+def _reads_and_references(function: ast.AST, names: Names) -> tuple[frozenset[str], frozenset[str]]:
+    """(the names the checks read, every name the function loads), in one walk."""
+    reads: set[str] = set()
+    loaded: set[str] = set()
+    for node in walk(function):
+        if isinstance(node, ast.Name):
+            if isinstance(node.ctx, ast.Load):
+                loaded.add(node.id)
+        elif isinstance(node, ast.Assert) or (
+            isinstance(node, ast.Call) and _is_assert_helper(node, names, frozenset())
+        ):
+            reads.update(n.id for n in walk(node) if isinstance(n, ast.Name))
+    return frozenset(reads), frozenset(loaded)
 
 
 def _swallows(handler: ast.ExceptHandler, names: Names, reads: frozenset[str]) -> bool:
     return _catches_assertion(handler.type, names) and inert(handler.body, names, reads)
 
 
-def referenced_names(function: ast.AST) -> frozenset[str]:
-    """Every name the function loads (a nested function it refers to counts as called)."""
-    return frozenset(n.id for n in ast.walk(function) if isinstance(n, ast.Name) and isinstance(n.ctx, ast.Load))
+_memo: weakref.WeakKeyDictionary[ast.AST, tuple[frozenset[str], list[Check]]] = weakref.WeakKeyDictionary()
 
 
 def checks_of(
     function: ast.FunctionDef | ast.AsyncFunctionDef, names: Names, helpers: frozenset[str] = frozenset()
 ) -> list[Check]:
-    """Every check of ``function`` with its status, in source order."""
-    walker = _Walker(names, helpers, referenced_names(function), check_reads(function, names))
+    """Every check of ``function`` with its status, in source order (kept while the tree lives: the parse
+    is shared by the rules, and several read the same tests)."""
+    kept = _memo.get(function)
+    if kept is not None and kept[0] == helpers:
+        return kept[1]
+    walker = _Walker(function, names, helpers)
     walker.block(function.body, None)
     walker.found.sort(key=lambda c: (c.line, getattr(c.node, "col_offset", 0)))
+    _memo[function] = (helpers, walker.found)
     return walker.found
 
 

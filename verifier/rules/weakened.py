@@ -11,15 +11,16 @@ import ast
 import builtins
 import fnmatch
 import functools
+import weakref
 from collections import Counter, deque
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 
-from verifier.astnames import Names, canonical, module_index, module_names, resolve, span
+from verifier.astnames import Names, canonical, is_literal, module_index, module_names, resolve, span, walk
 from verifier.models import FileChange, Finding
 from verifier.rules import RuleContext, rule
 from verifier.rules.machine import base_text, glob_matcher, head_text, machine_lines, machine_removed, option
-from verifier.rules.testbody import RAISES_CALLS, Check, assertion_helpers, called_names, checks_of
+from verifier.rules.testbody import RAISES_CALLS, Check, assertion_helpers, called_names, check_reads, checks_of
 
 RULE_ID = "tests.weakened"
 DEFAULT_TEST_GLOBS = ["tests/**/*.py", "test/**/*.py", "**/test_*.py", "**/*_test.py"]
@@ -110,11 +111,11 @@ def _branch_fields(node_type: type) -> tuple[str, ...]:
 
 
 def _checks_in(node: ast.AST) -> list[ast.AST]:
-    """The assertions and calls of ``ast.walk(node)``, in the same order, in a cheaper loop that skips
-    the fields that can hold neither."""
+    """The assertions, calls and raises of ``ast.walk(node)``, in the same order, in a cheaper loop that
+    skips the fields that can hold none."""
     found: list[ast.AST] = []
     queue = deque([node])
-    node_type, wanted = ast.AST, (ast.Assert, ast.Call)
+    node_type, wanted = ast.AST, (ast.Assert, ast.Call, ast.Raise)
     while queue:
         node = queue.popleft()
         if isinstance(node, wanted):
@@ -152,20 +153,36 @@ class TestModule:
     names: Names
     functions: dict[str, TestFunction]
     scope_markers: dict[str, dict[str, int]]  # "" (module) or class qualname -> skip marker -> line
-    helpers: frozenset[str] = frozenset()  # module functions that hold a live check (assertion helpers)
+    tree: ast.Module | None = None
     module_skips: list[ast.AST] = field(default_factory=list)  # skips at module level (every test skipped)
     fixtures: dict[str, ast.FunctionDef | ast.AsyncFunctionDef] = field(default_factory=dict)  # autouse ones
     definitions: dict[str, ast.FunctionDef | ast.AsyncFunctionDef] = field(default_factory=dict)  # module level
 
+    @functools.cached_property
+    def helpers(self) -> frozenset[str]:
+        """Module functions that hold a live check (assertion helpers), read when a test body is."""
+        return assertion_helpers(self.tree, self.names) if self.tree is not None else frozenset()
+
+
+_read: weakref.WeakKeyDictionary[ast.Module, TestModule] = weakref.WeakKeyDictionary()
+
 
 def read_module(tree: ast.Module, names: Names | None = None) -> TestModule:
-    names = names or module_names(tree)
-    module = TestModule(names, {}, {"": _pytestmark(tree.body, names)}, assertion_helpers(tree, names))
+    """The test functions of a module and what they check; read once per tree (the rules share the parse)."""
+    kept = _read.get(tree)
+    if kept is None:
+        kept = _read[tree] = _read_module(tree, names or module_names(tree))
+    return kept
+
+
+def _read_module(tree: ast.Module, names: Names) -> TestModule:
+    module = TestModule(names, {}, {"": _pytestmark(tree.body, names)}, tree)
     module.module_skips = [n for n in tree.body if _skip_at_module_level(n, names)]
+    class_bodies = [s for n in tree.body if isinstance(n, ast.ClassDef) for s in n.body]
     module.fixtures = {
         n.name: n
-        for n in ast.walk(tree)
-        if isinstance(n, (ast.FunctionDef, ast.AsyncFunctionDef)) and _is_autouse_fixture(n, names)
+        for n in [*tree.body, *class_bodies]
+        if isinstance(n, (ast.FunctionDef, ast.AsyncFunctionDef)) and n.decorator_list and _is_autouse_fixture(n, names)
     }
     module.definitions = {n.name: n for n in tree.body if isinstance(n, (ast.FunctionDef, ast.AsyncFunctionDef))}
     disabled = _disabled_by_attribute(tree.body)
@@ -188,7 +205,11 @@ def _collect(
             module.scope_markers[qualname] = markers
             reason = outer or _class_not_collected(node, names, local_classes, disabled)
             _collect(node.body, f"{qualname}.", names, module, reason, _disabled_by_attribute(node.body))
-        elif isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef)) and node.name.startswith("test"):
+        elif (
+            isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef))
+            and node.name.startswith("test")
+            and not _is_fixture(node, names)  # a fixture is no test, whatever its name
+        ):
             qualname = f"{prefix}{node.name}"
             reason = outer or (f"{node.name}.__test__ is set to False" if node.name in disabled else "")
             module.functions[qualname] = TestFunction(qualname, node, _decorator_markers(node, names), reason)
@@ -237,7 +258,9 @@ def _disabled_by_attribute(body: list[ast.stmt], own: bool = False) -> frozenset
 def _skip_at_module_level(node: ast.stmt, names: Names) -> bool:
     """``pytest.skip(..., allow_module_level=True)``, ``pytest.importorskip(...)``, ``raise unittest.SkipTest``
     as a module-level statement (also inside a module-level ``if`` or ``try``)."""
-    for child in ast.walk(node):
+    if isinstance(node, (ast.Import, ast.ImportFrom, ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef)):
+        return False
+    for child in walk(node):
         if isinstance(child, (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef, ast.Lambda)):
             return False
         if isinstance(child, ast.Call) and any(n in SKIP_CALLS for n in called_names(child, names)):
@@ -250,6 +273,10 @@ def _skip_at_module_level(node: ast.stmt, names: Names) -> bool:
 def _raises_skip(node: ast.Raise, names: Names) -> bool:
     exc = node.exc.func if isinstance(node.exc, ast.Call) else node.exc
     return exc is not None and any(n in SKIP_EXCEPTIONS for n in called_names(exc, names))
+
+
+def _is_fixture(node: ast.FunctionDef | ast.AsyncFunctionDef, names: Names) -> bool:
+    return any("pytest.fixture" in _names_of(d, names) for d in node.decorator_list)
 
 
 def _is_autouse_fixture(node: ast.FunctionDef | ast.AsyncFunctionDef, names: Names) -> bool:
@@ -300,13 +327,14 @@ def load(function: TestFunction, module: TestModule) -> TestFunction:
     function.checks = checks_of(node, names, module.helpers)
     function.asserts = [c.node for c in function.checks if c.live]
     for child in _checks_in(node):
-        if isinstance(child, ast.Call):
+        if isinstance(child, ast.Raise) and _raises_skip(child, names):
+            function.skip_calls.append(child)
+        elif isinstance(child, ast.Call):
             called = _names_of(child, names)
             if any(n in SKIP_CALLS for n in called):
                 function.skip_calls.append(child)
             if any(n in RAISES_CALLS for n in called):
                 function.raises.append(child)
-    function.skip_calls += [n for n in ast.walk(node) if isinstance(n, ast.Raise) and _raises_skip(n, names)]
     for found in (function.skip_calls, function.raises):
         found.sort(key=lambda n: (n.lineno, n.col_offset))  # source order: pairs base and head by position
     return function
@@ -364,9 +392,9 @@ def _compare_file(context: RuleContext, file: FileChange, at_base: bool, at_head
         return  # every finding below needs a line a model added or may have removed
     base_source = base_text(context, file) if at_base else None
     head_source = head_text(context, file) if at_head else None
-    # keep=False: only this rule reads most test files (calls.banned, which runs first, shares its index)
-    base_index = module_index(base_source, file.old_path or file.path, keep=False) if base_source is not None else None
-    head_index = module_index(head_source, file.path, keep=False) if head_source is not None else None
+    # kept: the test-strength rules (verifier.rules.strength, registered after this one) read the same files
+    base_index = module_index(base_source, file.old_path or file.path) if base_source is not None else None
+    head_index = module_index(head_source, file.path) if head_source is not None else None
     base = read_module(base_index.tree, base_index.names) if base_index is not None else None
     if base is not None and base.functions and head_source is None and removed_by_machine:
         yield Finding(
@@ -502,6 +530,29 @@ class _FileComparison:
             if old is not None and count < old[0]:
                 yield self.finding(f"{name}: parametrize cases cut from {old[0]} to {count}", line)
         yield from self._changed_expectations(before, now)
+        if self.report_expectations:
+            yield from self._changed_expected_variables(before, now)
+
+    def _changed_expected_variables(self, before: TestFunction, now: TestFunction) -> Iterator[Finding]:
+        """``expected = 5.70`` becoming ``expected = 6.00`` where a check reads ``expected``: the usual way to
+        hold an expected value, and a changed expectation like a changed literal in the assertion (warns)."""
+        old = _literal_assignments(before.node)
+        changed = {
+            name: (value, line, old[name][0])
+            for name, (value, line) in _literal_assignments(now.node).items()
+            if name in old and old[name][0] != value and line in self.added
+        }
+        read = check_reads(now.node, self.head.names) if changed else frozenset()
+        for name, (value, line, previous) in changed.items():
+            if name in read:
+                yield Finding(
+                    RULE_ID,
+                    "warn",
+                    f"{now.qualname}: expected value changed ({name}: {previous} -> {value})",
+                    self.path,
+                    line,
+                    {"max_severity": "warn"},
+                )
 
     def _lost_checks(self, before: TestFunction, now: TestFunction, skips: frozenset[int]) -> Iterator[Finding]:
         """Fewer checks that can fail the test: each one the change made dead, then the ones removed (a
@@ -522,10 +573,16 @@ class _FileComparison:
 
     def _decorators(self, before: TestFunction, now: TestFunction) -> Iterator[Finding]:
         """A decorator added to an existing test can replace it by anything; known testing libraries' are fine."""
-        for decorator in _new_items(before.node.decorator_list, now.node.decorator_list):
+        # compared by what they name: a decorator whose arguments changed (more parametrize cases) is not new
+        assert self.base is not None
+        old = Counter(_names_of(d, self.base.names) for d in before.node.decorator_list)
+        for decorator in now.node.decorator_list:
+            meanings = _names_of(decorator, self.head.names)
+            if old[meanings]:
+                old[meanings] -= 1
+                continue
             if not any(n in self.added for n in span(decorator)):
                 continue
-            meanings = _names_of(decorator, self.head.names)
             if any(m.startswith(_KNOWN_DECORATORS) for m in meanings):
                 continue
             local = next((m.removeprefix("<local>.") for m in meanings if m.startswith("<local>.")), None)
@@ -595,6 +652,17 @@ _OPERATORS = {
     ast.In: "in",
     ast.NotIn: "not in",
 }
+
+
+def _literal_assignments(function: ast.FunctionDef | ast.AsyncFunctionDef) -> dict[str, tuple[str, int]]:
+    """``name = <literal>`` statements of the function's own body: name -> (the literal's source, line)."""
+    found: dict[str, tuple[str, int]] = {}
+    for statement in function.body:
+        if isinstance(statement, ast.Assign) and len(statement.targets) == 1 and is_literal(statement.value):
+            target = statement.targets[0]
+            if isinstance(target, ast.Name):
+                found[target.id] = (ast.unparse(statement.value), statement.lineno)
+    return found
 
 
 def _operator_change(old: ast.AST, new: ast.AST) -> str:
