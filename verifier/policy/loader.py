@@ -186,6 +186,7 @@ SCHEMA: dict[str, Any] = {
         "mode": lambda value: _one_of(value, ("smart", "all")),
         "differential": _boolean,
         "reruns": _number(0, 10),
+        "allow_flaky": _boolean,
         "map_build": lambda value: _one_of(value, ("always", "if-cached", "never")),
         "without_map": lambda value: _one_of(value, ("all", "imports")),
         "workers": lambda value: None if value == "auto" else _number(1, 256)(value),
