@@ -110,14 +110,16 @@ def test_read_capped_refuses_links_and_large_files(tmp_path: Path) -> None:
 # -- whole runs ---------------------------------------------------------------------------------------------
 
 
-def run_tree(tmp_path: Path, files: dict[str, str], judged: tuple[str, ...] = (), reruns: int = 2) -> RunResult:
+def run_tree(
+    tmp_path: Path, files: dict[str, str], judged: tuple[str, ...] = (), reruns: int = 2, workers: int = 1
+) -> RunResult:
     """Run the harness on ``files`` in the sandbox the end-to-end tests use, and read it as the gate does."""
     tree = tmp_path / "tree"
     for name, text in files.items():
         (tree / name).parent.mkdir(parents=True, exist_ok=True)
         (tree / name).write_text(text)
     policy = Policy(source="test")
-    policy = Policy(source="test", selection=type(policy.selection)(reruns=reruns))
+    policy = Policy(source="test", selection=type(policy.selection)(reruns=reruns, workers=workers))
     prepared = harness.prepare(tree, policy, Selection(whole_suite=True), judged)
     result = sandbox.choose(test_sandbox(), True).run(prepared.request)
     run = harness.HarnessRun(result, prepared.key, prepared.folder, prepared.analyses, judged)
@@ -198,3 +200,30 @@ def test_tree_modules_named_like_the_tools_do_not_replace_them(tmp_path: Path) -
     }
     run = run_tree(tmp_path, files)
     assert (run.status, [t.outcome for t in run.tests]) == ("completed", ["passed"]), run.output_tail
+
+
+def test_a_spread_run_over_workers(tmp_path: Path) -> None:
+    """pytest-xdist's workers start isolated too, measure coverage (coverage.py's patch = subprocess) and
+    report through the controller; the collected count comes from the workers' collection."""
+    tests = "".join(
+        f"def test_{n}():\n    from calc.ops import half\n    assert half({2 * n}) == {n}\n\n\n" for n in range(6)
+    )
+    files = {
+        "calc/__init__.py": "",
+        "calc/ops.py": "def half(x):\n    return x // 2\n",
+        "tests/test_ops.py": tests,
+        "json.py": "raise SystemExit('the tree shadowed json in a worker')\n",
+    }
+    run = run_tree(tmp_path, files, judged=("calc/ops.py",), workers=2)
+    assert (run.status, run.problems, len(run.tests)) == ("completed", (), 6), run.output_tail[-3000:]
+    assert "gw0" in run.output_tail or "2 workers" in run.output_tail
+    assert set(run.coverage["calc/ops.py"].contexts[2]) == {f"tests/test_ops.py::test_{n}" for n in range(6)}
+
+
+def test_a_judged_file_coverage_cannot_see_is_not_verified(tmp_path: Path) -> None:
+    """coverage.py does not look for files whose names it cannot import (a comma, coverage.py's
+    find_python_files): a judged file missing from its data is a problem, never covered."""
+    files = {"calc/__init__.py": "", "calc/odd,name.py": "VALUE = 1\n", "tests/test_x.py": "def test_x():\n    pass\n"}
+    run = run_tree(tmp_path, files, judged=("calc/odd,name.py",))
+    assert run.status == "harness-error"
+    assert run.problems == ("calc/odd,name.py: the coverage data has no record of this judged file",)

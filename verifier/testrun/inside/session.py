@@ -61,10 +61,13 @@ def finish_coverage(cov: Any, spread: bool, send: Any) -> None:
         return
     cov.stop()
     cov.save()
-    if spread:
-        cov.combine(keep=False)
-        cov.save()
     path = cov.config.data_file
+    if spread:  # the workers' files and this process's one, joined into the unsuffixed file (as `coverage combine`)
+        import coverage
+
+        combiner = coverage.Coverage(config_file=cov.config.config_file, data_file=path)
+        combiner.combine(keep=False)
+        combiner.save()
     send({"kind": "coverage", "sha256": file_digest(path)})
 
 
