@@ -290,11 +290,13 @@ def test_flaky_on_machine_code_with_the_policy_allowing_it(repo: ScratchRepo) ->
 
 def test_partial_branch_blocks_and_the_full_one_passes(repo: ScratchRepo) -> None:
     start(repo)
-    module = "def discount(total):\n    if total > 100:\n        return total - 10\n    return round(total * 0.9, 2)\n"
-    code, report = gate(repo, change(module))
-    assert code == 1 and "coverage.branches" in rules(report), report["findings"]
-    both = TEST + "\n\ndef test_big():\n    assert discount(200) == 190\n"
-    repo.commit(machine("Test the big discount"), {"tests/test_discount.py": both})
+    module = "def discount(total):\n    rate = 0.9\n    if total > 100:\n        rate = 0.8\n"
+    module += "    return round(total * rate, 2)\n"
+    big = "from parcelkit.discount import discount\n\n\ndef test_big():\n    assert discount(200) == 160\n"
+    code, report = gate(repo, change(module, big))
+    assert code == 1 and rules(report) == {"coverage.branches"}, report["findings"]  # every line ran
+    both = big + "\n\ndef test_small():\n    assert discount(10) == 9\n"
+    repo.commit(machine("Test the small discount"), {"tests/test_discount.py": both})
     out = run_check(repo, "HEAD~2..HEAD")
     assert out.code == 0, out.report["findings"] if out.report else out.stderr
 

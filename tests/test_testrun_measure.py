@@ -103,12 +103,18 @@ def test_summary_reports_excluded_and_partial_machine_lines() -> None:
     assert summary.excluded == {"prices.py": (10,)}
     assert summary.partial_branches == {}  # the other way goes to an excluded line: nothing to take
     assert (summary.executable, summary.covered) == (2, 2)
-    plain = "def f(x):\n    if x:\n        return 1\n    return 2\n"
+    plain = "def f(x):\n    rate = 1\n    if x:\n        rate = 2\n    return rate\n"
     analysis = analyse_source(plain)
     assert analysis is not None
-    taken = Executed(frozenset({1, 2, 3}), frozenset({(-1, 2), (2, 3), (3, -1)}), {})
-    summary = summarise_coverage({"f.py": (2,)}, {"f.py": judge_file("f.py", analysis, taken)}, {"f.py": plain}, 90.0)
-    assert summary.partial_branches == {"f.py": {2: (4,)}}
+    taken = Executed(frozenset({1, 2, 3, 4, 5}), frozenset({(-1, 2), (2, 3), (3, 4), (4, 5), (5, -1)}), {})
+    judged = judge_file("f.py", analysis, taken)
+    summary = summarise_coverage({"f.py": (3, 4)}, {"f.py": judged}, {"f.py": plain}, 90.0)
+    assert summary.partial_branches == {"f.py": {3: (5,)}}  # every line ran, but never with a false x
+    untaken = Executed(frozenset({1, 2, 3, 5}), frozenset({(-1, 2), (2, 3), (3, 5), (5, -1)}), {})
+    summary = summarise_coverage(
+        {"f.py": (3, 4)}, {"f.py": judge_file("f.py", analysis, untaken)}, {"f.py": plain}, 90.0
+    )
+    assert (summary.partial_branches, summary.uncovered) == ({}, {"f.py": (4,)})  # shown as an uncovered line
 
 
 def test_a_file_the_run_never_saw_is_all_missing() -> None:

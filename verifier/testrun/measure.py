@@ -6,7 +6,9 @@ never taken from the sandbox. From the sandbox comes only what the tests execute
 per-test contexts in a plain, validated JSON (:func:`read_export`). A machine-written line counts when
 it belongs to a statement: blank lines, comments and docstrings do not, and a statement spread over
 several lines counts once, at its first line. Machine lines that coverage.py's exclusions hide are
-reported, and a branch line the tests executed without taking each of its branches is partial.
+reported, and a branch line the tests executed without taking each of its ways is partial (when the
+way not taken leads to an executed line or out of the function; one to an unexecuted line is already an
+uncovered line).
 """
 
 from __future__ import annotations
@@ -206,7 +208,7 @@ def summarise_coverage(
             hidden = sorted(set(lines) & file.excluded)
             if hidden:
                 excluded[path] = tuple(hidden)
-            branches = {line: file.missing_branches[line] for line in sorted(touched) if line in file.missing_branches}
+            branches = _partial(file, touched)
             if branches:
                 partial[path] = branches
         own = threshold if threshold_for is None else threshold_for(path)
@@ -218,6 +220,17 @@ def summarise_coverage(
         if touched - hit:
             uncovered[path] = tuple(sorted(touched - hit))
     return CoverageSummary(executable, covered, uncovered, threshold, tuple(separate), excluded, partial)
+
+
+def _partial(file: FileCoverage, lines: set[int]) -> dict[int, tuple[int, ...]]:
+    """The ways not taken from ``lines`` that no other finding shows: to an exit, or to a line the tests
+    did execute (a way to a never-executed line is already an uncovered line)."""
+    found = {}
+    for line in sorted(lines & set(file.missing_branches)):
+        hidden = tuple(t for t in file.missing_branches[line] if t < 0 or t in file.executed)
+        if hidden:
+            found[line] = hidden
+    return found
 
 
 def _statements(measured: FileCoverage | None, source: str) -> tuple[set[int], set[int]]:
