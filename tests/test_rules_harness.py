@@ -118,9 +118,11 @@ def test_every_pytest_config_name_is_known() -> None:
 
     tree = ast.parse(inspect.getsource(findpaths.locate_config))
     names = next(
-        [element.value for element in node.value.elts]
+        [ast.literal_eval(element) for element in node.value.elts]
         for node in ast.walk(tree)
-        if isinstance(node, ast.Assign) and getattr(node.targets[0], "id", "") == "config_names"
+        if isinstance(node, ast.Assign)
+        and getattr(node.targets[0], "id", "") == "config_names"
+        and isinstance(node.value, ast.List)
     )
     assert tuple(names) == PYTEST_CONFIGS
     whole_files = {glob.removeprefix("**/") for glob in HARNESS_FILES}
