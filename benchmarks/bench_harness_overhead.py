@@ -62,6 +62,17 @@ def main() -> None:
                 runs=3,
             )
             print(result.describe())
+        if len(checkouts) == 2:
+            (name_a, a), (name_b, b) = checkouts.items()
+            (argv_a, env_a), (argv_b, env_b) = gate_command(repo.path, a), gate_command(repo.path, b)
+            both = compare(
+                f"verifier check, {name_a}",
+                run_command(argv_a, env=env_a),
+                f"verifier check, {name_b}",
+                run_command(argv_b, env=env_b),
+                runs=3,
+            )
+            print(both.describe())
 
 
 if __name__ == "__main__":

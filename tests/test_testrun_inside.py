@@ -227,3 +227,15 @@ def test_a_judged_file_coverage_cannot_see_is_not_verified(tmp_path: Path) -> No
     run = run_tree(tmp_path, files, judged=("calc/odd,name.py",))
     assert run.status == "harness-error"
     assert run.problems == ("calc/odd,name.py: the coverage data has no record of this judged file",)
+
+
+def test_a_detached_process_holding_the_channel_makes_the_run_unverifiable(tmp_path: Path) -> None:
+    """A forked child keeps the session's descriptors (fork copies them, close-on-exec or not); one that
+    leaves the session's process group survives its kill and could write records later."""
+    daemon = (
+        "import os, time\n\n\ndef test_leaves_a_daemon():\n"
+        "    if os.fork() == 0:\n        os.setsid()\n        time.sleep(30)\n        os._exit(0)\n"
+    )
+    run = run_tree(tmp_path, {"tests/test_daemon.py": daemon})
+    assert run.status == "harness-error"
+    assert "a process left behind by the tests held the results channel open" in run.problems

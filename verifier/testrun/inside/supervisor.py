@@ -114,7 +114,8 @@ def run_child(settings: dict[str, Any], child: dict[str, Any]) -> dict[str, Any]
         os.killpg(process.pid, signal.SIGKILL)  # what the tests left behind in the child's session
     reader.join(DRAIN_SECONDS)
     held_open = reader.is_alive()
-    os.close(records_read)
+    if not held_open:  # else the reader still blocks on it: closing would let a later pipe reuse the number
+        os.close(records_read)
     records, bad_lines = reader.records()
     return {
         "returncode": returncode,
