@@ -211,9 +211,10 @@ def read_run(run: HarnessRun) -> RunResult:
     }
     if result.timed_out or result.limit_hit == "wall":
         return RunResult(status="timeout", pytest_exit=None, tests=(), coverage={}, **common)
-    body, problem = integrity.open_seal(result.files.get(f"{run.folder}/{SEALED}"), run.key)
+    sealed = result.files.get(f"{run.folder}/{SEALED}")
+    body, problem = integrity.open_seal(sealed, run.key)
     if body is None:
-        status: RunStatus = "crashed" if problem and "left no sealed" in problem else "harness-error"
+        status: RunStatus = "crashed" if not sealed else "harness-error"  # no file: the supervisor never finished
         return RunResult(status=status, pytest_exit=None, tests=(), coverage={}, problems=(str(problem),), **common)
     reading = integrity.read_session(body.get("run"))
     tests = _with_reruns(reading.tests, integrity.read_reruns(body.get("reruns")))
