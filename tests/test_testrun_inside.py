@@ -18,7 +18,7 @@ import pytest
 from conftest import test_sandbox
 
 from verifier import sandbox
-from verifier.models import Policy, RunResult, Selection
+from verifier.models import Policy, RunResult, SandboxResult, Selection
 from verifier.testrun import harness
 from verifier.testrun.inside import recorder, session, supervisor
 from verifier.testrun.integrity import open_seal
@@ -122,7 +122,7 @@ def run_tree(
     policy = Policy(source="test", selection=type(policy.selection)(reruns=reruns, workers=workers))
     prepared = harness.prepare(tree, policy, Selection(whole_suite=True), judged)
     result = sandbox.choose(test_sandbox(), True).run(prepared.request)
-    run = harness.HarnessRun(result, prepared.key, prepared.folder, prepared.analyses, judged)
+    run = harness.HarnessRun(result, prepared.key, prepared.folder, prepared.analyses, judged, prepared.known)
     return harness.read_run(run)
 
 
@@ -239,3 +239,47 @@ def test_a_detached_process_holding_the_channel_makes_the_run_unverifiable(tmp_p
     run = run_tree(tmp_path, {"tests/test_daemon.py": daemon})
     assert run.status == "harness-error"
     assert "a process left behind by the tests held the results channel open" in run.problems
+
+
+def sealed_run(tmp_path: Path, body: dict, judged: tuple[str, ...] = ("pk/m.py",)) -> RunResult:
+    """Read a sealed body made here (sealed with the supervisor's own function) as the gate reads a run."""
+    tree = tmp_path / "tree"
+    (tree / "pk").mkdir(parents=True)
+    (tree / "pk" / "m.py").write_text("def f():\n    return 1\n")
+    prepared = harness.prepare(tree, Policy(source="t"), Selection(whole_suite=True), judged)
+    files = {f"{prepared.folder}/{harness.SEALED}": supervisor.seal(prepared.key, json.dumps(body).encode())}
+    result = SandboxResult("test", "none", 0, None, False, "", False, files, 1.0)
+    return harness.read_run(
+        harness.HarnessRun(result, prepared.key, prepared.folder, prepared.analyses, judged, prepared.known)
+    )
+
+
+def a_session(node: str = "tests/test_m.py::test_f") -> dict:
+    phases = [{"kind": "phase", "nodeid": node, "when": w, "outcome": "passed"} for w in ("setup", "call", "teardown")]
+    records = [
+        {"kind": "collected", "count": 1},
+        *phases,
+        {"kind": "finish", "exitstatus": 0},
+        {"kind": "end", "exit": 0},
+    ]
+    return {"returncode": 0, "records": records}
+
+
+def test_coverage_of_files_the_tree_does_not_have_is_dropped(tmp_path: Path) -> None:
+    entry = {"lines": [1, 2], "arcs": [[-1, 2], [2, -1]], "contexts": {}}
+    coverage_export = {"contexts": [], "files": {"pk/m.py": entry, "pk/written_at_run_time.py": entry}}
+    run = sealed_run(tmp_path, {"format": 1, "run": a_session(), "coverage": coverage_export, "reruns": []})
+    assert (run.status, run.problems) == ("completed", ())
+    assert set(run.coverage) == {"pk/m.py"} and sorted(run.coverage["pk/m.py"].executed) == [1, 2]
+
+
+def test_a_judged_file_missing_from_the_export_is_a_problem(tmp_path: Path) -> None:
+    run = sealed_run(tmp_path, {"format": 1, "run": a_session(), "coverage": {"contexts": [], "files": {}}})
+    assert run.status == "harness-error"
+    assert run.problems == ("pk/m.py: the coverage data has no record of this judged file",)
+
+
+def test_no_coverage_export_is_a_problem(tmp_path: Path) -> None:
+    body = {"format": 1, "run": a_session(), "coverage": None, "coverage_problem": "coverage data file changed"}
+    run = sealed_run(tmp_path, body)
+    assert (run.status, run.problems) == ("harness-error", ("no coverage data: coverage data file changed",))

@@ -89,6 +89,7 @@ class Prepared:
     key: bytes
     folder: str  # the harness folder's name in the workspace
     analyses: Mapping[str, SourceAnalysis | None] = field(default_factory=dict)  # judged file -> host analysis
+    known: frozenset[str] = frozenset()  # the tree's Python files: the only paths coverage data may name
 
 
 @dataclass(frozen=True)
@@ -100,6 +101,7 @@ class HarnessRun:
     folder: str
     analyses: Mapping[str, SourceAnalysis | None] = field(default_factory=dict)
     judged: tuple[str, ...] = ()
+    known: frozenset[str] | None = None  # None: any path inside the workspace
 
 
 def prepare(tree: Path, policy: Policy, selection: Selection, report_files: tuple[str, ...] = ()) -> Prepared:
@@ -108,6 +110,7 @@ def prepare(tree: Path, policy: Policy, selection: Selection, report_files: tupl
     from verifier.testrun.measure import analyse_source
 
     analyses = {path: _analyse(tree, path, analyse_source) for path in report_files}
+    known = python_files(tree)
     token = secrets.token_hex(8)
     folder = f"{FOLDER_PREFIX}{token}"
     plugin = f"verifier_recorder_{token}"
@@ -140,7 +143,16 @@ def prepare(tree: Path, policy: Policy, selection: Selection, report_files: tupl
         limits=policy.limits,
         collect=(f"{folder}/{SEALED}",),
     )
-    return Prepared(request, key, folder, analyses)
+    return Prepared(request, key, folder, analyses, known)
+
+
+def python_files(tree: Path) -> frozenset[str]:
+    """The committed tree's Python files (workspace-relative, links not followed)."""
+    found = set()
+    for folder, _dirs, files in os.walk(tree):
+        relative = os.path.relpath(folder, tree).replace(os.sep, "/")
+        found |= {name if relative == "." else f"{relative}/{name}" for name in files if name.endswith(".py")}
+    return frozenset(found)
 
 
 def _analyse(tree: Path, path: str, analyse: Any) -> SourceAnalysis | None:
@@ -191,7 +203,7 @@ def run_revision(
             git.export_commit(revision, tree)
         prepared = prepare(tree, policy, selection, report_files)
         result = backend.run(prepared.request)
-        return HarnessRun(result, prepared.key, prepared.folder, prepared.analyses, tuple(report_files))
+        return HarnessRun(result, prepared.key, prepared.folder, prepared.analyses, tuple(report_files), prepared.known)
     finally:
         shutil.rmtree(workdir, ignore_errors=True)
 
@@ -274,6 +286,8 @@ def _coverage(body: Mapping[str, Any], run: HarnessRun) -> tuple[dict[str, FileC
         return {}, [f"no coverage data: {str(body.get('coverage_problem') or 'not measured')[:300]}"]
     try:
         executed = read_export(body["coverage"])
+        if run.known is not None:  # a file the tests wrote at run time is no committed source: not trusted
+            executed = {path: data for path, data in executed.items() if path in run.known}
         files = {
             path: FileCoverage(path=path, executed=data.lines, missing=frozenset(), contexts=dict(data.contexts))
             for path, data in executed.items()
