@@ -96,3 +96,83 @@ def test_exclusion_patterns_from_each_config_format() -> None:
         "tox.ini": "[coverage:report]\nexclude_also = assert_never\n",
     }
     assert exclusion_patterns(configs) == ["if TYPE_CHECKING:", "@overload", "def __repr__", "assert_never"]
+
+
+@pytest.mark.parametrize(
+    "path", ["pytest.toml", ".pytest.toml", "sub/.pytest.toml", ".gitattributes", "src/.gitattributes"]
+)
+def test_newer_pytest_config_files_and_git_attributes(repo: ScratchRepo, path: str) -> None:
+    context = machine_change(repo, {"README.md": "x\n"}, {path: "[pytest]\naddopts = '--deselect tests/test_a.py'\n"})
+    assert [(f.path, f.line) for f in findings("config.harness", context)] == [(path, 1)]
+
+
+def test_every_pytest_config_name_is_known() -> None:
+    """Checked against the installed pytest itself: the file names its locate_config() looks for, read
+    from its own source (_pytest/config/findpaths.py), are all harness files or config sections we read."""
+    import ast
+    import inspect
+
+    from _pytest.config import findpaths
+
+    from verifier.rules.harness import COVERAGE_CONFIGS, HARNESS_FILES, PYTEST_CONFIGS
+
+    tree = ast.parse(inspect.getsource(findpaths.locate_config))
+    names = next(
+        [ast.literal_eval(element) for element in node.value.elts]
+        for node in ast.walk(tree)
+        if isinstance(node, ast.Assign)
+        and getattr(node.targets[0], "id", "") == "config_names"
+        and isinstance(node.value, ast.List)
+    )
+    assert tuple(names) == PYTEST_CONFIGS
+    whole_files = {glob.removeprefix("**/") for glob in HARNESS_FILES}
+    sections_read = {"pyproject.toml", "tox.ini", "setup.cfg"}
+    assert set(names) <= whole_files | sections_read
+    # coverage.py's config files (coverage.py docs, "Configuration reference"; config.py's config_files)
+    assert set(COVERAGE_CONFIGS) <= whole_files | sections_read
+    assert "conftest.py" in whole_files
+
+
+@pytest.mark.parametrize(
+    "header",
+    ["[ tool . pytest . ini_options ]", '[tool."pytest".ini_options]', "[ 'tool' .\"pytest\" . ini_options ]"],
+)
+def test_toml_headers_with_spaces_and_quotes(repo: ScratchRepo, header: str) -> None:
+    """TOML allows whitespace around the dots of a table name and quoted keys (TOML 1.0, "Table")."""
+    base = '[project]\nname = "parcelkit"\n'
+    head = base + f'\n{header}\naddopts = "--deselect tests/test_rates.py::test_base"\n'
+    found = findings("config.harness", machine_change(repo, {"pyproject.toml": base}, {"pyproject.toml": head}))
+    assert [f.path for f in found] == ["pyproject.toml"]
+
+
+def test_dotted_keys_outside_a_header(repo: ScratchRepo) -> None:
+    base = '[project]\nname = "parcelkit"\n\n[tool]\n'
+    head = base + 'pytest . ini_options . addopts = "-k not_rates"\n'
+    found = findings("config.harness", machine_change(repo, {"pyproject.toml": base}, {"pyproject.toml": head}))
+    assert [f.path for f in found] == ["pyproject.toml"]
+
+
+@pytest.mark.parametrize(
+    "path", ["json.py", "subprocess.py", "coverage/__init__.py", "pytest.py", "src/xdist.py", "tests/json.py"]
+)
+def test_top_level_module_shadowing_a_tool_or_the_standard_library(repo: ScratchRepo, path: str) -> None:
+    context = machine_change(repo, {"README.md": "x\n"}, {path: "VALUE = 1\n"})
+    module = path.split("/")[-2] if path.endswith("/__init__.py") else path.split("/")[-1].removesuffix(".py")
+    found = findings("config.harness", context)
+    assert [(f.path, f.details.get("module")) for f in found] == [(path, module)]
+
+
+@pytest.mark.parametrize("path", ["parcelkit/json.py", "parcelkit/types.py", "parcelkit/rates_json.py"])
+def test_module_inside_a_package_shadows_nothing(repo: ScratchRepo, path: str) -> None:
+    context = machine_change(repo, {"parcelkit/__init__.py": ""}, {path: "VALUE = 1\n"})
+    assert findings("config.harness", context) == []
+
+
+def test_the_standard_library_names_come_from_python() -> None:
+    """Outside check: the standard module names are the interpreter's own (sys.stdlib_module_names)."""
+    import sys
+
+    from verifier.rules.harness import shadows
+
+    assert all(shadows(name) for name in ("json", "subprocess", "os", "pytest", "coverage", "xdist"))
+    assert "json" in sys.stdlib_module_names and not shadows("parcelkit")

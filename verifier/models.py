@@ -178,6 +178,7 @@ class SelectionSettings:
     map_build: Literal["always", "if-cached", "never"] = "always"
     without_map: Literal["all", "imports"] = "all"  # what runs when there is no map
     workers: int = 0  # pytest-xdist workers; 0 = one per core, 1 = no xdist
+    allow_flaky: bool = False  # a test that executes machine-written lines may fail, then pass on a re-run
     whole_suite_paths: tuple[str, ...] = ()  # globs of files whose change runs everything
     ignore_paths: tuple[str, ...] = ()  # globs of files no test reads (documentation)
 
@@ -232,6 +233,8 @@ class FileCoverage:
     missing: frozenset[int]
     excluded: frozenset[int] = frozenset()
     contexts: Mapping[int, tuple[str, ...]] = field(default_factory=dict)
+    # branch line -> the destinations coverage.py's analysis expects and the tests never took (host-computed)
+    missing_branches: Mapping[int, tuple[int, ...]] = field(default_factory=dict)
 
 
 RunStatus = Literal["completed", "timeout", "crashed", "collection-error", "no-tests", "harness-error"]
@@ -252,6 +255,7 @@ class RunResult:
     wall_seconds: float = 0.0
     limit_hit: str | None = None
     baseline: Mapping[str, str] | None = None  # node id -> outcome at base (a differential run), else None
+    problems: tuple[str, ...] = ()  # why the run's results cannot be trusted (status harness-error)
 
     def count(self, outcome: str) -> int:
         return sum(1 for t in self.tests if t.outcome == outcome)
@@ -279,6 +283,9 @@ class CoverageSummary:
     threshold: float
     # files a per-path override gives their own threshold: judged one by one, not counted above
     separate: tuple[CoverageTarget, ...] = ()
+    excluded: Mapping[str, tuple[int, ...]] = field(default_factory=dict)  # machine lines coverage.py excludes
+    # machine-written branch lines the tests executed without taking every branch: line -> missed destinations
+    partial_branches: Mapping[str, Mapping[int, tuple[int, ...]]] = field(default_factory=dict)
 
     @property
     def percent(self) -> float | None:

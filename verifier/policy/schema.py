@@ -95,6 +95,7 @@ SCHEMA: dict[str, Any] = {
         "mode": checks.one_of("smart", "all"),
         "differential": checks.boolean,
         "reruns": checks.number(0, 10),
+        "allow_flaky": checks.boolean,
         "map_build": checks.one_of("always", "if-cached", "never"),
         "without_map": checks.one_of("all", "imports"),
         "workers": checks.workers,

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from collections.abc import Iterator
 
 from verifier.models import CoverageSummary, Finding
@@ -54,4 +55,66 @@ def _separate_targets(summary: CoverageSummary) -> Iterator[Finding]:
                 "machine-written line never executed by the tests",
                 path=target.path,
                 line=line,
+            )
+
+
+# Excluded machine lines that hide nothing: an ``if TYPE_CHECKING:`` header, imports, stub bodies, blanks.
+_HARMLESS_EXCLUDED = re.compile(r"^\s*(#.*|if (typing\.)?TYPE_CHECKING:.*|(from\s+\S+\s+)?import\s.*|\.\.\.|pass|)\s*$")
+
+
+@rule(
+    "coverage.excluded",
+    default="block",
+    summary="machine-written lines that coverage.py's exclusions hide from measurement",
+    stage="dynamic",
+    sources=("coverage.py documentation: excluding code (the default exclusions)",),
+)
+def excluded_lines(context: RuleContext) -> Iterator[Finding]:
+    """coverage.py does not measure excluded lines: those with its pragma, stub bodies, the body of an
+    ``if TYPE_CHECKING:`` block (also when a module sets ``TYPE_CHECKING = True`` itself). Machine-written
+    code there would count neither as covered nor as missing, so it is reported instead of dropped. Only
+    code is reported: imports, ``...``, ``pass``, comments and the ``if TYPE_CHECKING:`` line itself hide
+    nothing. Move the code out of the excluded block and test it."""
+    summary = context.coverage
+    if summary is None:
+        return
+    for path, lines in summary.excluded.items():
+        rows = context.head_sources.get(path, "").split("\n")
+        for line in lines:
+            text = rows[line - 1] if 0 < line <= len(rows) else ""
+            if not _HARMLESS_EXCLUDED.match(text):
+                yield Finding(
+                    "coverage.excluded",
+                    "block",
+                    "machine-written line excluded from coverage measurement (coverage.py's exclusions)",
+                    path=path,
+                    line=line,
+                )
+
+
+@rule(
+    "coverage.branches",
+    default="block",
+    summary="machine-written branches the tests never take",
+    stage="dynamic",
+    sources=("coverage.py documentation: branch coverage (arcs, partial branches)",),
+)
+def partial_branches(context: RuleContext) -> Iterator[Finding]:
+    """The tests run under coverage.py's branch measurement. A machine-written line that decides where
+    the code goes next (an ``if``, a loop, a ``match``) must have each of its ways taken by some test: a
+    line executed with a way never taken is a partial branch, listed with the line numbers it never went
+    to (-1 or another negative number: leaving the function). Add the test that takes the other way."""
+    summary = context.coverage
+    if summary is None:
+        return
+    for path, branches in summary.partial_branches.items():
+        for line, missed in branches.items():
+            where = ", ".join("exit" if target < 0 else f"line {target}" for target in missed)
+            yield Finding(
+                "coverage.branches",
+                "block",
+                f"partial branch: the tests never go from here to {where}",
+                path=path,
+                line=line,
+                details={"missed": list(missed)},
             )

@@ -4,7 +4,9 @@ from __future__ import annotations
 
 import configparser
 import re
-from collections.abc import Iterator
+import sys
+from collections.abc import Callable, Iterator
+from typing import Any
 
 from verifier.models import FileChange, Finding
 from verifier.rules import RuleContext, rule
@@ -24,9 +26,12 @@ RULE_ID = "config.harness"
 # ini files, coverage.py's rc file, the site module's startup hooks and path files.
 HARNESS_FILES = [
     "**/conftest.py",
+    "**/pytest.toml",
+    "**/.pytest.toml",
     "**/pytest.ini",
     "**/.pytest.ini",
     "**/.coveragerc",
+    "**/.gitattributes",  # git attributes change what is archived and diffed (export-ignore, export-subst, -diff)
     "**/sitecustomize.py",
     "**/usercustomize.py",
     "**/*.pth",
@@ -34,6 +39,14 @@ HARNESS_FILES = [
 # coverage.py's default exclusion pattern (the same text as coverage.config.DEFAULT_EXCLUDE[0]).
 DEFAULT_PRAGMA = r"#\s*(pragma|PRAGMA)[:\s]?\s*(no|NO)\s*(cover|COVER)"
 COVERAGE_CONFIGS = (".coveragerc", "setup.cfg", "tox.ini", "pyproject.toml")
+# Every file name pytest reads its configuration from, in the order it looks for them (pytest 9's
+# _pytest/config/findpaths.py, locate_config), and conftest.py, which it imports as a plugin.
+PYTEST_CONFIGS = ("pytest.toml", ".pytest.toml", "pytest.ini", ".pytest.ini", "pyproject.toml", "tox.ini", "setup.cfg")
+PYTEST_PLUGIN_FILES = ("conftest.py",)
+# Installed modules the harness depends on; a top-level module of the tree named like one, or like a
+# standard module, would be imported in its place wherever the tree's folders came first.
+TOOL_MODULES = frozenset({"pytest", "_pytest", "py", "pluggy", "coverage", "xdist", "execnet", "verifier"})
+HARNESS_MODULE_PREFIXES = ("verifier_recorder_",)
 _TOML_HEADER = re.compile(r"^\[\[?\s*([A-Za-z0-9_.\"' -]+?)\s*\]\]?\s*(#.*)?$")
 _INI_HEADER = re.compile(r"^\s*\[([^\]]+)\]")
 
@@ -151,6 +164,7 @@ def harness_changes(context: RuleContext) -> Iterator[Finding]:
             )
             continue
         yield from _config_sections(context, file)
+        yield from _shadowing_module(context, file)
     yield from _exclusions(context)
 
 
@@ -175,6 +189,91 @@ def _config_sections(context: RuleContext, file: FileChange) -> Iterator[Finding
             line=added[0][0] if added else None,
             details={"added": [n for n, _ in added], "removed": [n for n, _ in removed]},
         )
+    elif machine_changed(context, file):
+        before, after = (_tool_settings(name, text) for text in (base_text(context, file), head_text(context, file)))
+        if before != after:
+            yield Finding(
+                RULE_ID,
+                "block",
+                "pytest or coverage configuration changed by a machine-written change (read with a "
+                + ("TOML" if name.endswith(".toml") else "INI")
+                + " parser)",
+                path=file.path,
+                line=min(machine_lines(context, file.path), default=None),
+            )
+
+
+def _tool_settings(file_name: str, text: str | None) -> Any:
+    """pytest's and coverage.py's settings in a config file, parsed; a file no parser reads is its text."""
+    if text is None:
+        return None
+    if file_name.endswith(".toml"):
+        document = load_toml(text)
+        if document is None:
+            return ("unparsable", text)
+        tool = document.get("tool", {}) if isinstance(document.get("tool"), dict) else document.get("tool")
+        if not isinstance(tool, dict):
+            return tool
+        return {key: value for key, value in tool.items() if key in ("pytest", "coverage")}
+    parser = configparser.RawConfigParser(strict=False)
+    try:
+        parser.read_string(text)
+    except configparser.Error:
+        return ("unparsable", text)
+    wanted = ("pytest", "tool:pytest")
+    return {
+        section: dict(parser.items(section))
+        for section in parser.sections()
+        if section in wanted or section.startswith("coverage:")
+    }
+
+
+def _shadowing_module(context: RuleContext, file: FileChange) -> Iterator[Finding]:
+    """A machine-added top-level module named like a standard module, a tool the harness uses, or the harness."""
+    if file.status not in ("added", "renamed", "copied") or not machine_changed(context, file):
+        return
+    name = top_level_module(file.path, tuple(context.policy.python_path), lambda p: _is_package(context, p))
+    if name is None or not shadows(name):
+        return
+    yield Finding(
+        RULE_ID,
+        "block",
+        f"machine-written top-level module '{name}' is named like a standard or harness module it could replace",
+        path=file.path,
+        line=min(machine_lines(context, file.path), default=None),
+        details={"module": name},
+    )
+
+
+def shadows(name: str) -> bool:
+    """Would a top-level module ``name`` in the tree stand for a module the harness or the tools import?"""
+    return name in sys.stdlib_module_names or name in TOOL_MODULES or name.startswith(HARNESS_MODULE_PREFIXES)
+
+
+def top_level_module(path: str, roots: tuple[str, ...], is_package: Callable[[str], bool]) -> str | None:
+    """The top-level module name ``path`` defines, when its folder is an import root (one of ``roots``, the
+    tree's root, or a folder that is not a package, which pytest puts on ``sys.path`` for its tests)."""
+    parts = path.split("/")
+    if parts[-1] == "__init__.py" and len(parts) >= 2:
+        name, folder = parts[-2], "/".join(parts[:-2])
+    elif parts[-1].endswith((".py", ".pyi")) or parts[-1].endswith((".so", ".pyd")):
+        name, folder = parts[-1].split(".", 1)[0], "/".join(parts[:-1])
+    else:
+        return None
+    clean_roots = {root.strip("./").rstrip("/") for root in roots} | {""}
+    if folder in clean_roots or not is_package(folder):
+        return name
+    return None
+
+
+def _is_package(context: RuleContext, folder: str) -> bool:
+    init = f"{folder}/__init__.py" if folder else "__init__.py"
+    if init in context.head_sources:
+        return True
+    changed = context.change.file(init)
+    if changed is not None:
+        return changed.status != "deleted"
+    return context.read_base is not None and context.read_base(init) is not None
 
 
 def _exclusions(context: RuleContext) -> Iterator[Finding]:

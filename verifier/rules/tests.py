@@ -13,7 +13,7 @@ _INCOMPLETE = {
     "crashed": "the test run ended without writing its results (crashed or killed)",
     "collection-error": "pytest could not collect the tests",
     "no-tests": "pytest collected no tests",
-    "harness-error": "the test harness failed before the tests ran",
+    "harness-error": "the test run's results cannot be trusted or the harness failed",
 }
 
 
@@ -69,4 +69,59 @@ def incomplete_run(context: RuleContext) -> Iterator[Finding]:
         detail += f" (limit reached: {run.limit_hit})"
     for error in run.collection_errors[:10]:
         yield Finding("run.incomplete", "error", f"collection error: {error}")
+    for problem in run.problems[:20]:
+        yield Finding("run.incomplete", "error", f"cannot verify: {problem}")
+    if len(run.problems) > 20:
+        yield Finding("run.incomplete", "error", f"cannot verify: {len(run.problems) - 20} more problem(s)")
     yield Finding("run.incomplete", "error", detail, details={"output_tail": run.output_tail[-4000:]})
+
+
+@rule(
+    "tests.flaky-machine",
+    default="block",
+    summary="a test that executes machine-written lines failed, then passed on a re-run",
+    stage="dynamic",
+)
+def flaky_on_machine_code(context: RuleContext) -> Iterator[Finding]:
+    """A failure of a test that executes machine-written lines is a failure, even when a re-run passes:
+    code can fail on purpose now and then (on a clock, a counter, a random draw) and pass when run again.
+    The re-run starts exactly like the first run, so the code cannot tell them apart. Only a policy that
+    sets ``selection.allow_flaky: true`` lets such a test pass on a re-run (it is then reported by
+    ``tests.flaky`` like any flaky test). Find out why the test failed."""
+    run = context.run
+    if run is None or context.policy.selection.allow_flaky:
+        return
+    flaky = {test.node_id: test for test in run.tests if test.outcome == "flaky"}
+    if not flaky:
+        return
+    for node_id, paths in _machine_lines_run_by(context, set(flaky)).items():
+        test = flaky[node_id]
+        yield Finding(
+            "tests.flaky-machine",
+            "block",
+            f"{node_id} executes machine-written lines ({', '.join(sorted(paths))}) and failed once "
+            f"before passing ({test.attempts} runs): {_gist(test.message)}",
+            path=node_id.split("::", 1)[0],
+            details={"attempts": test.attempts, "message": test.message},
+        )
+
+
+def _machine_lines_run_by(context: RuleContext, node_ids: set[str]) -> dict[str, set[str]]:
+    """node id -> the files whose machine-written lines it executed (coverage contexts of the run);
+    a flaky test whose own file is machine-written counts too."""
+    found: dict[str, set[str]] = {}
+    run = context.run
+    if run is None:
+        return found
+    for path, lines in context.provenance.machine_lines.items():
+        measured = run.coverage.get(path)
+        for node_id in node_ids:
+            if node_id.split("::", 1)[0] == path:
+                found.setdefault(node_id, set()).add(path)
+        if measured is None:
+            continue
+        for line in lines:
+            for label in measured.contexts.get(line, ()):
+                if label in node_ids:
+                    found.setdefault(label, set()).add(path)
+    return found

@@ -115,7 +115,7 @@ def environment_key(policy: Policy, backend: Backend) -> str:
         "distributions": distributions,
         "backend": [backend.name, backend.environment()],
         "tests": [list(policy.test_paths), list(policy.pytest_args), list(policy.python_path)],
-        "harness": hashlib.sha256((testrun.HARNESS + testrun.PLUGIN + testrun.COVERAGERC).encode()).hexdigest(),
+        "harness": testrun.harness_digest(),
     }
     return hashlib.sha256(json.dumps(facts, sort_keys=True).encode()).hexdigest()[:24]
 
