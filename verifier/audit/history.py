@@ -135,7 +135,7 @@ def _load_span(git: Git, key: str) -> tuple[tuple[LogCommit, ...], dict[str, Com
     """The span's commits, line facts and outside reverted commits from the cache; None when absent or damaged."""
     data = cache.load_marshal(cache.folder(git, "audit") / f"span-{key}.bin")
     try:
-        rows, facts, outside = data  # type: ignore[misc]
+        rows, facts, outside = data
         commits = tuple(LogCommit(s, tuple(p.split()), an, ae, cn, ce, t, m) for s, p, an, ae, cn, ce, t, m in rows)
         lines = {c.sha: CommitLines(*entry) for c, entry in zip(commits, facts, strict=True)}
         older = {row[0]: LogCommit(row[0], tuple(row[1].split()), *row[2:]) for row in outside}

@@ -230,7 +230,7 @@ class _Walker:
             else_ends = self.block(node.orelse, else_state)
             return isinstance(node, ast.If) and body_ends and else_ends and bool(node.orelse)
         if isinstance(node, ast.Try) or (hasattr(ast, "TryStar") and isinstance(node, ast.TryStar)):
-            return self.try_statement(node, state)  # type: ignore[arg-type]
+            return self.try_statement(node, state)
         if isinstance(node, (ast.With, ast.AsyncWith)):
             return self.with_statement(node, state)
         if isinstance(node, (ast.For, ast.AsyncFor)):

@@ -694,7 +694,7 @@ def _lines(node: ast.FunctionDef | ast.AsyncFunctionDef) -> range:
     return range(first, span(node).stop)
 
 
-def _new_items(before: list, now: list, shape: Callable[[ast.AST], str] = fingerprint) -> list:  # type: ignore[type-arg]
+def _new_items(before: list, now: list, shape: Callable[[ast.AST], str] = fingerprint) -> list:
     """The nodes of ``now`` with no structurally equal counterpart in ``before`` (as a multiset)."""
     remaining = Counter(shape(n) for n in before)
     fresh = []

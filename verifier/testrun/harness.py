@@ -160,7 +160,7 @@ def _analyse(tree: Path, path: str, analyse: Any) -> SourceAnalysis | None:
         source = (tree / path).read_bytes().decode("utf-8", "replace")
     except OSError:
         return None
-    return analyse(source)  # type: ignore[no-any-return]
+    return analyse(source)
 
 
 def workers_for(policy: Policy, selection: Selection) -> int:

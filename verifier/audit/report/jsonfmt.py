@@ -149,7 +149,7 @@ def indented(value: Any, margin: str = "\n") -> str:
     return json.dumps(value)  # floats (NaN and the infinities as json writes them), anything else as json would
 
 
-_string = json.encoder.encode_basestring_ascii  # type: ignore[attr-defined]
+_string = json.encoder.encode_basestring_ascii
 _LEAVES = {  # the exact types json.dumps writes without a choice to make
     str: _string,
     int: int.__repr__,
