@@ -10,12 +10,23 @@ and base results of :mod:`verifier.selection.impactmap` and :mod:`verifier.testr
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 from verifier.change.stage import RevisionSpec, read_change
 from verifier.gitio import Git
-from verifier.models import INDEX, Change, CoverageSummary, Finding, Policy, Provenance, Report, RunResult, Selection
+from verifier.models import (
+    INDEX,
+    Change,
+    CoverageSummary,
+    Finding,
+    MutationResult,
+    Policy,
+    Provenance,
+    Report,
+    RunResult,
+    Selection,
+)
 from verifier.policy.loader import load_policy, policy_for_path, waivers_used
 from verifier.provenance.attribution import attribute
 from verifier.verdict.decision import decide
@@ -70,9 +81,43 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
         )
     dynamic = RuleContext(change, provenance, policy, sources, base_sources, run, coverage)
     findings += apply_rules("dynamic", dynamic)
+    mutation = _mutation(git, change, provenance, policy, run, sources, options, say)
+    findings += apply_rules("mutation", replace(dynamic, mutation=mutation))
     notes = _sandbox_notes(run)
     return _report(
-        change, provenance, policy, run, findings, sources, coverage=coverage, notes=notes, selection=selection
+        change,
+        provenance,
+        policy,
+        run,
+        findings,
+        sources,
+        coverage=coverage,
+        notes=notes,
+        selection=selection,
+        mutation=mutation,
+    )
+
+
+def _mutation(
+    git: Git,
+    change: Change,
+    provenance: Provenance,
+    policy: Policy,
+    run: RunResult,
+    sources: dict[str, str],
+    options: Options,
+    say: Progress,
+) -> MutationResult | None:
+    """The mutation stage, after a completed run of tests (a partial run cannot tell which tests ran a line)."""
+    from verifier.policy.loader import enabled_anywhere
+    from verifier.rules.mutation import RULE_ID
+
+    if run.status != "completed" or not enabled_anywhere(policy, RULE_ID, "block") or options.premade is not None:
+        return None
+    from verifier.mutation.stage import run_mutation
+
+    return run_mutation(
+        git, change, provenance, policy, run, sources, lambda: _backend(git, change, policy, options), options.shard, say
     )
 
 
@@ -205,6 +250,7 @@ def _report(
     coverage: CoverageSummary | None = None,
     notes: tuple[str, ...] = (),
     selection: Selection | None = None,
+    mutation: MutationResult | None = None,
 ) -> Report:
     return Report(
         verdict=decide(findings),
@@ -218,4 +264,5 @@ def _report(
         notes=notes,
         waivers_used=waivers_used(policy, findings),
         selection=selection,
+        mutation=mutation,
     )

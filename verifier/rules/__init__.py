@@ -12,7 +12,16 @@ from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field, replace
 from typing import Any
 
-from verifier.models import Change, CoverageSummary, Finding, Policy, Provenance, RuleSetting, RunResult
+from verifier.models import (
+    Change,
+    CoverageSummary,
+    Finding,
+    MutationResult,
+    Policy,
+    Provenance,
+    RuleSetting,
+    RunResult,
+)
 
 _FAMILIES = (
     "verifier.rules.tests",
@@ -26,6 +35,7 @@ _FAMILIES = (
     "verifier.rules.deps",
     "verifier.rules.secrets",
     "verifier.rules.regressions",
+    "verifier.rules.mutation",
 )
 
 
@@ -42,6 +52,7 @@ class RuleContext:
     coverage: CoverageSummary | None = None
     # reads a file the change did not touch at the base revision (None when absent); None: not available
     read_base: Callable[[str], str | None] | None = None
+    mutation: MutationResult | None = None  # the mutation stage's outcomes (rules of stage "mutation")
 
 
 @dataclass(frozen=True)
@@ -52,7 +63,7 @@ class Rule:
     default: RuleSetting
     summary: str
     explanation: str
-    stage: str  # "static" (no execution) or "dynamic" (reads the test run)
+    stage: str  # "static" (no execution), "dynamic" (reads the test run) or "mutation" (reads the mutants)
     check: Callable[[RuleContext], Iterable[Finding]]
     fixed: bool = False  # a fixed rule cannot be switched off: it is how the gate fails closed
     options: Mapping[str, Any] = field(default_factory=dict)  # option name -> default value
