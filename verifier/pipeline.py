@@ -109,16 +109,15 @@ def _mutation(
     say: Progress,
 ) -> MutationResult | None:
     """The mutation stage, after a completed run of tests (a partial run cannot tell which tests ran a line)."""
+    from verifier.mutation.counts import RULE_ID
     from verifier.policy.loader import enabled_anywhere
-    from verifier.rules.mutation import RULE_ID
 
     if run.status != "completed" or not enabled_anywhere(policy, RULE_ID, "block") or options.premade is not None:
         return None
     from verifier.mutation.stage import run_mutation
 
-    return run_mutation(
-        git, change, provenance, policy, run, sources, lambda: _backend(git, change, policy, options), options.shard, say
-    )
+    backend = lambda: _backend(git, change, policy, options)  # noqa: E731  # made only when a mutant must run
+    return run_mutation(git, change, provenance, policy, run, sources, backend, options.shard, say)
 
 
 def _changed_sources(git: Git, change: Change) -> tuple[dict[str, str], dict[str, str]]:

@@ -221,10 +221,10 @@ class _KeepingUnparser(ast._Unparser):  # type: ignore[name-defined,misc]
         self._root = root
 
     def traverse(self, node: ast.AST | list[ast.AST]) -> None:
-        if not isinstance(node, list) and node is not self._root and isinstance(node, _ATOMS):
-            if node in self._mutator.parents and (text := self._mutator.segment(node)) is not None:
-                self.write(text)
-                return
+        reusable = not isinstance(node, list) and node is not self._root and isinstance(node, _ATOMS)
+        if reusable and node in self._mutator.parents and (text := self._mutator.segment(node)) is not None:
+            self.write(text)
+            return
         super().traverse(node)
 
 
@@ -287,8 +287,8 @@ def _proposals_for(node: ast.AST, mutator: FileMutator) -> Iterator[Proposal]:
     elif isinstance(node, ast.BinOp) and type(node.op) in _ARITHMETIC:
         yield Proposal("arithmetic", node, ast.BinOp(left=node.left, op=_ARITHMETIC[type(node.op)](), right=node.right))
     elif isinstance(node, ast.BoolOp):
-        other = ast.Or() if isinstance(node.op, ast.And) else ast.And()
-        yield Proposal("and-or", node, ast.BoolOp(op=other, values=node.values))
+        flipped: ast.boolop = ast.Or() if isinstance(node.op, ast.And) else ast.And()
+        yield Proposal("and-or", node, ast.BoolOp(op=flipped, values=node.values))
     elif isinstance(node, ast.UnaryOp) and isinstance(node.op, (ast.Not, ast.USub, ast.Invert)):
         yield Proposal("unary", node, node.operand)
     elif isinstance(node, ast.Constant):

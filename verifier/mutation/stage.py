@@ -36,8 +36,7 @@ from verifier.models import (
     RunResult,
     SandboxRequest,
 )
-
-from verifier.rules.mutation import RULE_ID
+from verifier.mutation.counts import RULE_ID
 
 if TYPE_CHECKING:
     from verifier.gitio import Git
@@ -126,7 +125,7 @@ def run_mutation(
     for number, mutant, tests in to_run:
         known = cache.get(mutant, tests) if cache else None
         if known is not None:
-            outcomes[number] = MutantOutcome(mutant, known[0], tests, known[1], cached=True)
+            outcomes[number] = MutantOutcome(mutant, known[0], tests, known[1], cached=True)  # type: ignore[arg-type]
         else:
             pending.append((number, mutant, tests))
     problem = None

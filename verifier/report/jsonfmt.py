@@ -5,6 +5,8 @@ FORMAT_VERSION history (one line per version):
      added since: waivers_used, coverage.separate (files a per-path override judges on their own);
      selection (which tests ran and why), tests.flaky/flaky_ids/outcomes/differential, shard (a --shard
      run's measurements, which verifier merge-reports joins).
+  2: adds "mutants" (every mutant of the machine-written lines: path, line, status, original, mutated, tests,
+     where original/mutated are the full text of the lines it changes) and "mutation" (the counts and score).
 """
 
 from __future__ import annotations
@@ -14,7 +16,7 @@ from typing import Any
 
 from verifier.models import Report, RunResult, to_plain
 
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 
 
 def as_dict(report: Report) -> dict[str, Any]:
@@ -84,8 +86,37 @@ def as_dict(report: Report) -> dict[str, Any]:
             }
             for w in report.waivers_used
         ],
+        "mutants": _mutants(report),
+        "mutation": _mutation(report),
         **({"shard": _shard(report)} if report.selection and report.selection.shard and run else {}),
     }
+
+
+def _mutants(report: Report) -> list[dict[str, Any]]:
+    if report.mutation is None:
+        return []
+    return [
+        {
+            "path": o.mutant.path,
+            "line": o.mutant.line,
+            "status": o.status,
+            "original": o.mutant.original,
+            "mutated": o.mutant.mutated,
+            "tests": list(o.tests),
+            "operator": o.mutant.operator,
+            "end_line": o.mutant.end_line,
+            "killed_by": o.killed_by,
+            "cached": o.cached,
+        }
+        for o in report.mutation.outcomes
+    ]
+
+
+def _mutation(report: Report) -> dict[str, Any] | None:
+    """The counts the rule judged: killed (timeouts and crashes included), survived, accepted by a waiver."""
+    from verifier.mutation.counts import mutation_counts
+
+    return mutation_counts(report)
 
 
 def _tests(report: Report) -> dict[str, Any]:

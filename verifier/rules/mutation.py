@@ -7,9 +7,9 @@ from dataclasses import replace
 from typing import Any
 
 from verifier.models import Finding, MutantOutcome, MutationResult
+from verifier.mutation.counts import RULE_ID
 from verifier.rules import REGISTRY, RuleContext, rule
 
-RULE_ID = "tests.mutant-survived"
 SHOWN_TESTS = 5  # tests named in one finding; the details keep them all
 
 
@@ -57,8 +57,10 @@ def surviving_mutants(context: RuleContext) -> Iterator[Finding]:
             details={"killed": killed, "survived": survived, "score": score, "threshold": threshold},
         )
     for finding in findings:
-        yield finding if below or finding.severity == "info" else replace(
-            finding, details={**finding.details, "max_severity": "warn"}
+        yield (
+            finding
+            if below or finding.severity == "info"
+            else replace(finding, details={**finding.details, "max_severity": "warn"})
         )
 
 
@@ -77,7 +79,9 @@ def _errors(result: MutationResult) -> Iterator[Finding]:
 
 def _line_finding(path: str, line: int, survivors: list[MutantOutcome]) -> Finding:
     tests = sorted({test for outcome in survivors for test in outcome.tests})
-    shown = ", ".join(tests[:SHOWN_TESTS]) + (f" and {len(tests) - SHOWN_TESTS} more" if len(tests) > SHOWN_TESTS else "")
+    shown = ", ".join(tests[:SHOWN_TESTS])
+    if len(tests) > SHOWN_TESTS:
+        shown += f" and {len(tests) - SHOWN_TESTS} more"
     first = survivors[0].mutant
     more = f" (and {len(survivors) - 1} more mutants)" if len(survivors) > 1 else ""
     return Finding(
@@ -102,7 +106,8 @@ def _line_waived(context: RuleContext, finding: Finding) -> Finding:
 
     for waiver in context.policy.waivers:
         if waiver.rule == RULE_ID and waiver.path == f"{finding.path}:{finding.line}":
-            details: dict[str, Any] = {**finding.details, "waived_by": waiver_record(waiver), "waived_severity": "block"}
+            record = waiver_record(waiver)
+            details: dict[str, Any] = {**finding.details, "waived_by": record, "waived_severity": "block"}
             return replace(finding, severity="info", details=details)
     return finding
 

@@ -14,6 +14,7 @@ process group when it overruns. Every outcome is one JSON line in the results fi
 
 from __future__ import annotations
 
+import contextlib
 import importlib.abc
 import importlib.machinery
 import json
@@ -72,7 +73,7 @@ class MutantServer:
         self.plan = plan
         self.plan_path = plan_path
         self.items: dict[str, Any] = {}
-        self.out = open(plan["results"], "a", encoding="utf-8", buffering=1)
+        self.out = open(plan["results"], "a", encoding="utf-8", buffering=1)  # noqa: SIM115  # closed in finish()
         self.reported: set[str] = set()
 
     def pytest_collection_modifyitems(self, session: Any, config: Any, items: list[Any]) -> None:
@@ -346,10 +347,8 @@ class Pool:
         if timed_out:
             self.done.append((mutant_id, "timeout", None, None))
             return
-        try:
+        with contextlib.suppress(OSError):
             os.killpg(child.pid, signal.SIGKILL)  # whatever the tests left running in its group
-        except OSError:
-            pass
         try:
             result = json.loads(child.data[:RESULT_CAP].decode("utf-8"))
         except ValueError:
@@ -372,10 +371,8 @@ def _reap(child: Child) -> str:
 
 def _kill_group(pid: int) -> None:
     for kill in (os.killpg, os.kill):  # the group, and the child itself if it had no time to make its group
-        try:
+        with contextlib.suppress(OSError):
             kill(pid, signal.SIGKILL)
-        except OSError:
-            pass
 
 
 def _quiet_fds() -> None:
