@@ -323,6 +323,7 @@ class MutantOutcome:
     killed_by: str | None = None  # the first test that failed, when known
     problem: str | None = None  # for ``error``: why the runner could not try it
     cached: bool = False
+    seconds: float = 0.0  # how long its try took in the sandbox (0 when cached or not run)
 
     @property
     def counts_as_killed(self) -> bool:

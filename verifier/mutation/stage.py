@@ -175,8 +175,15 @@ def _run_in_sandbox(
         if record is None:
             outcomes[number] = MutantOutcome(mutant, "error", tests, problem=problem or "no outcome reported")
         else:
-            status, killed_by, reason = record
-            outcomes[number] = MutantOutcome(mutant, status, tests, killed_by, problem=reason)  # type: ignore[arg-type]
+            status, killed_by, reason, seconds = record
+            outcomes[number] = MutantOutcome(
+                mutant,
+                status,  # type: ignore[arg-type]
+                tests,
+                killed_by,
+                problem=reason,
+                seconds=seconds,
+            )
     return outcomes, problem
 
 
@@ -225,12 +232,15 @@ def time_limit(mutant: Mutant, tests: tuple[str, ...], durations: Mapping[str, f
     return round(floor + TIME_FACTOR * sum(durations.get(test, 0.0) for test in tests), 3)
 
 
-def read_results(data: bytes | None, expected: set[str]) -> dict[str, tuple[str, str | None, str | None]]:
+Record = tuple[str, str | None, str | None, float]  # status, killed_by, problem, seconds
+
+
+def read_results(data: bytes | None, expected: set[str]) -> dict[str, Record]:
     """The runner's records, validated: known ids only, known statuses only, short strings; the first
     record of an id counts. A file over the cap, or a line that is not a JSON object, is ignored."""
     if not data or len(data) > RESULTS_CAP:
         return {}
-    records: dict[str, tuple[str, str | None, str | None]] = {}
+    records: dict[str, Record] = {}
     for line in data.decode("utf-8", "replace").splitlines():
         try:
             record = json.loads(line)
@@ -241,7 +251,9 @@ def read_results(data: bytes | None, expected: set[str]) -> dict[str, tuple[str,
         mutant_id, status = record.get("id"), record.get("status")
         if mutant_id not in expected or status not in STATUSES or mutant_id in records:
             continue
-        records[mutant_id] = (status, _short(record.get("killed_by")), _short(record.get("problem")))
+        seconds = record.get("seconds")
+        seconds = float(seconds) if isinstance(seconds, (int, float)) and 0 <= seconds < 1e6 else 0.0
+        records[mutant_id] = (status, _short(record.get("killed_by")), _short(record.get("problem")), seconds)
     return records
 
 

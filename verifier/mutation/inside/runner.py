@@ -107,11 +107,20 @@ class MutantServer:
             return spawn_fresh(self.plan_path, mutant)
         return fork_child(mutant, items, swap)
 
-    def report(self, mutant_id: str, status: str, killed_by: str | None = None, problem: str | None = None) -> None:
+    def report(
+        self,
+        mutant_id: str,
+        status: str,
+        killed_by: str | None = None,
+        problem: str | None = None,
+        how: str | None = None,
+        seconds: float = 0.0,
+    ) -> None:
         if mutant_id in self.reported:
             return
         self.reported.add(mutant_id)
-        record = {"id": mutant_id, "status": status, "killed_by": killed_by, "problem": problem}
+        record: dict[str, Any] = {"id": mutant_id, "status": status, "killed_by": killed_by, "problem": problem}
+        record |= {"how": how, "seconds": round(seconds, 4)}
         self.out.write(json.dumps(record) + "\n")
 
     def finish(self) -> None:
@@ -196,7 +205,8 @@ class Child:
         self.pid = pid
         self.reader = reader
         self.popen = popen
-        self.deadline = time.monotonic() + float(mutant["limit"])
+        self.started = time.monotonic()
+        self.deadline = self.started + float(mutant["limit"])
         self.data = b""
 
 
@@ -303,21 +313,24 @@ class MutatedLoader(importlib.machinery.SourceFileLoader):
         return compile(self.source, self.path, "exec", dont_inherit=True)
 
 
+Finished = tuple[str, str, Any, Any, Any, float]  # id, status, killed_by, problem, how (fork | fresh), seconds
+
+
 class Pool:
     """The children running at once; finished ones are reaped and judged."""
 
     def __init__(self, size: int) -> None:
         self.size = max(1, size)
         self.running: list[Child] = []
-        self.done: list[tuple[str, str, str | None, str | None]] = []
+        self.done: list[Finished] = []
 
     def add(self, mutant: dict[str, Any], started: Child | tuple[str, str]) -> None:
         if isinstance(started, Child):
             self.running.append(started)
         else:
-            self.done.append((mutant["id"], started[0], None, started[1]))
+            self.done.append((mutant["id"], started[0], None, started[1], None, 0.0))
 
-    def wait(self, until_free: bool) -> list[tuple[str, str, str | None, str | None]]:
+    def wait(self, until_free: bool) -> list[Finished]:
         while self.running and (len(self.running) >= self.size or not until_free):
             self._step()
         finished, self.done = self.done, []
@@ -343,9 +356,10 @@ class Pool:
         if timed_out:
             _kill_group(child.pid)
         status = _reap(child)
-        mutant_id = child.mutant["id"]
+        mutant_id, how = child.mutant["id"], "fork" if child.popen is None else "fresh"
+        seconds = time.monotonic() - child.started
         if timed_out:
-            self.done.append((mutant_id, "timeout", None, None))
+            self.done.append((mutant_id, "timeout", None, None, how, seconds))
             return
         with contextlib.suppress(OSError):
             os.killpg(child.pid, signal.SIGKILL)  # whatever the tests left running in its group
@@ -354,9 +368,11 @@ class Pool:
         except ValueError:
             result = None
         if not isinstance(result, dict) or "status" not in result:
-            self.done.append((mutant_id, "crashed", None, f"the interpreter ended ({status}) without a result"))
+            ended = f"the interpreter ended ({status}) without a result"
+            self.done.append((mutant_id, "crashed", None, ended, how, seconds))
             return
-        self.done.append((mutant_id, str(result["status"]), result.get("killed_by"), result.get("problem")))
+        found = (str(result["status"]), result.get("killed_by"), result.get("problem"))
+        self.done.append((mutant_id, *found, how, seconds))
 
 
 def _reap(child: Child) -> str:
