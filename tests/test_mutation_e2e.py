@@ -8,11 +8,13 @@ replacement still passes pytest's own run; a killed one fails it).
 
 from __future__ import annotations
 
+import json
+import os
 import subprocess
 import sys
 from pathlib import Path
 
-from conftest import machine, run_check, snapshot
+from conftest import ROOT, machine, run_check, snapshot
 
 from verifier.demo.scratch import ScratchRepo
 
@@ -184,3 +186,35 @@ def test_a_waiver_on_a_line_accepts_its_survivor_and_the_policy_caps_mutants_per
     assert report["mutation"]["accepted"] == 1
     assert [w["path"] for w in report["waivers_used"]] == ["shop/price.py:7"]
     assert out.code == 1  # the other survivors still block
+
+
+def test_shards_split_the_mutants_and_their_merged_reports_give_the_outcome_of_one_run(
+    repo: ScratchRepo, tmp_path: Path
+) -> None:
+    start(repo, {"verifier.yaml": "version: 1\nselection:\n  reruns: 0\n"})
+    repo.commit(
+        machine("Add member discounts"),
+        {"shop/price.py": PRICE, "tests/test_price.py": STRONG, "tests/test_price_weak.py": WEAK},
+    )
+    whole = run_check(repo, "HEAD")
+    files = []
+    for k in (1, 2):
+        shard = run_check(repo, "HEAD", "--shard", f"{k}/2")
+        files.append(tmp_path / f"shard-{k}.json")
+        files[-1].write_text(json.dumps(shard.report))
+    merged_file = tmp_path / "merged.json"
+    merge = [sys.executable, "-m", "verifier", "-C", str(repo.path), "merge-reports", *map(str, files)]
+    done = subprocess.run(
+        [*merge, "--format", "json", "--output", str(merged_file)],
+        capture_output=True,
+        text=True,
+        env={**os.environ, "PYTHONPATH": str(ROOT)},
+    )
+    merged = json.loads(merged_file.read_text())
+
+    def outcomes(report: dict) -> list[tuple]:
+        return [(m["line"], m["mutated"], m["status"] == "survived", tuple(m["tests"])) for m in report["mutants"]]
+
+    assert outcomes(merged) == outcomes(whole.report)
+    assert (done.returncode, merged["verdict"]) == (whole.code, whole.report["verdict"])
+    assert merged["mutation"]["score"] == whole.report["mutation"]["score"]

@@ -45,6 +45,7 @@ class Options:
     all_tests: bool = False  # run every test, whatever the selection stage would choose
     shard: tuple[int, int] | None = None  # (K, N): run only shard K of N of the selected tests
     premade: tuple[Selection, RunResult] | None = None  # a run made elsewhere (joined shards): judge it as it is
+    premade_mutation: MutationResult | None = None  # with ``premade``: the shards' joined mutants
 
 
 def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None) -> Report:
@@ -112,7 +113,9 @@ def _mutation(
     from verifier.mutation.counts import RULE_ID
     from verifier.policy.loader import enabled_anywhere
 
-    if run.status != "completed" or not enabled_anywhere(policy, RULE_ID, "block") or options.premade is not None:
+    if options.premade is not None:
+        return options.premade_mutation if run.status == "completed" else None
+    if run.status != "completed" or not enabled_anywhere(policy, RULE_ID, "block"):
         return None
     from verifier.mutation.stage import run_mutation
 

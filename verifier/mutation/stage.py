@@ -108,10 +108,8 @@ def run_mutation(
     """Plan, take what the cache knows, run the rest in the sandbox, and return every mutant's outcome."""
     say = say or (lambda _message: None)
     started = time.monotonic()
+    # A shard plans every mutant and runs each against its own share of the tests (verifier.mutation.join).
     planned = plan_mutants(provenance, policy, sources, run)
-    if shard is not None:
-        index, total = shard
-        planned = planned[index - 1 :: total]
     outcomes: dict[int, MutantOutcome] = {}
     to_run: list[tuple[int, Mutant, tuple[str, ...]]] = []
     for number, (mutant, tests) in enumerate(planned):

@@ -106,6 +106,7 @@ def _mutants(report: Report) -> list[dict[str, Any]]:
             "operator": o.mutant.operator,
             "end_line": o.mutant.end_line,
             "killed_by": o.killed_by,
+            "problem": o.problem,
             "cached": o.cached,
         }
         for o in report.mutation.outcomes
