@@ -82,7 +82,7 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
         )
     dynamic = RuleContext(change, provenance, policy, sources, base_sources, run, coverage)
     findings += apply_rules("dynamic", dynamic)
-    mutation = _mutation(git, change, provenance, policy, run, sources, options, say)
+    mutation = _mutation(git, change, provenance, policy, run, sources, options, say, _secret_lines(findings))
     findings += apply_rules("mutation", replace(dynamic, mutation=mutation))
     notes = _sandbox_notes(run)
     return _report(
@@ -108,6 +108,7 @@ def _mutation(
     sources: dict[str, str],
     options: Options,
     say: Progress,
+    hidden: frozenset[tuple[str, int]] = frozenset(),
 ) -> MutationResult | None:
     """The mutation stage, after a completed run of tests (a partial run cannot tell which tests ran a line)."""
     from verifier.mutation.counts import RULE_ID
@@ -120,7 +121,7 @@ def _mutation(
     from verifier.mutation.stage import run_mutation
 
     backend = lambda: _backend(git, change, policy, options)  # noqa: E731  # made only when a mutant must run
-    return run_mutation(git, change, provenance, policy, run, sources, backend, options.shard, say)
+    return run_mutation(git, change, provenance, policy, run, sources, backend, options.shard, say, hidden)
 
 
 def _changed_sources(git: Git, change: Change) -> tuple[dict[str, str], dict[str, str]]:
@@ -219,6 +220,11 @@ def _pick_image(backend, git: Git, change: Change) -> None:  # type: ignore[no-u
 
     if not os.environ.get(IMAGE_ENV):
         backend.image = image_for(str(git.repo), change.base) or backend.image
+
+
+def _secret_lines(findings: list[Finding]) -> frozenset[tuple[str, int]]:
+    """Lines holding a credential-like literal: never quoted, so never mutated (a mutant quotes its line)."""
+    return frozenset((f.path, f.line) for f in findings if f.rule == "secrets.literal" and f.path and f.line)
 
 
 def _shown_sources(sources: dict[str, str], provenance: Provenance, findings: list[Finding]) -> dict:

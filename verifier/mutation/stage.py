@@ -58,9 +58,14 @@ Progress = Callable[[str], None]
 
 
 def plan_mutants(
-    provenance: Provenance, policy: Policy, sources: Mapping[str, str], run: RunResult
+    provenance: Provenance,
+    policy: Policy,
+    sources: Mapping[str, str],
+    run: RunResult,
+    hidden: frozenset[tuple[str, int]] = frozenset(),
 ) -> list[tuple[Mutant, tuple[str, ...]]]:
-    """Every mutant of the executable machine-written lines of non-test code, with the tests to run it."""
+    """Every mutant of the executable machine-written lines of non-test code, with the tests to run it;
+    none touching a ``hidden`` line (one that holds a credential-like literal: a report never quotes it)."""
     from verifier.mutation.plan import mutants_for_file
     from verifier.pathglob import matches_any
     from verifier.rules import load_all
@@ -71,8 +76,10 @@ def plan_mutants(
         if not path.endswith(".py") or path not in sources or matches_any(path, policy.coverage_exclude):
             continue
         per_line = int(rule.option(policy, "per_line", path))
-        for mutant in mutants_for_file(path, sources[path], provenance.machine_lines[path], per_line):
-            planned.append((mutant, tests_for(run, mutant)))
+        lines = [line for line in provenance.machine_lines[path] if (path, line) not in hidden]
+        for mutant in mutants_for_file(path, sources[path], lines, per_line):
+            if not any((path, line) in hidden for line in range(mutant.line, mutant.end_line + 1)):
+                planned.append((mutant, tests_for(run, mutant)))
     return planned
 
 
@@ -104,12 +111,13 @@ def run_mutation(
     backend_factory: Callable[[], Backend],
     shard: tuple[int, int] | None = None,
     say: Progress | None = None,
+    hidden: frozenset[tuple[str, int]] = frozenset(),
 ) -> MutationResult:
     """Plan, take what the cache knows, run the rest in the sandbox, and return every mutant's outcome."""
     say = say or (lambda _message: None)
     started = time.monotonic()
     # A shard plans every mutant and runs each against its own share of the tests (verifier.mutation.join).
-    planned = plan_mutants(provenance, policy, sources, run)
+    planned = plan_mutants(provenance, policy, sources, run, hidden)
     outcomes: dict[int, MutantOutcome] = {}
     to_run: list[tuple[int, Mutant, tuple[str, ...]]] = []
     for number, (mutant, tests) in enumerate(planned):
