@@ -79,26 +79,35 @@ def plan_mutants(
         lines = [line for line in provenance.machine_lines[path] if (path, line) not in hidden]
         for mutant in mutants_for_file(path, sources[path], lines, per_line):
             if not any((path, line) in hidden for line in range(mutant.line, mutant.end_line + 1)):
-                planned.append((mutant, tests_for(run, mutant)))
+                planned.append((mutant, covering_tests(run, mutant)))
     return planned
 
 
-def tests_for(run: RunResult, mutant: Mutant) -> tuple[str, ...]:
-    """The tests that executed the mutant's statement (passing ones only), fastest first."""
+def covering_tests(run: RunResult, mutant: Mutant) -> tuple[str, ...]:
+    """The tests that executed the mutant's statement (passing ones only), fastest first. When the run
+    executed the statement but no context names a test (it ran at import only, or the coverage data has
+    no per-test contexts), every passing test runs it: slower, never a missed kill."""
     measured = run.coverage.get(mutant.path)
     if measured is None:
         return ()
-    lines: Iterable[int] = mutant.lines or (mutant.line,)
+    statement = mutant.lines or (mutant.line,)
+    lines: Iterable[int] = statement
     if mutant.scope is None:  # runs at import: every test that ran code of the file can see it
         lines = measured.contexts.keys()
-    contexts = {context for line in lines for context in measured.contexts.get(line, ())}
+    contexts = {_test_of(context) for line in lines for context in measured.contexts.get(line, ())}
     passed = {test.node_id: test for test in run.tests if test.outcome == "passed"}
     fixtures = {context[len("fixture:") :] for context in contexts if context.startswith("fixture:")}
     chosen = {context for context in contexts if context in passed}
     chosen |= {node for node, test in passed.items() if fixtures.intersection(test.fixtures)}
-    if not chosen and mutant.scope is None and mutant.line in measured.executed:
-        chosen = set(passed)  # executed at import only, and no test context in the file: all of them
+    executed = any(line in measured.executed or measured.contexts.get(line) for line in statement)
+    if not chosen and executed:
+        chosen = set(passed)
     return tuple(sorted(chosen, key=lambda node: (passed[node].duration, node)))
+
+
+def _test_of(context: str) -> str:
+    """A context names its test by node id; a ``|phase`` suffix (``nodeid|run``) is the same test."""
+    return context.rsplit("|", 1)[0] if "|" in context and not context.startswith("fixture:") else context
 
 
 def run_mutation(
