@@ -74,10 +74,11 @@ def gate(repo: ScratchRepo):  # type: ignore[no-untyped-def]
 
 def per_mutant_cost(repo: ScratchRepo) -> None:
     """Each mutant's time in the sandbox against the run time of its tests measured by the normal run."""
+    from verifier.change.stage import RevisionSpec
     from verifier.pipeline import Options, verify
 
     shutil.rmtree(repo.path / ".git" / "verifier" / "cache" / "mutants", ignore_errors=True)
-    report = verify(repo.path, "HEAD", Options())
+    report = verify(repo.path, RevisionSpec(text="HEAD"), Options())
     assert report.run is not None and report.mutation is not None
     durations = {test.node_id: test.duration for test in report.run.tests}
     rows = {"fork": [], "fresh": []}  # type: dict[str, list[tuple[float, float]]]

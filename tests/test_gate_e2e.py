@@ -100,9 +100,10 @@ def test_a_later_human_edit_makes_the_line_human(repo: ScratchRepo) -> None:
     base = start(repo)
     repo.commit(machine("Add volume"), {"parcelkit/volume.py": demo.VOLUME, "tests/test_volume.py": demo.TEST_VOLUME})
     edited = demo.VOLUME.replace("DIVISOR = 5000", "DIVISOR = 6000  # new carrier rules")
+    human_tests = demo.TEST_VOLUME.replace("1.2", "1.0").replace("1.52", "1.27").replace("200.0", "166.67")
     repo.commit(
         "Human: new divisor",
-        {"parcelkit/volume.py": edited, "tests/test_volume.py": demo.TEST_VOLUME.replace("1.2", "1.0")},
+        {"parcelkit/volume.py": edited, "tests/test_volume.py": human_tests},
     )
     out = run_check(repo, f"{base}..HEAD")
     lines = out.report["machine_lines"]["parcelkit/volume.py"]
