@@ -104,6 +104,8 @@ def test_assertion_free_tests_block_with_findings_on_the_surviving_lines(repo: S
     assert report["mutation"]["score"] < 80 and report["mutation"]["survived"] == len(survivors)
     assert "surviving in shop/price.py:" in out.stdout
     assert snapshot(repo.path) == before  # the user's tree, index, refs and HEAD untouched
+    note = json.loads(repo.git("notes", "--ref=refs/notes/verifier", "show", "HEAD"))  # git's own reader
+    assert note["mutants"]["survived"] == len(survivors) and note["mutants"]["score"] == report["mutation"]["score"]
     # Outside the gate: pytest itself passes with a reported survivor applied to the file.
     assert pytest_on_mutant(repo, tmp_path, survivors[0], "survivor") == 0
 

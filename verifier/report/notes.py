@@ -9,7 +9,8 @@ audit counts a machine-written commit without a note as unverified.
 
 Format 1 fields: format, tool, version, checked_at, commit, range {base, head}, verdict, agent,
 machine_lines (lines of the final diff attributed to this commit), coverage {executable, covered, percent}
-and tests {run, failed} and findings and waivers (all for the whole checked change), sandbox.
+and tests {run, failed} and findings and waivers (all for the whole checked change), sandbox; added since:
+mutants {killed, survived, accepted, not_run, error, score} (the mutation stage's counts, or null).
 """
 
 from __future__ import annotations
@@ -88,7 +89,18 @@ def note_body(report: Report, commit: str, checked_at: str | None = None) -> dic
             for w in getattr(report, "waivers_used", ())
         ],
         "sandbox": run.backend if run else None,
+        "mutants": _mutant_counts(report),
     }
+
+
+def _mutant_counts(report: Report) -> dict[str, Any] | None:
+    """The mutation stage's counts for the whole change (None when the stage did not run)."""
+    from verifier.mutation.counts import mutation_counts
+
+    counts = mutation_counts(report)
+    if counts is None:
+        return None
+    return {key: counts[key] for key in ("killed", "survived", "accepted", "not_run", "error", "score")}
 
 
 def _lines_of(report: Report, commit: str) -> int:
