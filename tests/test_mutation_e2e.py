@@ -220,3 +220,33 @@ def test_shards_split_the_mutants_and_their_merged_reports_give_the_outcome_of_o
     assert outcomes(merged) == outcomes(whole.report)
     assert (done.returncode, merged["verdict"]) == (whole.code, whole.report["verdict"])
     assert merged["mutation"]["score"] == whole.report["mutation"]["score"]
+
+
+NEW_TESTS = """\
+from shop.price import discount
+
+
+def test_members_still_get_ten_percent():
+    assert discount(200, True) == 20  # the same at base: it cannot show the change
+
+
+def test_others_get_four_percent():
+    assert discount(200, False) == 8  # 10 at base
+"""
+
+
+def test_a_new_test_that_passes_at_base_too_is_reported(repo: ScratchRepo) -> None:
+    start(repo, {"shop/price.py": PRICE})
+    changed = PRICE.replace("return total // 20", "return total // 25")
+    files = {"shop/price.py": changed, "tests/test_new.py": NEW_TESTS}
+    repo.commit(machine("Lower the discount of non-members"), files)
+    out = run_check(repo, "HEAD")
+    report = out.report
+    at_base = {entry["test"]: entry["status"] for entry in report["tests_at_base"]}
+    assert at_base == {
+        "tests/test_new.py::test_members_still_get_ten_percent": "survived",
+        "tests/test_new.py::test_others_get_four_percent": "killed",
+    }
+    [finding] = [f for f in report["findings"] if f["rule"] == "tests.passes-at-base"]
+    assert finding["severity"] == "info" and "test_members_still_get_ten_percent" in finding["message"]
+    assert out.code == 0, out.stdout  # info by default; the line's mutants are all killed

@@ -339,6 +339,9 @@ class MutationResult:
     cached: int = 0  # outcomes read from the cache instead of run
     shard: tuple[int, int] | None = None  # (K, N): this run tried shard K of N of the mutants
     problem: str | None = None  # why the runner could not run (the gate could not verify), else None
+    # new or changed machine-written tests run with a changed file as it was at base: "survived" means the
+    # test passes there too, so it does not show the change (the mutant's texts are the file at head and base)
+    at_base: tuple[MutantOutcome, ...] = ()
 
     def count(self, *statuses: str) -> int:
         return sum(1 for outcome in self.outcomes if outcome.status in statuses)

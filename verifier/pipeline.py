@@ -82,7 +82,8 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
         )
     dynamic = RuleContext(change, provenance, policy, sources, base_sources, run, coverage)
     findings += apply_rules("dynamic", dynamic)
-    mutation = _mutation(git, change, provenance, policy, run, sources, options, say, _secret_lines(findings))
+    hidden = _secret_lines(findings)
+    mutation = _mutation(git, change, provenance, policy, run, sources, base_sources, options, say, hidden)
     findings += apply_rules("mutation", replace(dynamic, mutation=mutation))
     notes = _sandbox_notes(run)
     return _report(
@@ -106,6 +107,7 @@ def _mutation(
     policy: Policy,
     run: RunResult,
     sources: dict[str, str],
+    base_sources: dict[str, str],
     options: Options,
     say: Progress,
     hidden: frozenset[tuple[str, int]] = frozenset(),
@@ -121,7 +123,9 @@ def _mutation(
     from verifier.mutation.stage import run_mutation
 
     backend = lambda: _backend(git, change, policy, options)  # noqa: E731  # made only when a mutant must run
-    return run_mutation(git, change, provenance, policy, run, sources, backend, options.shard, say, hidden)
+    return run_mutation(
+        git, change, provenance, policy, run, sources, backend, options.shard, say, hidden, base_sources
+    )
 
 
 def _changed_sources(git: Git, change: Change) -> tuple[dict[str, str], dict[str, str]]:

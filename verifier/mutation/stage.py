@@ -21,7 +21,7 @@ import os
 import shutil
 import tempfile
 import time
-from collections.abc import Callable, Iterable, Mapping
+from collections.abc import Callable, Iterable, Iterator, Mapping
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -121,12 +121,16 @@ def run_mutation(
     shard: tuple[int, int] | None = None,
     say: Progress | None = None,
     hidden: frozenset[tuple[str, int]] = frozenset(),
+    base_sources: Mapping[str, str] | None = None,
 ) -> MutationResult:
-    """Plan, take what the cache knows, run the rest in the sandbox, and return every mutant's outcome."""
+    """Plan, take what the cache knows, run the rest in the sandbox, and return every mutant's outcome
+    (and, for the new or changed machine-written tests, their outcome with the base version of the code)."""
     say = say or (lambda _message: None)
     started = time.monotonic()
     # A shard plans every mutant and runs each against its own share of the tests (verifier.mutation.join).
     planned = plan_mutants(provenance, policy, sources, run, hidden)
+    reverts = plan_reverts(change, provenance, policy, sources, base_sources or {}, run)
+    planned += reverts
     outcomes: dict[int, MutantOutcome] = {}
     to_run: list[tuple[int, Mutant, tuple[str, ...]]] = []
     for number, (mutant, tests) in enumerate(planned):
@@ -153,7 +157,78 @@ def run_mutation(
             cache.save([outcome for outcome in found.values() if outcome.status in FINAL])
     ordered = tuple(outcomes[number] for number in sorted(outcomes))
     cached = sum(1 for outcome in ordered if outcome.cached)
-    return MutationResult(ordered, round(time.monotonic() - started, 3), cached, shard, problem)
+    mutants = tuple(o for o in ordered if o.mutant.operator != REVERT)
+    at_base = tuple(o for o in ordered if o.mutant.operator == REVERT)
+    return MutationResult(mutants, round(time.monotonic() - started, 3), cached, shard, problem, at_base)
+
+
+# -- new tests at base -------------------------------------------------------------------------------------------
+
+REVERT = "revert"  # the "mutant" that puts a changed file back as it was at base
+REVERTS_CAP = 20  # new or changed tests tried at base, at most, per change
+
+
+def plan_reverts(
+    change: Change,
+    provenance: Provenance,
+    policy: Policy,
+    sources: Mapping[str, str],
+    base_sources: Mapping[str, str],
+    run: RunResult,
+) -> list[tuple[Mutant, tuple[str, ...]]]:
+    """For a change that modifies existing code and adds or changes tests: each new or changed
+    machine-written test that executed any line of the modified file, to run with the file as it was at base (a test
+    that still passes there does not show the change). The base text travels as the mutant's text."""
+    from verifier.pathglob import matches_any
+
+    changed_tests = _changed_test_functions(provenance, policy, sources)
+    if not changed_tests:
+        return []
+    planned: list[tuple[Mutant, tuple[str, ...]]] = []
+    for file in change.files:
+        path, old = file.path, file.old_path
+        if file.status != "modified" or not path.endswith(".py") or matches_any(path, policy.coverage_exclude):
+            continue
+        head, base = sources.get(path), base_sources.get(old or path)
+        if head is None or base is None or head == base or path not in provenance.machine_lines:
+            continue
+        machine = provenance.machine_lines[path]
+        revert = Mutant(path, 1, len(head.split("\n")), REVERT, head, base, None, tuple(machine))
+        ran = set(covering_tests(run, revert))  # scope None: the tests that executed any line of the file
+        for test in sorted(test for test in ran if test.split("[", 1)[0] in changed_tests):
+            planned.append((revert, (test,)))
+    return planned[:REVERTS_CAP]
+
+
+def _changed_test_functions(provenance: Provenance, policy: Policy, sources: Mapping[str, str]) -> set[str]:
+    """Node ids (without parameters) of test functions with a machine-written line, in test files."""
+    import ast
+
+    from verifier.pathglob import matches_any
+
+    found: set[str] = set()
+    for path, lines in provenance.machine_lines.items():
+        if not path.endswith(".py") or not matches_any(path, policy.coverage_exclude) or path not in sources:
+            continue
+        try:
+            tree = ast.parse(sources[path])
+        except (SyntaxError, ValueError):
+            continue
+        machine = set(lines)
+        for node, prefix in _test_functions(tree.body, ""):
+            if machine.intersection(range(node.lineno, (node.end_lineno or node.lineno) + 1)):
+                found.add(f"{path}::{prefix}{node.name}")
+    return found
+
+
+def _test_functions(body: list, prefix: str) -> Iterator[tuple[Any, str]]:
+    import ast
+
+    for node in body:
+        if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef)) and node.name.startswith("test"):
+            yield node, prefix
+        elif isinstance(node, ast.ClassDef) and node.name.startswith("Test"):
+            yield from _test_functions(node.body, f"{prefix}{node.name}::")
 
 
 # -- the sandboxed run -------------------------------------------------------------------------------------------

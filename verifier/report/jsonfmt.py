@@ -6,7 +6,8 @@ FORMAT_VERSION history (one line per version):
      selection (which tests ran and why), tests.flaky/flaky_ids/outcomes/differential, shard (a --shard
      run's measurements, which verifier merge-reports joins).
   2: adds "mutants" (every mutant of the machine-written lines: path, line, status, original, mutated, tests,
-     where original/mutated are the full text of the lines it changes) and "mutation" (the counts and score).
+     where original/mutated are the full text of the lines it changes), "mutation" (the counts and score) and
+     "tests_at_base" (new or changed tests run with a changed file as it was at base: test, path, status).
 """
 
 from __future__ import annotations
@@ -88,6 +89,10 @@ def as_dict(report: Report) -> dict[str, Any]:
         ],
         "mutants": _mutants(report),
         "mutation": _mutation(report),
+        "tests_at_base": [
+            {"test": o.tests[0] if o.tests else None, "path": o.mutant.path, "status": o.status}
+            for o in (report.mutation.at_base if report.mutation else ())
+        ],
         **({"shard": _shard(report)} if report.selection and report.selection.shard and run else {}),
     }
 

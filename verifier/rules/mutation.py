@@ -117,3 +117,37 @@ def _is_waived(context: RuleContext, finding: Finding) -> bool:
     from verifier.policy.loader import waiver_for
 
     return finding.severity == "info" or waiver_for(context.policy, finding) is not None
+
+
+AT_BASE_ID = "tests.passes-at-base"
+
+
+@rule(
+    AT_BASE_ID,
+    default="warn",
+    summary="a new or changed machine-written test passes with the code as it was at base",
+    stage="mutation",
+    options={"inform_only": True},
+)
+def tests_passing_at_base(context: RuleContext) -> Iterator[Finding]:
+    """When a change modifies existing code and adds or changes tests, each new or changed machine-written
+    test that executed a modified file is run once more with that file as it was at the base revision (in
+    the sandbox, the file's base text imported in place of its head text). A test that passes there as well
+    does not show the change: it would have passed without it. Reported as info while ``inform_only`` is
+    true (the default); set it to false to give the findings the rule's setting (warn, or block). Make the
+    test check what the change changes: an input whose result differs at base."""
+    result = context.mutation
+    if result is None:
+        return
+    inform = bool(REGISTRY[AT_BASE_ID].option(context.policy, "inform_only"))
+    for outcome in result.at_base:
+        if outcome.status != "survived" or not outcome.tests:
+            continue
+        test = outcome.tests[0]
+        yield Finding(
+            AT_BASE_ID,
+            "info" if inform else "block",
+            f"{test} passes with {outcome.mutant.path} as it was at base: it does not show the change",
+            path=test.split("::", 1)[0],
+            details={"test": test, "file": outcome.mutant.path},
+        )
