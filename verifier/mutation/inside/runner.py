@@ -15,6 +15,7 @@ process group when it overruns. Every outcome is one JSON line in the results fi
 from __future__ import annotations
 
 import contextlib
+import gc
 import importlib.abc
 import importlib.machinery
 import json
@@ -81,6 +82,9 @@ class MutantServer:
 
     @pytest.hookimpl(tryfirst=True)
     def pytest_runtestloop(self, session: Any) -> bool:
+        # Objects that exist now move to a generation the collector never visits: a forked child's collections
+        # then do not write to (and so copy) the parent's pages (Python's gc.freeze documentation).
+        gc.freeze()
         pool = Pool(int(self.plan.get("workers") or os.cpu_count() or 1))
         deadline = time.monotonic() + float(self.plan.get("budget", 3600))
         for mutant in self.plan["mutants"]:
