@@ -5,6 +5,7 @@ from __future__ import annotations
 
 from dataclasses import replace
 
+from verifier import models
 from verifier.models import (
     Change,
     FileCoverage,
@@ -14,7 +15,6 @@ from verifier.models import (
     Policy,
     Provenance,
     RunResult,
-    TestOutcome,
     Waiver,
 )
 from verifier.mutation.join import joined_mutation
@@ -28,10 +28,10 @@ MODULE = Mutant("shop/price.py", 1, 1, "constant", "RATE = 3", "RATE = 0", None,
 
 def run_with(contexts: dict[int, tuple[str, ...]], executed: set[int] | None = None) -> RunResult:
     tests = (
-        TestOutcome("t.py::test_fast", "passed", duration=0.01),
-        TestOutcome("t.py::test_slow", "passed", duration=0.5),
-        TestOutcome("t.py::test_broken", "failed", duration=0.1),
-        TestOutcome("t.py::test_uses_db", "passed", duration=0.2, fixtures=("db",)),
+        models.TestOutcome("t.py::test_fast", "passed", duration=0.01),
+        models.TestOutcome("t.py::test_slow", "passed", duration=0.5),
+        models.TestOutcome("t.py::test_broken", "failed", duration=0.1),
+        models.TestOutcome("t.py::test_uses_db", "passed", duration=0.2, fixtures=("db",)),
     )
     coverage = FileCoverage("shop/price.py", frozenset(executed or contexts), frozenset(), contexts=contexts)
     return RunResult("completed", "process", "", 0, tests, {"shop/price.py": coverage})
