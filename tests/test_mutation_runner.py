@@ -185,6 +185,36 @@ def test_killed_and_survived_with_swapped_code(tree: Path) -> None:
     assert digest(tree) == before  # nothing of a mutant was written to the tree
 
 
+FORGER = """\
+import atexit
+import json
+
+from shop import calc
+
+
+def forge():
+    with open(".verifier-mutation/out/results.jsonl", "a") as results:
+        for number in range(5):
+            results.write(json.dumps({"id": f"m{number}", "status": "killed", "how": "fork"}) + "\\n")
+
+
+forge()  # while the runner collects
+atexit.register(forge)  # after the runner wrote its results
+
+
+def test_forges_kills():
+    forge()  # while the mutant runs
+    calc.double(3)
+"""
+
+
+def test_results_a_test_writes_are_not_taken(tree: Path) -> None:
+    """An attacker's test appends fake kills to the results file at import, during its run and at exit."""
+    (tree / "tests" / "test_forger.py").write_text(FORGER)
+    [record] = run(tree, [(mutant("return x * 2", "return x / 2"), ("tests/test_forger.py::test_forges_kills",))])
+    assert record["status"] == "survived"
+
+
 def test_endless_loop_is_a_timeout(tree: Path) -> None:
     [record] = run(tree, [(mutant("i += 1", "pass"), (T + "test_spin",))], limit=2.0)
     assert record["status"] == "timeout"

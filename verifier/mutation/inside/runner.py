@@ -9,7 +9,10 @@ interpreter instead (``runner.py --fresh PLAN ID FD``), which imports the mutate
 import hook. Nothing of a mutant is written anywhere: its text lives in memory only.
 
 A small pool of children runs at once; each has a time limit (the plan gives it) and is killed with its
-process group when it overruns. Every outcome is one JSON line in the results file.
+process group when it overruns. Every outcome is one JSON line in the results file, written once at the end
+in place of whatever the tests may have put at that path, after which the process ends without running
+exit handlers. The tests run in this process's children and decide their own outcome: a test written to
+detect a mutant and fail on purpose is not something a runner can see (the static rules on tests are).
 """
 
 from __future__ import annotations
@@ -34,6 +37,7 @@ RESULT_CAP = 4096  # bytes a child may report
 
 
 def main(argv: list[str]) -> int:
+    """``runner.py PLAN`` (ends the process itself) or ``runner.py --fresh PLAN ID FD``."""
     if len(argv) >= 4 and argv[0] == "--fresh":
         return fresh(_load(argv[1]), argv[2], int(argv[3]))
     plan = _load(argv[0])
@@ -48,7 +52,7 @@ def main(argv: list[str]) -> int:
         finally:
             sys.stdout = stdout
     server.finish()
-    return 0
+    os._exit(0)  # no exit handlers: code the tests registered must not run after the results are written
 
 
 def _load(path: str) -> dict[str, Any]:
@@ -74,7 +78,7 @@ class MutantServer:
         self.plan = plan
         self.plan_path = plan_path
         self.items: dict[str, Any] = {}
-        self.out = open(plan["results"], "a", encoding="utf-8", buffering=1)  # noqa: SIM115  # closed in finish()
+        self.records: list[str] = []
         self.reported: set[str] = set()
 
     def pytest_collection_modifyitems(self, session: Any, config: Any, items: list[Any]) -> None:
@@ -125,12 +129,18 @@ class MutantServer:
         self.reported.add(mutant_id)
         record: dict[str, Any] = {"id": mutant_id, "status": status, "killed_by": killed_by, "problem": problem}
         record |= {"how": how, "seconds": round(seconds, 4)}
-        self.out.write(json.dumps(record) + "\n")
+        self.records.append(json.dumps(record) + "\n")
 
     def finish(self) -> None:
+        """Write every record at once, replacing whatever is at the results path (the tests can write
+        files too: a line they wrote earlier is gone, and the host reads only the first record of an id)."""
         for mutant in self.plan["mutants"]:
             self.report(mutant["id"], "error", problem="the runner ended before trying it")
-        self.out.close()
+        target = self.plan["results"]
+        temporary = f"{target}.{os.getpid()}.tmp"
+        with open(temporary, "w", encoding="utf-8") as out:
+            out.writelines(self.records)
+        os.replace(temporary, target)
 
 
 # -- swapping a function's code ----------------------------------------------------------------------------------
