@@ -215,7 +215,7 @@ def test_shards_split_the_mutants_and_their_merged_reports_give_the_outcome_of_o
     merged = json.loads(merged_file.read_text())
 
     def outcomes(report: dict) -> list[tuple]:
-        return [(m["line"], m["mutated"], m["status"] == "survived", tuple(m["tests"])) for m in report["mutants"]]
+        return [(m["line"], m["mutated"], m["status"] == "survived", sorted(m["tests"])) for m in report["mutants"]]
 
     assert outcomes(merged) == outcomes(whole.report)
     assert (done.returncode, merged["verdict"]) == (whole.code, whole.report["verdict"])

@@ -53,6 +53,8 @@ def test_module_level_lines_run_every_test_of_the_file_and_unknown_contexts_run_
     no_contexts = run_with({}, executed={4})
     assert covering_tests(no_contexts, FN) == ("t.py::test_fast", "t.py::test_uses_db", "t.py::test_slow")
     assert covering_tests(run_with({}, executed=set()), FN) == ()  # never executed: not run
+    # executed by a failing test only: not run (the other tests never reach it; tests.failing reports the failure)
+    assert covering_tests(run_with({4: ("t.py::test_broken",)}), FN) == ()
 
 
 def test_time_limit_has_a_floor_and_grows_with_the_tests() -> None:

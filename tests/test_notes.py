@@ -29,6 +29,7 @@ FIELDS = {
     "findings",
     "waivers",
     "sandbox",
+    "mutants",
 }
 
 

@@ -100,7 +100,7 @@ def covering_tests(run: RunResult, mutant: Mutant) -> tuple[str, ...]:
     chosen = {context for context in contexts if context in passed}
     chosen |= {node for node, test in passed.items() if fixtures.intersection(test.fixtures)}
     executed = any(line in measured.executed or measured.contexts.get(line) for line in statement)
-    if not chosen and executed:
+    if not chosen and executed and not contexts - {""}:  # no context names a test (failing ones included)
         chosen = set(passed)
     return tuple(sorted(chosen, key=lambda node: (passed[node].duration, node)))
 
