@@ -14,7 +14,7 @@ import subprocess
 import sys
 from pathlib import Path
 
-from conftest import ROOT, machine, run_check, snapshot
+from conftest import ROOT, Outcome, machine, run_check, snapshot
 
 from verifier.demo.scratch import ScratchRepo
 
@@ -61,6 +61,11 @@ def start(repo: ScratchRepo, extra: dict[str, str] | None = None) -> None:
     repo.commit("Start the shop", {**START, **(extra or {})})
 
 
+def report_of(out: Outcome) -> dict:
+    assert out.report is not None, out.stderr
+    return out.report
+
+
 def mutation_findings(report: dict) -> list[dict]:
     return [f for f in report["findings"] if f["rule"] == "tests.mutant-survived"]
 
@@ -88,7 +93,7 @@ def test_assertion_free_tests_block_with_findings_on_the_surviving_lines(repo: S
     before = snapshot(repo.path)
     out = run_check(repo, "HEAD")
     assert out.code == 1, out.stderr + out.stdout
-    report = out.report
+    report = report_of(out)
     assert report["format"] == 2 and report["verdict"] == "block"
     assert report["coverage"]["percent"] == 100.0  # coverage alone would have passed it
     mutants = report["mutants"]
@@ -110,8 +115,8 @@ def test_assertion_free_tests_block_with_findings_on_the_surviving_lines(repo: S
     assert pytest_on_mutant(repo, tmp_path, survivors[0], "survivor") == 0
 
     again = run_check(repo, "HEAD")  # an unchanged commit: every outcome comes from the cache
-    assert again.report["mutation"]["cached"] == len([m for m in mutants if m["status"] != "not-run"])
-    assert again.report["mutants"] == [{**m, "cached": True} for m in mutants]
+    assert report_of(again)["mutation"]["cached"] == len([m for m in mutants if m["status"] != "not-run"])
+    assert report_of(again)["mutants"] == [{**m, "cached": True} for m in mutants]
     assert again.code == 1
 
 
@@ -120,7 +125,7 @@ def test_the_same_function_with_real_tests_passes(repo: ScratchRepo, tmp_path: P
     repo.commit(machine("Add member discounts"), {"shop/price.py": PRICE, "tests/test_price.py": STRONG})
     out = run_check(repo, "HEAD")
     assert out.code == 0, out.stdout + out.stderr
-    report = out.report
+    report = report_of(out)
     assert report["verdict"] == "pass"
     assert report["mutation"]["score"] >= 80 and report["mutation"]["total"] >= 10
     killed = [m for m in report["mutants"] if m["status"] == "killed"]
@@ -161,7 +166,7 @@ def test_endless_loops_time_out_and_interpreter_exits_crash_both_count_as_killed
     start(repo)
     repo.commit(machine("Add loops"), {"shop/loops.py": LOOPS, "tests/test_loops.py": LOOP_TESTS})
     out = run_check(repo, "HEAD")
-    report = out.report
+    report = report_of(out)
     statuses = {(m["line"], m["mutated"].strip()): m["status"] for m in report["mutants"]}
     assert statuses[(7, "pass")] == "timeout"  # ``i += 1`` removed: the loop never ends
     assert statuses[(12, "if code == 0:")] == "crashed"  # guard(0) now calls os._exit(0)
@@ -180,7 +185,7 @@ def test_a_waiver_on_a_line_accepts_its_survivor_and_the_policy_caps_mutants_per
     start(repo, {"verifier.yaml": policy})
     repo.commit(machine("Add member discounts"), {"shop/price.py": PRICE, "tests/test_price.py": WEAK})
     out = run_check(repo, "HEAD")
-    report = out.report
+    report = report_of(out)
     lines = [m["line"] for m in report["mutants"]]
     assert len(lines) == len(set(lines))  # at most one mutant per line
     waived = [f for f in mutation_findings(report) if f["line"] == 7]
@@ -203,7 +208,7 @@ def test_shards_split_the_mutants_and_their_merged_reports_give_the_outcome_of_o
     for k in (1, 2):
         shard = run_check(repo, "HEAD", "--shard", f"{k}/2")
         files.append(tmp_path / f"shard-{k}.json")
-        files[-1].write_text(json.dumps(shard.report))
+        files[-1].write_text(json.dumps(report_of(shard)))
     merged_file = tmp_path / "merged.json"
     merge = [sys.executable, "-m", "verifier", "-C", str(repo.path), "merge-reports", *map(str, files)]
     done = subprocess.run(
@@ -217,9 +222,9 @@ def test_shards_split_the_mutants_and_their_merged_reports_give_the_outcome_of_o
     def outcomes(report: dict) -> list[tuple]:
         return [(m["line"], m["mutated"], m["status"] == "survived", sorted(m["tests"])) for m in report["mutants"]]
 
-    assert outcomes(merged) == outcomes(whole.report)
-    assert (done.returncode, merged["verdict"]) == (whole.code, whole.report["verdict"])
-    assert merged["mutation"]["score"] == whole.report["mutation"]["score"]
+    assert outcomes(merged) == outcomes(report_of(whole))
+    assert (done.returncode, merged["verdict"]) == (whole.code, report_of(whole)["verdict"])
+    assert merged["mutation"]["score"] == report_of(whole)["mutation"]["score"]
 
 
 NEW_TESTS = """\
@@ -241,7 +246,7 @@ def test_a_new_test_that_passes_at_base_too_is_reported(repo: ScratchRepo) -> No
     files = {"shop/price.py": changed, "tests/test_new.py": NEW_TESTS}
     repo.commit(machine("Lower the discount of non-members"), files)
     out = run_check(repo, "HEAD")
-    report = out.report
+    report = report_of(out)
     at_base = {entry["test"]: entry["status"] for entry in report["tests_at_base"]}
     assert at_base == {
         "tests/test_new.py::test_members_still_get_ten_percent": "survived",
