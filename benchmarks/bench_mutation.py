@@ -7,6 +7,8 @@ interpreter start per mutant).
 The library is a real open-source project installed from PyPI as an sdist (boltons by default); the
 change rewrites the body of one function (boltons.strutils.bytes2human) in another style, keeping what
 it does. The mutant cache is emptied before every measured gate run, so every run tries every mutant.
+Last, a sample of the mutants is applied to a checkout and the whole suite run on it under pytest: the
+stage's outcome (from the tests that executed the line only) must agree every time.
 Needs the network for the download.
 """
 
@@ -23,6 +25,7 @@ from bench_gate_overhead import fetch_sdist
 from timing import compare, run_command
 
 from verifier.demo.scratch import ScratchRepo
+from verifier.models import Mutant
 
 DEFAULT_LIBRARY = "boltons==26.2.0"
 TARGET = "boltons/strutils.py"
@@ -72,8 +75,9 @@ def gate(repo: ScratchRepo):  # type: ignore[no-untyped-def]
     return action
 
 
-def per_mutant_cost(repo: ScratchRepo) -> None:
-    """Each mutant's time in the sandbox against the run time of its tests measured by the normal run."""
+def per_mutant_cost(repo: ScratchRepo, sample: int, scratch: Path) -> None:
+    """Each mutant's time in the sandbox against the run time of its tests measured by the normal run; then,
+    for ``sample`` mutants, the stage's outcome against pytest's own run of the whole suite on the mutant."""
     from verifier.change.stage import RevisionSpec
     from verifier.pipeline import Options, verify
 
@@ -99,6 +103,27 @@ def per_mutant_cost(repo: ScratchRepo) -> None:
             f"  {how}: {len(pairs)} mutants, median per mutant {mutant_s * 1000:.1f} ms, median run time of its "
             f"tests {tests_s * 1000:.1f} ms, median cost beyond the tests {extra * 1000:.1f} ms"
         )
+    tried = [o for o in report.mutation.outcomes if o.status not in ("not-run", "error")][:sample]
+    agree = sum(1 for o in tried if whole_suite_kills(repo, o.mutant, scratch) == o.counts_as_killed)
+    print(f"selection agreement: {agree} of {len(tried)} mutants judged as the whole suite judges them (bar: all)")
+
+
+def whole_suite_kills(repo: ScratchRepo, mutant: Mutant, scratch: Path) -> bool:
+    """Apply ``mutant`` by plain text replacement to a fresh checkout and run every test under pytest."""
+    tree = scratch / f"whole-{mutant.line}-{abs(hash(mutant.mutated))}"
+    repo.git("worktree", "add", "-q", "--detach", str(tree), "HEAD")
+    target = tree / mutant.path
+    rows = target.read_text().split("\n")
+    rows[mutant.line - 1 : mutant.end_line] = [mutant.mutated]
+    target.write_text("\n".join(rows))
+    done = subprocess.run(
+        [sys.executable, "-m", "pytest", "-q", "-x", "-p", "no:cacheprovider"],
+        cwd=tree,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+        timeout=600,
+    )
+    return done.returncode != 0
 
 
 def main() -> None:
@@ -124,7 +149,7 @@ def main() -> None:
         print(measured.describe())
         print(baseline.describe())
         print(f"bar: at most 1.5x with mutants -> {'met' if measured.ratio <= 1.5 else 'NOT met'}")
-        per_mutant_cost(with_mutants)
+        per_mutant_cost(with_mutants, sample=8, scratch=folder)
 
 
 if __name__ == "__main__":
