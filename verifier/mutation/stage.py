@@ -107,7 +107,8 @@ def covering_tests(run: RunResult, mutant: Mutant) -> tuple[str, ...]:
 
 def _test_of(context: str) -> str:
     """A context names its test by node id; a ``|phase`` suffix (``nodeid|run``) is the same test."""
-    return context.rsplit("|", 1)[0] if "|" in context and not context.startswith("fixture:") else context
+    test, _bar, phase = context.rpartition("|")
+    return test if test and phase in ("setup", "run", "teardown") else context
 
 
 def run_mutation(
