@@ -149,10 +149,7 @@ class MutantServer:
 def find_swap(mutant: dict[str, Any], source: str) -> tuple[types.FunctionType, types.CodeType] | None:
     """The live function of the mutant's scope and its mutated code, or None (then a fresh run is used)."""
     path = os.path.realpath(mutant["path"])
-    module = next(
-        (m for m in list(sys.modules.values()) if _file_of(m) == path),
-        None,
-    )
+    module = _module_of(path)
     if module is None:
         return None
     try:
@@ -169,6 +166,22 @@ def find_swap(mutant: dict[str, Any], source: str) -> tuple[types.FunctionType, 
     if new is None or function is None or new.co_freevars != function.__code__.co_freevars:
         return None
     return function, new
+
+
+_MODULES: dict[str, Any] = {}  # real path of a module's file -> the module (built after the collection)
+
+
+def _module_of(path: str) -> Any:
+    """The imported module whose file is ``path``; the index of sys.modules is made once (a lookup per
+    mutant would resolve every module's path again)."""
+    if path not in _MODULES:
+        _MODULES.clear()
+        for module in list(sys.modules.values()):
+            file = _file_of(module)
+            if file is not None:
+                _MODULES.setdefault(file, module)
+        _MODULES.setdefault(path, None)  # not imported: remembered too
+    return _MODULES[path]
 
 
 def _file_of(module: Any) -> str | None:
