@@ -30,6 +30,7 @@ ENTRY_FIELDS = {
     "findings",
     "waivers",
     "sandbox",
+    "mutants",
 }
 
 

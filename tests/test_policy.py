@@ -209,7 +209,13 @@ def test_shipped_policies_are_valid_and_keep_their_settings() -> None:
         load_policy_file(shipped_dir() / f"{name}.yaml")
     default = load_policy_file(shipped_dir() / "default.yaml")
     assert default.coverage_threshold == 90.0
-    assert default.rules == {"tests.failing": "block", "coverage.new-lines": "block", "code.syntax": "block"}
+    assert default.rules == {
+        "tests.failing": "block",
+        "coverage.new-lines": "block",
+        "code.syntax": "block",
+        "tests.mutant-survived": "block",
+    }
+    assert default.rule_options["tests.mutant-survived"] == {"threshold": 80.0, "per_line": 3}
 
 
 def test_missing_policy_file_is_a_policy_error(tmp_path: Path) -> None:

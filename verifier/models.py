@@ -307,6 +307,58 @@ class CoverageTarget:
         return None if self.executable == 0 else round(100.0 * self.covered / self.executable, 2)
 
 
+MutantStatus = Literal["killed", "survived", "timeout", "crashed", "not-run", "error"]
+
+
+@dataclass(frozen=True)
+class Mutant:
+    """A small faulty version of one machine-written line: replace ``original`` by ``mutated`` in the file."""
+
+    path: str
+    line: int  # the first line the mutant changes
+    end_line: int  # the last one (a statement spread over several lines)
+    operator: str  # which kind of fault: compare, arithmetic, negate, and-or, constant, return, ...
+    original: str  # the full text of lines line..end_line, exactly as in the file
+    mutated: str  # the same lines with the fault
+    scope: str | None = None  # qualified name of the function whose code the runner swaps; None: module level
+    lines: tuple[int, ...] = ()  # the lines of its statement: the tests that ran any of them run the mutant
+
+
+@dataclass(frozen=True)
+class MutantOutcome:
+    """What happened to one mutant: killed, survived, timeout and crashed (both count as killed), not-run,
+    or error (the runner could not try it: the gate could not verify)."""
+
+    mutant: Mutant
+    status: MutantStatus
+    tests: tuple[str, ...] = ()  # the tests that executed its line (the ones it was run against)
+    killed_by: str | None = None  # the first test that failed, when known
+    problem: str | None = None  # for ``error``: why the runner could not try it
+    cached: bool = False
+    seconds: float = 0.0  # how long its try took in the sandbox (0 when cached or not run)
+
+    @property
+    def counts_as_killed(self) -> bool:
+        return self.status in ("killed", "timeout", "crashed")
+
+
+@dataclass(frozen=True)
+class MutationResult:
+    """The mutation stage's outcome for a change: every mutant's fate, and how it was obtained."""
+
+    outcomes: tuple[MutantOutcome, ...]
+    wall_seconds: float = 0.0
+    cached: int = 0  # outcomes read from the cache instead of run
+    shard: tuple[int, int] | None = None  # (K, N): this run tried shard K of N of the mutants
+    problem: str | None = None  # why the runner could not run (the gate could not verify), else None
+    # new or changed machine-written tests run with a changed file as it was at base: "survived" means the
+    # test passes there too, so it does not show the change (the mutant's texts are the file at head and base)
+    at_base: tuple[MutantOutcome, ...] = ()
+
+    def count(self, *statuses: str) -> int:
+        return sum(1 for outcome in self.outcomes if outcome.status in statuses)
+
+
 @dataclass(frozen=True)
 class Report:
     """Everything the gate concluded about one change; the reporters only format this."""
@@ -322,6 +374,7 @@ class Report:
     notes: tuple[str, ...] = ()  # plain facts the reader should see (e.g. "the process sandbox isolates nothing")
     waivers_used: tuple[Waiver, ...] = ()  # the policy's waivers that turned at least one finding into info
     selection: Selection | None = None  # which tests ran and why (None when no tests ran)
+    mutation: MutationResult | None = None  # the mutants of the machine-written lines (None: stage not run)
 
 
 def to_plain(value: Any) -> Any:

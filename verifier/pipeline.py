@@ -12,19 +12,30 @@ caches under git's common dir (the who-tests-what maps and base results of
 from __future__ import annotations
 
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import TYPE_CHECKING
 
 from verifier.change.stage import RevisionSpec, read_change, refuse_machine_submodules
 from verifier.errors import PolicyError
 from verifier.gitio import Git
-from verifier.models import INDEX, Change, CoverageSummary, Finding, Policy, Provenance, Report, RunResult, Selection
+from verifier.models import (
+    INDEX,
+    Change,
+    CoverageSummary,
+    Finding,
+    MutationResult,
+    Policy,
+    Provenance,
+    Report,
+    RunResult,
+    Selection,
+)
 from verifier.policy.loader import load_policy
 from verifier.provenance.attribution import attribute, has_mark_text
 from verifier.verdict.decision import decide
-from verifier.verdict.settings import settings_for_path
-from verifier.verdict.waivers import waivers_used
+from verifier.verdict.settings import enabled_anywhere, settings_for_path
+from verifier.verdict.waivers import waived_by, waivers_used
 
 if TYPE_CHECKING:
     from verifier.sandbox import Backend
@@ -49,6 +60,7 @@ class Options:
     # the caller vouches for the code under test (the demo's own sample code), so the process sandbox may run
     # it whatever the policy says; the command line never sets this
     vouched_code: bool = False
+    premade_mutation: MutationResult | None = None  # with ``premade``: the shards' joined mutants
 
 
 @dataclass(frozen=True)
@@ -96,10 +108,45 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
     check.say(f"{provenance.machine_line_count} machine-written lines in {len(provenance.machine_lines)} files")
     selection, run = options.premade if options.premade is not None else _select_and_run(check)
     coverage = _coverage(check, run)
-    findings += apply_rules(
-        "dynamic", RuleContext(change, provenance, policy, head_sources, base_sources, run, coverage)
+    dynamic = RuleContext(
+        change, provenance, policy, head_sources, base_sources, run, coverage, waiver_of=waived_by(policy)
     )
-    return _report(check, findings, run=run, coverage=coverage, notes=_sandbox_notes(run), selection=selection)
+    findings += apply_rules("dynamic", dynamic)
+    mutation = _mutation(check, run, _secret_lines(findings))
+    findings += apply_rules("mutation", replace(dynamic, mutation=mutation))
+    notes = _sandbox_notes(run)
+    return _report(check, findings, run=run, coverage=coverage, notes=notes, selection=selection, mutation=mutation)
+
+
+def _mutation(check: CheckContext, run: RunResult, hidden: frozenset[tuple[str, int]]) -> MutationResult | None:
+    """The mutation stage, after a completed run of tests (a partial run cannot tell which tests ran a line)."""
+    from verifier.mutation.counts import RULE_ID
+
+    options = check.options
+    if options.premade is not None:
+        return options.premade_mutation if run.status == "completed" else None
+    if run.status != "completed" or not enabled_anywhere(check.policy, RULE_ID, "block"):
+        return None
+    from verifier.mutation.stage import run_mutation
+
+    return run_mutation(
+        check.git,
+        check.change,
+        check.provenance,
+        check.policy,
+        run,
+        check.head_sources,
+        lambda: _backend(check),  # made only when a mutant must run
+        options.shard,
+        check.say,
+        hidden,
+        check.base_sources,
+    )
+
+
+def _secret_lines(findings: list[Finding]) -> frozenset[tuple[str, int]]:
+    """Lines holding a credential-like literal: never quoted, so never mutated (a mutant quotes its line)."""
+    return frozenset((f.path, f.line) for f in findings if f.rule == "secrets.literal" and f.path and f.line)
 
 
 def refuse_forbidden_sandbox(policy: Policy, requested: str) -> None:
@@ -246,6 +293,7 @@ def _report(
     coverage: CoverageSummary | None = None,
     notes: tuple[str, ...] = (),
     selection: Selection | None = None,
+    mutation: MutationResult | None = None,
 ) -> Report:
     return Report(
         verdict=decide(findings),
@@ -259,4 +307,5 @@ def _report(
         notes=notes,
         waivers_used=waivers_used(check.policy, findings),
         selection=selection,
+        mutation=mutation,
     )

@@ -56,6 +56,8 @@ TEST_VOLUME = """from parcelkit.volume import volumetric_weight
 
 def test_volumetric_weight_of_a_shoebox():
     assert volumetric_weight(30, 20, 10) == 1.2
+    assert volumetric_weight(33, 21, 11) == 1.52  # rounded to two digits
+    assert volumetric_weight(100, 100, 100) == 200.0
 """
 
 ZONES = '''"""Surcharges by delivery zone."""

@@ -6,6 +6,9 @@ FORMAT_VERSION history (one line per version):
      selection (which tests ran and why), tests.flaky/flaky_ids/outcomes/differential, shard (a --shard
      run's measurements, which verifier merge-reports joins); a tests.failing finding's details.pre_existing
      and details.at_base (the test fails at base too).
+  2: adds "mutants" (every mutant of the machine-written lines: path, line, status, original, mutated, tests,
+     where original/mutated are the full text of the lines it changes), "mutation" (the counts and score) and
+     "tests_at_base" (new or changed tests run with a changed file as it was at base: test, path, status).
 """
 
 from __future__ import annotations
@@ -18,7 +21,7 @@ from verifier.models import Report, RunResult, to_plain
 SUFFIX = "json"  # a report of this format written into a folder is report.json
 FOR_MACHINES = True  # tools read it: alone on stdout
 
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 
 
 def as_dict(report: Report) -> dict[str, Any]:
@@ -88,8 +91,42 @@ def as_dict(report: Report) -> dict[str, Any]:
             }
             for w in report.waivers_used
         ],
+        "mutants": _mutants(report),
+        "mutation": _mutation(report),
+        "tests_at_base": [
+            {"test": o.tests[0] if o.tests else None, "path": o.mutant.path, "status": o.status}
+            for o in (report.mutation.at_base if report.mutation else ())
+        ],
         **({"shard": _shard(report)} if report.selection and report.selection.shard and run else {}),
     }
+
+
+def _mutants(report: Report) -> list[dict[str, Any]]:
+    if report.mutation is None:
+        return []
+    return [
+        {
+            "path": o.mutant.path,
+            "line": o.mutant.line,
+            "status": o.status,
+            "original": o.mutant.original,
+            "mutated": o.mutant.mutated,
+            "tests": list(o.tests),
+            "operator": o.mutant.operator,
+            "end_line": o.mutant.end_line,
+            "killed_by": o.killed_by,
+            "problem": o.problem,
+            "cached": o.cached,
+        }
+        for o in report.mutation.outcomes
+    ]
+
+
+def _mutation(report: Report) -> dict[str, Any] | None:
+    """The counts the rule judged: killed (timeouts and crashes included), survived, accepted by a waiver."""
+    from verifier.mutation.counts import mutation_counts
+
+    return mutation_counts(report)
 
 
 def _tests(report: Report) -> dict[str, Any]:

@@ -50,8 +50,22 @@ def _summary(report: Report) -> str:
             f"Coverage of the executable machine-written lines: {cov.covered}/{cov.executable} = "
             f"{cov.percent:.1f}% (the policy asks for {cov.threshold:g}%)."
         )
+    rows += _mutation_summary(report)
     rows.append(f"Policy: {_inline(report.policy_source)}.")
     return "\n".join(rows)
+
+
+def _mutation_summary(report: Report) -> list[str]:
+    from verifier.mutation.counts import mutation_counts
+
+    counts = mutation_counts(report)
+    if counts is None or counts["score"] is None:
+        return []
+    judged = counts["killed"] + counts["survived"]
+    return [
+        f"Mutants of the machine-written lines: {counts['killed']}/{judged} killed = {counts['score']:.1f}% "
+        f"({counts['survived']} survived, {counts['accepted']} accepted by waivers, {counts['not_run']} not run)."
+    ]
 
 
 def _file_table(report: Report) -> str:

@@ -25,7 +25,8 @@ A format-2 entry says what one check found about *this* commit:
   - ``agent``, ``machine_lines`` (machine-written lines of the final diff this commit introduced),
     ``findings`` (its own, each {rule, severity, path, line, message}), ``waivers`` (the policy's waivers
     that turned one of this entry's findings into info), ``coverage`` {executable, covered, percent} and
-    ``tests`` {run, failed} (of the whole checked change), ``sandbox``.
+    ``tests`` {run, failed} (of the whole checked change), ``sandbox``, ``mutants`` {killed, survived,
+    accepted, not_run, error, score} (the mutation stage's counts, or null).
   - ``range``: {base, head, commits (how many the check covered), verdict (of the whole change), findings
     (the whole-change facts)}.
   Each list of findings keeps at most :data:`MAX_FINDINGS` (``findings_left_out`` counts the rest).
@@ -137,6 +138,7 @@ def check_entry(report: Report, commit: str, how: str, checked_at: str | None = 
             "verdict": report.verdict,
             "findings": [_finding(f) for f in kept_range],
         },
+        "mutants": _mutant_counts(report),
     }
     if own_left_out or range_left_out:
         entry["findings_left_out"] = own_left_out + range_left_out
@@ -224,6 +226,16 @@ def _waivers_of(report: Report, findings: Iterable[Finding]) -> list[dict[str, A
         for w in report.waivers_used
         if w.source in sources
     ]
+
+
+def _mutant_counts(report: Report) -> dict[str, Any] | None:
+    """The mutation stage's counts for the whole change (None when the stage did not run)."""
+    from verifier.mutation.counts import mutation_counts
+
+    counts = mutation_counts(report)
+    if counts is None:
+        return None
+    return {key: counts[key] for key in ("killed", "survived", "accepted", "not_run", "error", "score")}
 
 
 def _lines_of(report: Report, commit: str) -> int:

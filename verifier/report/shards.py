@@ -25,6 +25,7 @@ _STATUS_ORDER = ("timeout", "crashed", "collection-error", "harness-error", "no-
 def merge_reports(repo: str | Path, paths: Sequence[Path], sandbox: str = "auto") -> Report:
     """The report of the change the shard reports at ``paths`` checked, judged as one run."""
     from verifier.change.stage import RevisionSpec
+    from verifier.mutation.join import joined_mutation
     from verifier.pipeline import Options, verify
 
     reports = [_read(path) for path in paths]
@@ -33,7 +34,8 @@ def merge_reports(repo: str | Path, paths: Sequence[Path], sandbox: str = "auto"
         raise UsageError("the shards checked a change without a base revision", hint="run that check unsharded")
     selection, run = joined_run(reports)
     spec = RevisionSpec(text=f"{first['base']}..{first['head']}")
-    return verify(repo, spec, Options(sandbox=sandbox, premade=(selection, run)))
+    mutation = joined_mutation(reports)  # each shard ran the mutants against its share of the tests
+    return verify(repo, spec, Options(sandbox=sandbox, premade=(selection, run), premade_mutation=mutation))
 
 
 def _read(path: Path) -> dict[str, Any]:

@@ -18,7 +18,7 @@ import time
 from collections.abc import Callable
 from typing import TextIO
 
-from verifier.models import Finding, Report, RunResult
+from verifier.models import Finding, MutantOutcome, Report, RunResult
 
 Paint = Callable[[str, str], str]  # (style key, text) -> the text, coloured or not
 
@@ -54,6 +54,7 @@ def render(report: Report, colour: bool = False, quiet: bool = False) -> str:
         out += _machine_lines(report)
         out += _tests(report)
         out += _coverage(report, paint)
+        out += _mutants(report, paint)
         out += _findings(report.findings, paint)
         out += _waivers(report)
         out += [f"note: {note}" for note in report.notes]
@@ -172,6 +173,40 @@ def _coverage(report: Report, paint: Paint) -> list[str]:
         rows += [f"    {paint('block', f'{line:>5}')} | {source.get(line, '').rstrip()}" for line in lines[:40]]
         if len(lines) > 40:
             rows.append(f"    ... and {len(lines) - 40} more")
+    return rows
+
+
+def _mutants(report: Report, paint: Paint) -> list[str]:
+    """The score, then the surviving mutants under their file: line, before -> after, the tests that ran it."""
+    from verifier.mutation.counts import accepted_lines, mutation_counts
+
+    counts = mutation_counts(report)
+    if counts is None or report.mutation is None:
+        return []
+    score = "no mutant judged" if counts["score"] is None else f"{counts['score']:.1f}% killed"
+    rows = [
+        f"mutants of machine-written lines: {counts['killed']}/{counts['killed'] + counts['survived']} killed = {score}"
+        f" ({counts['survived']} survived, {counts['accepted']} accepted by waivers, {counts['not_run']} not run"
+        + (f", {counts['cached']} from the cache" if counts["cached"] else "")
+        + ")"
+    ]
+    accepted = accepted_lines(report)
+    by_path: dict[str, list[MutantOutcome]] = {}
+    for outcome in report.mutation.outcomes:
+        if outcome.status == "survived":
+            by_path.setdefault(outcome.mutant.path, []).append(outcome)
+    for path, survivors in by_path.items():
+        rows.append(f"  surviving in {path}:")
+        for outcome in survivors[:40]:
+            mutant = outcome.mutant
+            label = "accepted" if (path, mutant.line) in accepted else "block"
+            tests = ", ".join(outcome.tests[:3]) + (f" +{len(outcome.tests) - 3}" if len(outcome.tests) > 3 else "")
+            rows.append(
+                f"    {paint(label if label == 'block' else 'info', f'{mutant.line:>5}')} | "
+                f"{mutant.original.strip()}  ->  {mutant.mutated.strip()}  (ran by {tests})"
+            )
+        if len(survivors) > 40:
+            rows.append(f"    ... and {len(survivors) - 40} more")
     return rows
 
 

@@ -13,7 +13,16 @@ from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
-from verifier.models import Change, CoverageSummary, Finding, Policy, Provenance, RuleSetting, RunResult
+from verifier.models import (
+    Change,
+    CoverageSummary,
+    Finding,
+    MutationResult,
+    Policy,
+    Provenance,
+    RuleSetting,
+    RunResult,
+)
 
 
 @dataclass(frozen=True)
@@ -29,6 +38,10 @@ class RuleContext:
     coverage: CoverageSummary | None = None
     # reads a file the change did not touch at the base revision (None when absent); None: not available
     read_base: Callable[[str], str | None] | None = None
+    mutation: MutationResult | None = None  # the mutation stage's outcomes (rules of stage "mutation")
+    # the waiver (as a finding's details["waived_by"] holds it) that covers a finding, given by the verdict
+    # stage to the rules that must count waived findings apart (the mutation score); the rules never judge
+    waiver_of: Callable[[Finding], Mapping[str, str] | None] | None = None
 
 
 EntryCheck = Callable[[Any], list[str]]
@@ -42,7 +55,7 @@ class Rule:
     default: RuleSetting
     summary: str
     explanation: str
-    stage: str  # "static" (no execution) or "dynamic" (reads the test run)
+    stage: str  # "static" (no execution), "dynamic" (reads the test run) or "mutation" (reads the mutants)
     check: Callable[[RuleContext], Iterable[Finding]]
     fixed: bool = False  # a fixed rule cannot be switched off: it is how the gate fails closed
     options: Mapping[str, Any] = field(default_factory=dict)  # option name -> default value

@@ -2,22 +2,38 @@
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 
 from verifier.models import Finding, Policy, Waiver
 from verifier.pathglob import matches_any
 
 
 def waiver_for(policy: Policy, finding: Finding) -> Waiver | None:
-    """The first waiver that covers ``finding``; only the glob ``**`` covers a finding without a path."""
+    """The first waiver that covers ``finding``; only the glob ``**`` covers a finding without a path, and
+    a waiver written ``path:line`` covers the findings of that one line (an accepted equivalent mutant)."""
     for waiver in policy.waivers:
-        if waiver.rule != finding.rule:
-            continue
-        if finding.path is None and waiver.path == "**":
-            return waiver
-        if finding.path is not None and matches_any(finding.path, (waiver.path,)):
+        if waiver.rule == finding.rule and _covers(waiver.path, finding):
             return waiver
     return None
+
+
+def waived_by(policy: Policy) -> Callable[[Finding], dict[str, str] | None]:
+    """For the rules that count waived findings apart: the record of the waiver covering a finding."""
+
+    def lookup(finding: Finding) -> dict[str, str] | None:
+        waiver = waiver_for(policy, finding)
+        return None if waiver is None else waiver_record(waiver)
+
+    return lookup
+
+
+def _covers(pattern: str, finding: Finding) -> bool:
+    if finding.path is None:
+        return pattern == "**"
+    path, _, line = pattern.rpartition(":")
+    if path and line.isdigit():
+        return finding.line == int(line) and finding.path == path
+    return matches_any(finding.path, (pattern,))
 
 
 def waiver_record(waiver: Waiver) -> dict[str, str]:
