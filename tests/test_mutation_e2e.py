@@ -110,6 +110,7 @@ def test_assertion_free_tests_block_with_findings_on_the_surviving_lines(repo: S
     assert "surviving in shop/price.py:" in out.stdout
     assert snapshot(repo.path) == before  # the user's tree, index, refs and HEAD untouched
     note = json.loads(repo.git("notes", "--ref=refs/notes/verifier", "show", "HEAD"))  # git's own reader
+    note = note["checks"][-1]  # notes format 2: one entry per check, the newest last
     assert note["mutants"]["survived"] == len(survivors) and note["mutants"]["score"] == report["mutation"]["score"]
     # Outside the gate: pytest itself passes with a reported survivor applied to the file.
     assert pytest_on_mutant(repo, tmp_path, survivors[0], "survivor") == 0
@@ -163,7 +164,9 @@ def test_guard():
 
 
 def test_endless_loops_time_out_and_interpreter_exits_crash_both_count_as_killed(repo: ScratchRepo) -> None:
-    start(repo)
+    # the code ends the interpreter on purpose (that is what its crash mutant needs), which tamper.means would
+    # rightly flag: a human switched that rule off for this repository
+    start(repo, {"verifier.yaml": "version: 1\nrules:\n  tamper.means: off\n"})
     repo.commit(machine("Add loops"), {"shop/loops.py": LOOPS, "tests/test_loops.py": LOOP_TESTS})
     out = run_check(repo, "HEAD")
     report = report_of(out)

@@ -28,6 +28,7 @@ FAMILIES = (
     "verifier.rules.marks",
     "verifier.rules.census",
     "verifier.rules.regressions",
+    "verifier.rules.mutation",
 )
 
 
