@@ -19,8 +19,10 @@ from verifier.models import (
 )
 from verifier.mutation.join import joined_mutation
 from verifier.mutation.stage import covering_tests, time_limit
-from verifier.rules import RuleContext, apply_rules
+from verifier.rules import RuleContext
 from verifier.rules.mutation import RULE_ID
+from verifier.verdict.judge import apply_rules
+from verifier.verdict.waivers import waived_by
 
 FN = Mutant("shop/price.py", 4, 4, "compare", "    if a < b:", "    if a <= b:", "discount", (4,))
 MODULE = Mutant("shop/price.py", 1, 1, "constant", "RATE = 3", "RATE = 0", None, (1,))
@@ -72,7 +74,8 @@ def outcome(line: int, status: str, tests: tuple[str, ...] = ("t.py::test_fast",
 def judge(result: MutationResult, policy: Policy | None = None) -> list:
     change = Change("HEAD", "commit", "a" * 40, "b" * 40, (), ())
     provenance = Provenance({"shop/price.py": (1, 2, 3, 4, 5)}, {}, {})
-    context = RuleContext(change, provenance, policy or Policy(source="test"), mutation=result)
+    policy = policy or Policy(source="test")
+    context = RuleContext(change, provenance, policy, mutation=result, waiver_of=waived_by(policy))
     return apply_rules("mutation", context)
 
 
