@@ -116,14 +116,17 @@ def test_every_pytest_config_name_is_known() -> None:
 
     from verifier.rules.harness import COVERAGE_CONFIGS, HARNESS_FILES, PYTEST_CONFIGS
 
-    tree = ast.parse(inspect.getsource(findpaths.locate_config))
-    names = next(
-        [ast.literal_eval(element) for element in node.value.elts]
-        for node in ast.walk(tree)
-        if isinstance(node, ast.Assign)
-        and getattr(node.targets[0], "id", "") == "config_names"
-        and isinstance(node.value, ast.List)
-    )
+    if hasattr(findpaths, "CONFIG_LOADERS_BY_NAME"):  # pytest 9.1 and later: one table of names and loaders
+        names = list(findpaths.CONFIG_LOADERS_BY_NAME)
+    else:  # earlier: a list literal inside locate_config()
+        tree = ast.parse(inspect.getsource(findpaths.locate_config))
+        names = next(
+            [ast.literal_eval(element) for element in node.value.elts]
+            for node in ast.walk(tree)
+            if isinstance(node, ast.Assign)
+            and getattr(node.targets[0], "id", "") == "config_names"
+            and isinstance(node.value, ast.List)
+        )
     assert tuple(names) == PYTEST_CONFIGS
     whole_files = {glob.removeprefix("**/") for glob in HARNESS_FILES}
     sections_read = {"pyproject.toml", "tox.ini", "setup.cfg"}

@@ -24,7 +24,8 @@ from verifier.errors import EXIT_UNVERIFIED, SandboxUnavailable
 from verifier.models import Limits, SandboxRequest, SandboxResult
 from verifier.sandbox import docker as docker_backend
 from verifier.sandbox import images
-from verifier.sandbox.docker import EXPIRES_LABEL, LABEL, OWNER_LABEL, DockerBackend, engine_endpoint, is_orphan
+from verifier.sandbox.docker import EXPIRES_LABEL, LABEL, OWNER_LABEL, DockerBackend, is_orphan
+from verifier.sandbox.engine import engine_endpoint
 
 REPO_ROOT = Path(__file__).resolve().parents[1]
 FAST = Limits(wall_seconds=30, cpu_seconds=30, memory_mb=256, processes=64, output_bytes=100_000)

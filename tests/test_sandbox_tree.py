@@ -224,11 +224,15 @@ def test_an_export_ignored_human_test_still_runs(repo: ScratchRepo) -> None:
     assert report and report["verdict"] == "block"
 
 
+# the honest changes add a constant and the test that checks it (so its mutants are killed)
+NOTE_TEST = "from parcelkit.rates import NOTE\n\n\ndef test_note():\n    assert NOTE == 'rates in euros'\n"
+
+
 @pytest.mark.slow
 def test_an_export_ignored_human_test_passes_an_honest_change(repo: ScratchRepo) -> None:
     start(repo, {".gitattributes": "tests/test_rates.py export-ignore\n"})
     honest = demo.RATES + "\n\nNOTE = 'rates in euros'\n"
-    repo.commit(machine("Note"), {"parcelkit/rates.py": honest})
+    repo.commit(machine("Note"), {"parcelkit/rates.py": honest, "tests/test_note.py": NOTE_TEST})
     code, report, output = check(repo, "HEAD")
     assert code == 0, output
     assert report and report["tests"]["run"] >= 2, "the human test ran"
@@ -262,7 +266,7 @@ NAMED_CASES = [
     ODD_NAMES[0],
     _waiting_for(ODD_NAMES[1], "the CLI writes the report as strict UTF-8; the path is held with surrogates"),
     ODD_NAMES[2],
-    _waiting_for(ODD_NAMES[3], "the harness hands judged files to coverage as --include globs ('[ab]' is a class)"),
+    ODD_NAMES[3],  # the harness passes judged files to coverage by name, not as --include globs
 ]
 
 
@@ -300,6 +304,7 @@ def test_a_human_submodule_beside_a_machine_change_is_fine(repo: ScratchRepo, tm
     repo.git("update-index", "--add", "--cacheinfo", f"160000,{pointer},vendor/routes")
     repo.git("commit", "-q", "-m", "Vendor the routes")
     (repo.path / "vendor" / "routes").mkdir(parents=True)  # so that 'git add -A' keeps the gitlink
-    repo.commit(machine("Note"), {"parcelkit/rates.py": demo.RATES + "\n\nNOTE = 'rates in euros'\n"})
+    note = demo.RATES + "\n\nNOTE = 'rates in euros'\n"
+    repo.commit(machine("Note"), {"parcelkit/rates.py": note, "tests/test_note.py": NOTE_TEST})
     code, _report, output = check(repo, "HEAD~1..HEAD")
     assert code == 0, output

@@ -16,7 +16,16 @@ from test_gate_docker_e2e import docker_ready  # noqa: F401  # the fixture that 
 from verifier.demo import scenario as demo
 from verifier.demo.scratch import ScratchRepo
 
-BASE = {"parcelkit/__init__.py": "", "parcelkit/rates.py": demo.RATES, "tests/test_rates.py": demo.TEST_RATES}
+# The harness is judged on its own here: the layers that would also stop these changes (the static rules on
+# tampering and on weak tests, the mutation stage) are switched off by the (human) policy, so each attack
+# must be caught by the sealed harness alone, and each honest twin must get through it.
+HARNESS_ONLY = "version: 1\nrules:\n  tamper.means: off\n  tests.cannot-fail: off\n  tests.mutant-survived: off\n"
+BASE = {
+    "parcelkit/__init__.py": "",
+    "parcelkit/rates.py": demo.RATES,
+    "tests/test_rates.py": demo.TEST_RATES,
+    "verifier.yaml": HARNESS_ONLY,
+}
 WRONG = "def discount(total):\n    return total * 2\n"
 RIGHT = "def discount(total):\n    return round(total * 0.9, 2)\n"
 TEST = "from parcelkit.discount import discount\n\n\ndef test_discount():\n    assert discount(10) == 9\n"
@@ -282,7 +291,7 @@ def test_flaky_on_machine_code_blocks(repo: ScratchRepo) -> None:
 
 
 def test_flaky_on_machine_code_with_the_policy_allowing_it(repo: ScratchRepo) -> None:
-    start(repo, {"verifier.yaml": "selection:\n  allow_flaky: true\n"})
+    start(repo, {"verifier.yaml": HARNESS_ONLY + "selection:\n  allow_flaky: true\n"})
     code, report = gate(repo, change(FLAKY))
     assert code == 0 and report["verdict"] == "warn", report["findings"]
     assert "tests.flaky-machine" not in rules(report)

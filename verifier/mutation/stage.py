@@ -3,7 +3,7 @@
 After a completed test run, every executable machine-written line of non-test code gets a few mutants
 (:mod:`verifier.mutation.plan`). Each mutant is run against the tests that executed its line (the
 per-test coverage contexts of the run; a fixture's context stands for every test that used it; a
-module-level line also for every test that executed any line of its file). The runner
+module-level line, which runs at import, for every passing test). The runner
 (``inside/runner.py``) is copied into a fresh copy of the head tree and started through the same
 sandbox backend as the tests. What it writes back is untrusted: one capped file of JSON lines, each
 record checked against the plan.
@@ -92,11 +92,13 @@ def covering_tests(run: RunResult, mutant: Mutant) -> tuple[str, ...]:
     if measured is None:
         return ()
     statement = mutant.lines or (mutant.line,)
-    lines: Iterable[int] = statement
-    if mutant.scope is None:  # runs at import: every test that ran code of the file can see it
-        lines = measured.contexts.keys()
-    contexts = {_test_of(context) for line in lines for context in measured.contexts.get(line, ())}
     passed = {test.node_id: test for test in run.tests if test.outcome == "passed"}
+    if mutant.scope is None:
+        # runs at import, under the context of whichever test imported the module first: any test that
+        # imports it can read what the line made (a constant, a table), so every passing test runs it
+        return tuple(sorted(passed, key=lambda node: (passed[node].duration, node)))
+    lines: Iterable[int] = statement
+    contexts = {_test_of(context) for line in lines for context in measured.contexts.get(line, ())}
     fixtures = {context[len("fixture:") :] for context in contexts if context.startswith("fixture:")}
     chosen = {context for context in contexts if context in passed}
     chosen |= {node for node, test in passed.items() if fixtures.intersection(test.fixtures)}

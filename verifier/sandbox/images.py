@@ -32,7 +32,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from verifier.errors import SandboxUnavailable, VerifierError
-from verifier.sandbox.docker import DEFAULT_IMAGE, IMAGE_ENV, LABEL, NAME, SANDBOX_UID, WORKSPACE, connect
+from verifier.sandbox.engine import DEFAULT_IMAGE, IMAGE_ENV, LABEL, NAME, SANDBOX_UID, WORKSPACE, connect
 
 if TYPE_CHECKING:  # the Docker SDK ships no type information (the ignore is unused where stubs exist)
     from docker import DockerClient  # type: ignore[import-untyped,unused-ignore]
@@ -388,7 +388,7 @@ def build_default_image(progress: Progress = _quiet) -> str:
 # -- doctor -------------------------------------------------------------------------------------------
 def docker_facts(image: str | None = None) -> list[tuple[str, str]]:
     """What ``verifier sandbox doctor`` shows about docker: engine, versions, images, builder tools."""
-    from verifier.sandbox.docker import engine_endpoint
+    from verifier.sandbox.engine import engine_endpoint
 
     image = image or os.environ.get(IMAGE_ENV) or DEFAULT_IMAGE
     facts: list[tuple[str, str]] = [("docker SDK", _sdk_version())]
