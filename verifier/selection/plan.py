@@ -284,14 +284,14 @@ def _pick_referrers(picks: Picks, where: Where, name: str, impact: ImpactMap, re
     """The tests that can reach a new name by mentioning it: test files that name it run whole; a module
     that names it (an existing ``getattr(self, "name", None)``, a call written beside the new definition)
     brings the tests that ran it."""
-    reason = f"mention {name}, which the change adds"
+    reason = f"mentions {name}, which the change adds"
     for path in sorted(referrers(name)):
         if is_test_file(path):
             picks.add_files([path], reason)
         elif path != where.head_path:
-            picks.add_tests(impact.tests_in_file(path), f"ran {module_name(path)}, which can {reason}")
+            picks.add_tests(impact.tests_in_file(path), f"ran {module_name(path)}, which {reason}")
     if mentions(where.head_text, name) > 1:  # the definition itself is one mention
-        picks.add_tests(impact.tests_in_file(where.base_path), f"ran {where.module}, which can {reason}")
+        picks.add_tests(impact.tests_in_file(where.base_path), f"ran {where.module}, which {reason}")
 
 
 # Decorators that only wrap the function they are given (Python's docs, "Built-in Functions"; functools, abc).
