@@ -105,7 +105,7 @@ def select_tests(
     if impact is None and settings.without_map == "all":
         return whole_suite(f"no who-tests-what map of the base revision ({status})", shard, status), None
     picks = plan(
-        change, impact, base_sources, head_sources, _importers(git, change, policy), _referrers(git, change.head)
+        change, impact, base_sources, head_sources, importers_for(git, change, policy), referrers_for(git, change.head)
     )
     selection = to_selection(picks, impact, status, shard)
     if not selection.node_ids and not selection.files:
@@ -144,6 +144,15 @@ def obtain_map(
         return cached, "cached"
     if policy.selection.map_build != "always":
         return None, f"not cached; the policy's selection.map_build is '{policy.selection.map_build}'"
+    from verifier.selection import update
+
+    earlier = update.ancestor_with_map(git, base, environment)
+    if earlier is not None:
+        say(f"updating the who-tests-what map of {earlier[0][:12]}: the tests the commits since can affect, at base")
+        updated = update.update(git, earlier[0], earlier[1], base, policy, backend, environment)
+        if updated is not None:
+            impactmap.save(git, updated)
+            return updated, "updated"
     say("building the who-tests-what map: the whole suite at base, under coverage")
     built, run = impactmap.build(git, base, policy, backend, environment)
     if built is None:
@@ -551,7 +560,7 @@ def innermost(found: list[Function] | None, line: int) -> Function | None:
 # -- the import graph, read from git only when needed ------------------------------------------------------------
 
 
-def _importers(git: Git, change: Change, policy: Policy) -> Importers:
+def importers_for(git: Git, change: Change, policy: Policy) -> Importers:
     from verifier.selection.imports import build_graph
 
     graphs: dict[str, ImportGraph] = {}
@@ -565,7 +574,7 @@ def _importers(git: Git, change: Change, policy: Policy) -> Importers:
     return importers
 
 
-def _referrers(git: Git, head: str) -> Referrers:
+def referrers_for(git: Git, head: str) -> Referrers:
     """Which head files mention a name (read in one batch, when a new definition first asks)."""
     sources: dict[str, str] = {}
 
