@@ -15,6 +15,7 @@ from __future__ import annotations
 from collections.abc import Callable, Iterable, Mapping
 from typing import TYPE_CHECKING
 
+from verifier.errors import VerifierError
 from verifier.models import Change, FileChange, Policy, Selection
 from verifier.selection import impactmap
 from verifier.selection.impactmap import ImpactMap
@@ -43,7 +44,10 @@ def update(
     from verifier.change.stage import RevisionSpec, read_change
     from verifier.selection import plan as planning
 
-    change = read_change(git, RevisionSpec(text=f"{old}..{base}"))
+    try:
+        change = read_change(git, RevisionSpec(text=f"{old}..{base}"))
+    except VerifierError:  # history the clone lacks, say: a full build still works
+        return None
     if change.base != git.resolve(old) or planning.whole_suite_trigger(change, policy):
         return None
     old_sources, new_sources = _sources(git, change)
