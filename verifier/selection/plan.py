@@ -8,6 +8,12 @@ A test is selected when it could behave differently at head than at base:
   body stands for the whole function, so that a test that ran the function is selected even when the
   change is on a line it skipped. Lines the function ran at import time, outside any test, make it a
   module-level change;
+* the change adds a function or method the base lacks, and it ran the class that gets the method (any
+  of its methods) or the module that gets the function, or its file mentions the new name (a test file
+  runs whole; a module that mentions it, as ``getattr(self, "name", None)`` does, brings the tests that
+  ran that module). A new definition that cannot be trusted to be new is a module-level change: a name
+  Python calls by itself (``__eq__``), a name the base already binds there, a decorator that may record
+  it, a class with a base class or keywords, a method of a class no test ran a method of;
 * the change adds or modifies its test file (the whole file runs);
 * a module-level line of a file it depends on changed (a constant, an import, a decorator, a class
   body, a default argument): every test that executed the file and every test file that imports it,
@@ -17,7 +23,8 @@ A test is selected when it could behave differently at head than at base:
 What the map cannot see runs everything: a change to ``conftest.py``, configuration, fixtures' data or
 any other file the tests may read (the policy's ``selection.whole_suite_paths``, and every non-Python
 file outside ``selection.ignore_paths``). Without a map (not cached and not built), the policy says
-whether everything runs or the import graph alone chooses. A selection that comes out empty runs
+whether everything runs or the import graph alone chooses; a base a few commits ahead of a mapped one
+gets its map updated (:mod:`verifier.selection.update`). A selection that comes out empty runs
 everything too: the gate never passes a change because nothing looked at it.
 """
 
