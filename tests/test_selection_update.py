@@ -7,8 +7,9 @@ import json
 from pathlib import Path
 
 from conftest import machine, run_check
-from test_selection_default import DESCRIBE, HIDDEN_TEST, LIBRARY, PRICE, RATES, REMOTE
+from test_selection_default import DESCRIBE, HIDDEN_TEST, LIBRARY, PRICE, RATES, REMOTE, report
 
+from verifier.demo.scratch import ScratchRepo
 from verifier.models import FileChange
 from verifier.selection.update import line_numbering
 
@@ -27,11 +28,11 @@ def test_lines_before_a_pure_insertion_keep_their_numbers():
     assert [renumber(line) for line in (1, 2, 3, 4, 5)] == [1, 2, 3, 6, 7]
 
 
-def maps(repo) -> list[Path]:  # type: ignore[no-untyped-def]
+def maps(repo: ScratchRepo) -> list[Path]:
     return sorted((repo.path / ".git" / "verifier" / "cache" / "impact").glob("*.json"))
 
 
-def records_of(path: Path) -> dict:  # type: ignore[no-untyped-def]
+def records_of(path: Path) -> dict:
     """A map file's per-test records: path -> line -> the tests that ran it (import time left out)."""
     data = json.loads(path.read_text())
     labels = data["contexts"]
@@ -49,7 +50,7 @@ def test_a_map_updated_after_a_few_base_commits_equals_a_fresh_build(repo):
     repo.commit("parcelkit", LIBRARY)
     repo.commit(machine("Zones as a tuple"), {"src/parcelkit/rates.py": RATES.replace('== "remote"', 'in ("remote",)')})
     first = run_check(repo, "HEAD")
-    assert first.code == 0 and first.report["selection"]["map"] == "built", first.stdout + first.stderr
+    assert first.code == 0 and report(first)["selection"]["map"] == "built", first.stdout + first.stderr
 
     # The base moves on: a person changes price() (lines shift below it), adds a test file, changes the hidden module.
     moved = RATES.replace(
@@ -71,8 +72,8 @@ def test_a_map_updated_after_a_few_base_commits_equals_a_fresh_build(repo):
     )
     second = run_check(repo, "HEAD")
     assert second.code == 0, second.stdout + second.stderr
-    assert second.report["selection"]["map"] == "updated"
-    assert set(second.report["selection"]["selected"]) == {REMOTE}
+    assert report(second)["selection"]["map"] == "updated"
+    assert set(report(second)["selection"]["selected"]) == {REMOTE}
     base_tree = repo.git("rev-parse", "HEAD~1^{tree}").strip()
     updated_file = next(path for path in maps(repo) if path.name.startswith(base_tree))
     updated = records_of(updated_file)
@@ -81,7 +82,7 @@ def test_a_map_updated_after_a_few_base_commits_equals_a_fresh_build(repo):
     for older in maps(repo):
         older.unlink()
     third = run_check(repo, "HEAD")
-    assert third.report["selection"]["map"] == "built"
+    assert report(third)["selection"]["map"] == "built"
     built = records_of(next(path for path in maps(repo) if path.name.startswith(base_tree)))
     assert updated == built
     assert "tests/test_heavier.py::test_heavier" in updated["outcomes"]
