@@ -106,7 +106,7 @@ def test_the_default_policy_runs_only_the_tests_of_the_changed_function_and_a_wr
     wrong = RATES.replace('return 3 if zone == "remote" else 0', 'return 4 if zone == "remote" else 0')
     repo.commit(machine("Remote zones cost four"), {"src/parcelkit/rates.py": wrong})
     out = run_check(repo, "HEAD")
-    assert report(out)["selection"]["map"] == "built"  # a new base: its own map
+    assert report(out)["selection"]["map"] == "updated"  # a new base, one commit past the mapped one
     assert ran(out) == {REMOTE} and failed(out) == {REMOTE}
     assert out.code == 1 and report(out)["verdict"] == "block"
 
