@@ -82,7 +82,7 @@ def test_a_change_inside_a_function_picks_the_tests_that_ran_that_function():
         no_importers,
     )
     assert set(picks.node_ids) == {TEST_A}
-    assert picks.node_ids[TEST_A] == ["executed base_rate() changed at src/parcelkit/rates.py:8"]
+    assert picks.node_ids[TEST_A] == ["ran parcelkit.rates.base_rate, which the change modifies"]
     assert not picks.files
 
 
@@ -138,7 +138,7 @@ def test_a_new_function_picks_the_tests_that_executed_the_file():
         no_importers,
     )
     assert set(picks.node_ids) == {TEST_A, TEST_B, TEST_C}
-    assert "gets a new definition" in picks.node_ids[TEST_A][0]
+    assert picks.node_ids[TEST_A] == ["ran parcelkit.rates, which gets the new function insurance"]
 
 
 def test_added_and_modified_test_files_run_whole_and_base_failures_always_run():

@@ -15,7 +15,7 @@ import secrets
 import sys
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from typing import TextIO
 
 from verifier.models import Finding, MutantOutcome, Report, RunResult
@@ -131,11 +131,26 @@ def _selection(report: Report) -> list[str]:
         f"selection: {selection.reason}; {selection.left_out} of {selection.known_tests} known tests left out "
         f"(map: {selection.map_status}{shard})"
     ]
-    for key, reasons in sorted(selection.reasons.items())[:40]:
-        rows.append(f"  {key}: {'; '.join(reasons)}")
-    if len(selection.reasons) > 40:
-        rows.append(f"  ... and {len(selection.reasons) - 40} more")
+    groups = _reason_groups(selection.reasons)
+    for (reason, is_file), count in groups[:MAX_REASON_GROUPS]:
+        noun = ("test file" if is_file else "test") + ("" if count == 1 else "s")
+        rows.append(f"  {count} {noun}: {reason}")
+    if len(groups) > MAX_REASON_GROUPS:
+        rows.append(f"  ... {len(groups) - MAX_REASON_GROUPS} more reasons (the JSON report lists every test and why)")
     return rows
+
+
+MAX_REASON_GROUPS = 8
+
+
+def _reason_groups(reasons: Mapping[str, tuple[str, ...]]) -> list[tuple[tuple[str, bool], int]]:
+    """How many tests (node ids) and test files each reason chose, the largest groups first."""
+    counts: dict[tuple[str, bool], int] = {}
+    for key, why in reasons.items():
+        for reason in why:
+            group = (reason, "::" not in key)
+            counts[group] = counts.get(group, 0) + 1
+    return sorted(counts.items(), key=lambda item: (-item[1], item[0]))
 
 
 def _differential(run: RunResult) -> list[str]:

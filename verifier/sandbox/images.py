@@ -48,7 +48,7 @@ DEFAULT_MIRROR = "http://deb.debian.org/debian"
 MIRROR_ENV = "VERIFIER_DEBIAN_MIRROR"
 BUILD_DIR_ENV = "VERIFIER_BUILD_DIR"
 # Keep in step with pyproject.toml and sandbox_images/Dockerfile (a test checks the Dockerfiles).
-TOOL_REQUIREMENTS = ("pytest>=7.3,<10", "coverage>=7.2,<8")
+TOOL_REQUIREMENTS = ("pytest>=7.3,<10", "coverage>=7.2,<8", "pytest-xdist>=3.3,<4")
 VENV = "/opt/verifier-python"
 SYSTEM_PATH = "/usr/local/sbin:/usr/local/bin:/usr/sbin:/usr/bin:/sbin:/bin"
 PYTHON_LABEL = "verifier.python"

@@ -103,21 +103,49 @@ def tree_of(git: Git, revision: str) -> str:
 
 
 def environment_key(policy: Policy, backend: Backend) -> str:
-    """What besides the tree decides which lines the tests execute: interpreter, packages, sandbox, settings."""
-    from importlib import metadata
+    """What besides the tree decides which lines the tests execute: interpreter, packages, sandbox, settings.
 
+    The same for the commit hook, a manual check and CI on one interpreter with one set of packages: the
+    distributions are read from the interpreter's own site folders (what the sandboxed tests import), not
+    from this process's ``sys.path``, which the caller's folder, ``PYTHONPATH`` or a hook's doubled entries
+    change; each folder is resolved once, and each distribution counts once by its normalised name."""
     from verifier.testrun import harness as testrun
 
-    distributions = sorted(f"{d.metadata['Name']}=={d.version}" for d in metadata.distributions())
     facts = {
         "format": FORMAT,
         "python": [sys.version, platform.python_implementation(), platform.machine()],
-        "distributions": distributions,
+        "distributions": installed_distributions(),
         "backend": [backend.name, backend.environment()],
         "tests": [list(policy.test_paths), list(policy.pytest_args), list(policy.python_path)],
         "harness": testrun.harness_digest(),
     }
     return hashlib.sha256(json.dumps(facts, sort_keys=True).encode()).hexdigest()[:24]
+
+
+def site_folders() -> list[str]:
+    """The interpreter's site-packages folders (and the user's, when Python reads it), resolved, once each."""
+    import os
+    import site
+
+    folders = list(site.getsitepackages())
+    if site.ENABLE_USER_SITE:
+        folders.append(site.getusersitepackages())
+    resolved = (os.path.realpath(folder) for folder in folders if os.path.isdir(folder))
+    return list(dict.fromkeys(resolved))
+
+
+def installed_distributions() -> list[str]:
+    """``name==version`` of every distribution in the site folders, names normalised as the packaging
+    specifications do (PEP 503: runs of ``-``, ``_`` and ``.`` are one ``-``, lower case), sorted, unique."""
+    import re
+    from importlib import metadata
+
+    found = set()
+    for distribution in metadata.distributions(path=site_folders()):
+        name = distribution.metadata["Name"] if distribution.metadata else None
+        if name:
+            found.add(f"{re.sub(r'[-_.]+', '-', name).lower()}=={distribution.version}")
+    return sorted(found)
 
 
 # -- the cache --------------------------------------------------------------------------------------------------

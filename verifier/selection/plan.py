@@ -8,6 +8,12 @@ A test is selected when it could behave differently at head than at base:
   body stands for the whole function, so that a test that ran the function is selected even when the
   change is on a line it skipped. Lines the function ran at import time, outside any test, make it a
   module-level change;
+* the change adds a function or method the base lacks, and it ran the class that gets the method (any
+  of its methods) or the module that gets the function, or its file mentions the new name (a test file
+  runs whole; a module that mentions it, as ``getattr(self, "name", None)`` does, brings the tests that
+  ran that module). A new definition that cannot be trusted to be new is a module-level change: a name
+  Python calls by itself (``__eq__``), a name the base already binds there, a decorator that may record
+  it, a class with a base class or keywords, a method of a class no test ran a method of;
 * the change adds or modifies its test file (the whole file runs);
 * a module-level line of a file it depends on changed (a constant, an import, a decorator, a class
   body, a default argument): every test that executed the file and every test file that imports it,
@@ -17,7 +23,8 @@ A test is selected when it could behave differently at head than at base:
 What the map cannot see runs everything: a change to ``conftest.py``, configuration, fixtures' data or
 any other file the tests may read (the policy's ``selection.whole_suite_paths``, and every non-Python
 file outside ``selection.ignore_paths``). Without a map (not cached and not built), the policy says
-whether everything runs or the import graph alone chooses. A selection that comes out empty runs
+whether everything runs or the import graph alone chooses; a base a few commits ahead of a mapped one
+gets its map updated (:mod:`verifier.selection.update`). A selection that comes out empty runs
 everything too: the gate never passes a change because nothing looked at it.
 """
 
@@ -34,6 +41,7 @@ from verifier.models import INDEX, Change, FileChange, Policy, Selection
 from verifier.pathglob import matches_any
 from verifier.selection import impactmap
 from verifier.selection.impactmap import IMPORT_TIME, ImpactMap
+from verifier.selection.imports import dotted_name
 
 if TYPE_CHECKING:
     from verifier.gitio import Git
@@ -44,6 +52,11 @@ TEST_FILES = ("**/test_*.py", "**/*_test.py")
 MAX_REASONS = 3  # per test, in the report
 
 Importers = Callable[[str, str], set[str]]  # (revision side "base"|"head", path) -> files importing it
+Referrers = Callable[[str], set[str]]  # a name -> the files of the head tree that mention it
+
+
+def no_referrers(_name: str) -> set[str]:
+    return set()
 
 
 @dataclass
@@ -98,7 +111,9 @@ def select_tests(
     impact, status = obtain_map(git, change.base, policy, backend, say)
     if impact is None and settings.without_map == "all":
         return whole_suite(f"no who-tests-what map of the base revision ({status})", shard, status), None
-    picks = plan(change, impact, base_sources, head_sources, _importers(git, change, policy))
+    picks = plan(
+        change, impact, base_sources, head_sources, importers_for(git, change, policy), referrers_for(git, change.head)
+    )
     selection = to_selection(picks, impact, status, shard)
     if not selection.node_ids and not selection.files:
         return whole_suite("no test executed or imports what the change touches", shard, status, impact), impact
@@ -136,6 +151,15 @@ def obtain_map(
         return cached, "cached"
     if policy.selection.map_build != "always":
         return None, f"not cached; the policy's selection.map_build is '{policy.selection.map_build}'"
+    from verifier.selection import update
+
+    earlier = update.ancestor_with_map(git, base, environment)
+    if earlier is not None:
+        say(f"updating the who-tests-what map of {earlier[0][:12]}: the tests the commits since can affect, at base")
+        updated = update.update(git, earlier[0], earlier[1], base, policy, backend, environment)
+        if updated is not None:
+            impactmap.save(git, updated)
+            return updated, "updated"
     say("building the who-tests-what map: the whole suite at base, under coverage")
     built, run = impactmap.build(git, base, policy, backend, environment)
     if built is None:
@@ -171,6 +195,7 @@ def plan(
     base_sources: Mapping[str, str],
     head_sources: Mapping[str, str],
     importers: Importers,
+    referrers: Referrers = no_referrers,
 ) -> Picks:
     """The tests that can observe ``change``, each with its reasons."""
     picks = Picks()
@@ -181,7 +206,7 @@ def plan(
             if changed.path.endswith(".py"):
                 picks.add_files(_tests_among(importers("head", changed.path)), f"imports {changed.path}, a new file")
             continue
-        _pick_for_file(picks, changed, impact, base_sources, head_sources, importers)
+        _pick_for_file(picks, changed, impact, base_sources, head_sources, importers, referrers)
     if impact is not None:
         failing = [test for test, outcome in impact.outcomes.items() if outcome in ("failed", "error")]
         picks.add_tests(failing, "failed at base")
@@ -199,36 +224,195 @@ def _pick_for_file(
     base_sources: Mapping[str, str],
     head_sources: Mapping[str, str],
     importers: Importers,
+    referrers: Referrers = no_referrers,
 ) -> None:
     base_path = changed.old_path or changed.path
+    module = module_name(base_path)
     importing = _tests_among(importers("base", base_path))
     if impact is None or base_path not in impact.lines:
         why = "no map" if impact is None else "no test executed it at base"
-        picks.add_files(importing, f"imports {base_path}, which the change touches ({why})")
+        picks.add_files(importing, f"imports {module}, which the change touches ({why})")
         return
     if changed.status in ("deleted", "renamed"):
-        picks.add_tests(impact.tests_in_file(base_path), f"executed {base_path}, which the change {changed.status}")
-        picks.add_files(importing, f"imports {base_path}, which the change {changed.status}")
+        picks.add_tests(impact.tests_in_file(base_path), f"ran {module}, which the change {changed.status}")
+        picks.add_files(importing, f"imports {module}, which the change {changed.status}")
         if changed.status == "deleted":
             return
     base_text = base_sources.get(base_path, "")
     head_text = head_sources.get(changed.path, "")
+    where = Where(base_path, changed.path, module, base_text, head_text)
     for scope in touched_scopes(changed, base_text, head_text):
-        _pick_for_scope(picks, base_path, scope, impact, importing)
+        _pick_for_scope(picks, where, scope, impact, importing, referrers)
 
 
-def _pick_for_scope(picks: Picks, path: str, scope: Scope, impact: ImpactMap, importing: set[str]) -> None:
-    where = f"{path}:{scope.changed_line}"
+@dataclass(frozen=True)
+class Where:
+    """The changed file a scope belongs to: its base and head paths and texts, and its module name."""
+
+    base_path: str
+    head_path: str
+    module: str
+    base_text: str
+    head_text: str
+
+
+def _pick_for_scope(
+    picks: Picks, where: Where, scope: Scope, impact: ImpactMap, importing: set[str], referrers: Referrers
+) -> None:
+    path, module = where.base_path, where.module
     if scope.function is not None:
         contexts = impact.contexts_in(path, range(scope.function.body_start, scope.function.end + 1))
         if IMPORT_TIME not in contexts:
-            picks.add_tests(impact.tests_for(contexts), f"executed {scope.function.name}() changed at {where}")
+            reason = f"ran {module}.{scope.function.name}, which the change modifies"
+            picks.add_tests(impact.tests_for(contexts), reason)
             return
-    if scope.new_definition:
-        picks.add_tests(impact.tests_in_file(path), f"executed {path}, which gets a new definition at {where}")
+    if scope.new_definition and scope.new_name and _pick_for_new_definition(picks, where, scope, impact, referrers):
         return
-    picks.add_tests(impact.tests_in_file(path), f"executed {path}, whose module-level code changes at {where}")
-    picks.add_files(importing, f"imports {path}, whose module-level code changes at {where}")
+    picks.add_tests(impact.tests_in_file(path), f"ran {module}, whose module-level code changes")
+    picks.add_files(importing, f"imports {module}, whose module-level code changes")
+
+
+def _pick_for_new_definition(picks: Picks, where: Where, scope: Scope, impact: ImpactMap, referrers: Referrers) -> bool:
+    """A function or method the base lacks: the tests that ran its class (or its module) and the tests that
+    mention its name. False when that cannot be trusted (then the wide module-level rule applies): a name
+    Python calls implicitly (``__eq__``, ``__getattr__``), a name the base already binds there (the new
+    definition replaces an import or an assignment), or a class no test ran a method of."""
+    name = scope.new_name.rpartition(".")[2]
+    owner = scope.owner
+    if _is_special(name) or name in bound_names(where.base_text, owner.name if owner else None):
+        return False
+    if not plain_definition(where.head_text, scope.new_name):
+        return False
+    path, module = where.base_path, where.module
+    if owner is not None:
+        contexts = impact.contexts_in(path, range(owner.start, owner.end + 1)) - {IMPORT_TIME}
+        reached = impact.tests_for(contexts)
+        if not reached:
+            return False
+        picks.add_tests(reached, f"ran {module}.{owner.name}, which gets the new method {name}")
+    else:
+        picks.add_tests(impact.tests_in_file(path), f"ran {module}, which gets the new function {name}")
+    _pick_referrers(picks, where, name, impact, referrers)
+    return True
+
+
+def _pick_referrers(picks: Picks, where: Where, name: str, impact: ImpactMap, referrers: Referrers) -> None:
+    """The tests that can reach a new name by mentioning it: test files that name it run whole; a module
+    that names it (an existing ``getattr(self, "name", None)``, a call written beside the new definition)
+    brings the tests that ran it."""
+    reason = f"mentions {name}, which the change adds"
+    for path in sorted(referrers(name)):
+        if is_test_file(path):
+            picks.add_files([path], reason)
+        elif path != where.head_path:
+            picks.add_tests(impact.tests_in_file(path), f"ran {module_name(path)}, which {reason}")
+    if mentions(where.head_text, name) > 1:  # the definition itself is one mention
+        picks.add_tests(impact.tests_in_file(where.base_path), f"ran {where.module}, which {reason}")
+
+
+# Decorators that only wrap the function they are given (Python's docs, "Built-in Functions"; functools, abc).
+PLAIN_DECORATORS = frozenset({"property", "staticmethod", "classmethod", "cached_property", "abstractmethod"})
+
+
+def plain_definition(source: str, qualified: str) -> bool:
+    """Whether the definition ``qualified`` of ``source`` does nothing when Python runs its ``def`` or
+    ``class`` statement but bind a name: no decorator (a registry may record it) but the plain wrappers,
+    and for a class no base class, metaclass or keyword (``__init_subclass__`` may record it)."""
+    try:
+        tree = ast.parse(source)
+    except (SyntaxError, ValueError):
+        return False
+    body: list[ast.stmt] = tree.body
+    node: ast.stmt | None = None
+    for part in qualified.split("."):
+        node = next((n for n in body if isinstance(n, _DEFINITIONS) and n.name == part), None)
+        if node is None:
+            return False
+        body = node.body
+    assert isinstance(node, _DEFINITIONS)
+    for decorator in node.decorator_list:
+        named = decorator.attr if isinstance(decorator, ast.Attribute) else getattr(decorator, "id", None)
+        if named not in PLAIN_DECORATORS:
+            return False
+    if isinstance(node, ast.ClassDef):
+        simple_bases = all(isinstance(b, ast.Name) and b.id == "object" for b in node.bases)
+        return simple_bases and not node.keywords
+    return True
+
+
+_DEFINITIONS = (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef)
+
+
+def _is_special(name: str) -> bool:
+    return name.startswith("__") and name.endswith("__")
+
+
+def bound_names(source: str, class_name: str | None) -> set[str]:
+    """The names ``source`` binds at module level (``class_name`` None) or in one class's body: imports,
+    assignments, definitions. None of them is new, even when the change adds a ``def`` of that name."""
+    try:
+        tree = ast.parse(source)
+    except (SyntaxError, ValueError):
+        return set()
+    body: list[ast.stmt] = tree.body
+    for part in (class_name or "").split(".") if class_name else ():
+        found = next((n for n in body if isinstance(n, ast.ClassDef) and n.name == part), None)
+        if found is None:
+            return set()
+        body = found.body
+    names: set[str] = set()
+    for statement in body:
+        if isinstance(statement, (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef)):
+            names.add(statement.name)
+            continue
+        for node in _walk_scope(statement):
+            if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef)):
+                names.add(node.name)
+            elif isinstance(node, ast.alias):
+                names.add((node.asname or node.name).split(".")[0])
+            elif isinstance(node, ast.Name) and isinstance(node.ctx, ast.Store):
+                names.add(node.id)
+    return names
+
+
+def _walk_scope(node: ast.AST) -> Iterable[ast.AST]:
+    """``node`` and what it holds, without the bodies of the functions, classes and lambdas inside it
+    (their names are bound in a scope of their own)."""
+    yield node
+    if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef, ast.Lambda)):
+        return
+    for child in ast.iter_child_nodes(node):
+        yield from _walk_scope(child)
+
+
+def mentions(source: str, name: str) -> int:
+    """How often ``source`` mentions ``name``: as a name, an attribute, a definition or a string (``getattr``)."""
+    try:
+        tree = ast.parse(source)
+    except (SyntaxError, ValueError):
+        return 1 + source.count(name)  # unparsable: assume it does
+    count = 0
+    for node in ast.walk(tree):
+        if (
+            (isinstance(node, ast.Name) and node.id == name)
+            or (isinstance(node, ast.Attribute) and node.attr == name)
+            or (isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef)) and node.name == name)
+            or (isinstance(node, ast.Constant) and isinstance(node.value, str) and name in node.value)
+            or (isinstance(node, ast.alias) and name in (node.name.split(".")[-1], node.asname))
+            or (isinstance(node, ast.keyword) and node.arg == name)
+        ):
+            count += 1
+    return count
+
+
+SOURCE_ROOTS = ("src", "lib")  # the usual folders of a source layout, left out of a module's shown name
+
+
+def module_name(path: str) -> str:
+    """The dotted name a reader knows a file by (``src/parcelkit/rates.py`` -> ``parcelkit.rates``)."""
+    dotted = dotted_name(path)
+    first, _, rest = dotted.partition(".")
+    return (rest if first in SOURCE_ROOTS and rest else dotted) or path
 
 
 def is_test_file(path: str) -> bool:
@@ -261,6 +445,8 @@ class Scope:
     changed_line: int  # the line's number (base for removed lines, head for added ones)
     function: Function | None = None  # the base function whose body holds the change
     new_definition: bool = False  # a function or method the base does not have
+    new_name: str = ""  # the new definition's qualified name (empty: a new class, or not known)
+    owner: Function | None = None  # the base class that gets the new method (None: a module-level one)
 
 
 def touched_scopes(changed: FileChange, base_text: str, head_text: str) -> list[Scope]:
@@ -281,28 +467,55 @@ def touched_scopes(changed: FileChange, base_text: str, head_text: str) -> list[
 
 def _head_scope(line: int, head_functions: list[Function] | None, by_name: Mapping[str, Function]) -> Scope:
     """An added line's scope in base terms: the base function of the same name, else the nearest
-    enclosing function the base has; a function of its own that the base lacks is a new definition."""
+    enclosing function the base has; a function of its own that the base lacks is a new definition
+    (of the base class that holds it, or of the module)."""
     if head_functions is None:
         return Scope(line)  # head does not parse: treat as module-level (code.syntax reports it)
     inner = innermost(head_functions, line)
     if inner is None:
         header = _new_header(head_functions, line, by_name)
-        return Scope(line, new_definition=header)
+        if header is None:
+            return Scope(line)
+        return _new_scope(line, header, by_name)
     name = inner.name
     while name:
-        if name in by_name:
-            return Scope(line, function=by_name[name])
+        found = by_name.get(name)
+        if found is not None and not found.is_class:
+            return Scope(line, function=found)
+        if found is not None:
+            break
         name = name.rpartition(".")[0]
-    return Scope(line, new_definition=True)
+    return _new_scope(line, inner, by_name)
 
 
-def _new_header(head_functions: list[Function], line: int, by_name: Mapping[str, Function]) -> bool:
-    """Whether module-level ``line`` belongs to a function or class the base does not have (its ``def`` or
-    ``class`` line, decorators, or a new class's body): a new name no existing test can reach."""
-    for found in head_functions:
-        if found.start <= line <= found.end and (found.is_class or line < found.body_start):
-            return found.name not in by_name
-    return False
+def _new_scope(line: int, inner: Function, by_name: Mapping[str, Function]) -> Scope:
+    """The scope of a line of ``inner``, a head definition the base lacks: the outermost new definition
+    around it, owned by the base class that holds it (or by the module)."""
+    parts = inner.name.split(".")
+    for depth in range(1, len(parts) + 1):
+        prefix = ".".join(parts[:depth])
+        if prefix not in by_name:
+            owner = by_name.get(".".join(parts[: depth - 1])) if depth > 1 else None
+            if owner is not None and not owner.is_class:
+                return Scope(line, function=owner)
+            return Scope(line, new_definition=True, new_name=prefix, owner=owner)
+    return Scope(line, new_definition=True, new_name=inner.name)
+
+
+def _new_header(head_functions: list[Function], line: int, by_name: Mapping[str, Function]) -> Function | None:
+    """The head definition whose ``def`` or ``class`` line, decorators or (for a new class) body holds
+    module-level ``line``, when the base does not have it; None for a line of existing code."""
+    holding = [
+        found
+        for found in head_functions
+        if found.start <= line <= found.end and (found.is_class or line < found.body_start)
+    ]
+    for found in sorted(holding, key=lambda f: f.start, reverse=True):  # the innermost first
+        if found.is_class and line >= found.body_start and found.name in by_name:
+            return None  # a statement of an existing class's body: a class attribute, run at import
+        if line < found.body_start or found.is_class:
+            return found if found.name not in by_name else None
+    return None
 
 
 def _unique(scopes: list[Scope]) -> list[Scope]:
@@ -310,7 +523,7 @@ def _unique(scopes: list[Scope]) -> list[Scope]:
     kept = []
     for scope in scopes:
         whole = scope.function is not None or scope.new_definition
-        key = (scope.function, scope.new_definition) if whole else (scope.changed_line,)
+        key = (scope.function, scope.new_definition, scope.new_name, scope.owner) if whole else (scope.changed_line,)
         if key not in seen:
             seen.add(key)
             kept.append(scope)
@@ -354,7 +567,7 @@ def innermost(found: list[Function] | None, line: int) -> Function | None:
 # -- the import graph, read from git only when needed ------------------------------------------------------------
 
 
-def _importers(git: Git, change: Change, policy: Policy) -> Importers:
+def importers_for(git: Git, change: Change, policy: Policy) -> Importers:
     from verifier.selection.imports import build_graph
 
     graphs: dict[str, ImportGraph] = {}
@@ -366,6 +579,18 @@ def _importers(git: Git, change: Change, policy: Policy) -> Importers:
         return graphs[side].importers([path])
 
     return importers
+
+
+def referrers_for(git: Git, head: str) -> Referrers:
+    """Which head files mention a name (read in one batch, when a new definition first asks)."""
+    sources: dict[str, str] = {}
+
+    def referrers(name: str) -> set[str]:
+        if not sources:
+            sources.update(python_sources(git, head) or {"": ""})
+        return {path for path, text in sources.items() if name in text and mentions(text, name)}
+
+    return referrers
 
 
 def _cached_graph(git: Git, revision: str | None, build: Callable[[], ImportGraph]) -> ImportGraph:
