@@ -47,6 +47,7 @@ if TYPE_CHECKING:
     from verifier.gitio import Git
     from verifier.sandbox import Backend
     from verifier.selection.imports import ImportGraph
+    from verifier.selection.update import PickTests
 
 TEST_FILES = ("**/test_*.py", "**/*_test.py")
 MAX_REASONS = 3  # per test, in the report
@@ -156,7 +157,9 @@ def obtain_map(
     earlier = update.ancestor_with_map(git, base, environment)
     if earlier is not None:
         say(f"updating the who-tests-what map of {earlier[0][:12]}: the tests the commits since can affect, at base")
-        updated = update.update(git, earlier[0], earlier[1], base, policy, backend, environment)
+        updated = update.update(
+            git, earlier[0], earlier[1], base, policy, backend, environment, _tests_to_update(git, policy, base)
+        )
         if updated is not None:
             impactmap.save(git, updated)
             return updated, "updated"
@@ -187,6 +190,21 @@ def to_selection(picks: Picks, impact: ImpactMap | None, status: str, shard: tup
 
 
 # -- planning (pure: the change, the map and the import graph in, picks out) ----------------------------------
+
+
+def _tests_to_update(git: Git, policy: Policy, base: str) -> PickTests:
+    """What the map update re-runs: the tests the commits since the mapped ancestor can affect."""
+
+    def pick(
+        change: Change, old_map: ImpactMap, old_sources: Mapping[str, str], new_sources: Mapping[str, str]
+    ) -> Picks | None:
+        if whole_suite_trigger(change, policy):
+            return None
+        return plan(
+            change, old_map, old_sources, new_sources, importers_for(git, change, policy), referrers_for(git, base)
+        )
+
+    return pick
 
 
 def plan(

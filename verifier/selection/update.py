@@ -13,7 +13,7 @@ up: the caller builds the map from scratch, so an update is never less safe than
 from __future__ import annotations
 
 from collections.abc import Callable, Iterable, Mapping
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Protocol
 
 from verifier.errors import VerifierError
 from verifier.models import Change, FileChange, Policy, Selection
@@ -37,28 +37,44 @@ def ancestor_with_map(git: Git, base: str, environment: str) -> tuple[str, Impac
     return None
 
 
+# the selection's own planning (verifier.selection.plan, passed in: it calls this module): the tests the
+# commits between the two maps can affect, or None when they call for the whole suite
+class Picked(Protocol):
+    """What the update needs of the selection's picks."""
+
+    @property
+    def node_ids(self) -> Iterable[str]: ...
+
+    @property
+    def files(self) -> Iterable[str]: ...
+
+
+PickTests = Callable[[Change, ImpactMap, Mapping[str, str], Mapping[str, str]], "Picked | None"]
+
+
 def update(
-    git: Git, old: str, old_map: ImpactMap, base: str, policy: Policy, backend: Backend, environment: str
+    git: Git,
+    old: str,
+    old_map: ImpactMap,
+    base: str,
+    policy: Policy,
+    backend: Backend,
+    environment: str,
+    pick_tests: PickTests,
 ) -> ImpactMap | None:
     """``old_map`` (of commit ``old``) brought to ``base``; None when only a full build can be trusted."""
     from verifier.change.stage import RevisionSpec, read_change
-    from verifier.selection import plan as planning
 
     try:
         change = read_change(git, RevisionSpec(text=f"{old}..{base}"))
     except VerifierError:  # history the clone lacks, say: a full build still works
         return None
-    if change.base != git.resolve(old) or planning.whole_suite_trigger(change, policy):
+    if change.base != git.resolve(old):
         return None
     old_sources, new_sources = _sources(git, change)
-    picks = planning.plan(
-        change,
-        old_map,
-        old_sources,
-        new_sources,
-        planning.importers_for(git, change, policy),
-        planning.referrers_for(git, base),
-    )
+    picks = pick_tests(change, old_map, old_sources, new_sources)
+    if picks is None:
+        return None
     stale = set(picks.node_ids) | old_map.tests_defined_in([*picks.files, *_changed_paths(change)])
     rerun = Selection(whole_suite=False, node_ids=tuple(sorted(set(picks.node_ids))), files=tuple(sorted(picks.files)))
     fresh: dict[str, dict[int, tuple[str, ...]]] = {}
