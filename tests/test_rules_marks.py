@@ -11,7 +11,8 @@ import os
 import subprocess
 
 import pytest
-from conftest import AGENT, machine, run_check
+from conftest import AGENT, machine, run_check, test_sandbox
+from test_gate_docker_e2e import docker_ready  # noqa: F401  # the fixture that skips without an engine
 from test_rules_support import context_for, findings
 
 from verifier.demo.scratch import ScratchRepo
@@ -173,3 +174,44 @@ def test_gate_judges_a_machine_commit_that_only_deletes(repo: ScratchRepo) -> No
     assert out.report is not None, out.stderr
     weakened = [f["message"] for f in out.report["findings"] if f["rule"] == "tests.weakened"]
     assert weakened == ["test function test_negative deleted"] and out.code == 1
+
+
+GUARDED_RATES = RATES.replace("    return", "    if weight < 0:\n        raise ValueError(weight)\n    return")
+PINNED_TESTS = (
+    "import pytest\n\nfrom parcelkit.rates import rate\n\n\ndef test_rate():\n    assert rate(1) == 4.5\n\n\n"
+    "def test_negative():\n    with pytest.raises(ValueError):\n        rate(-1)\n"
+)
+
+
+def test_deleting_a_check_runs_the_tests_that_pin_it(repo: ScratchRepo) -> None:
+    """Attack: a machine commit only deletes the safety check (no added line, the test left alone). The
+    gate runs the tests anyway, and the human test that pins the check fails: BLOCK, not a silent pass."""
+    deleting_a_check_is_blocked(repo, None)
+
+
+@pytest.mark.docker
+def test_deleting_a_check_runs_the_tests_in_docker(repo: ScratchRepo, docker_ready: None) -> None:  # noqa: F811
+    deleting_a_check_is_blocked(repo, "docker")
+
+
+def deleting_a_check_is_blocked(repo: ScratchRepo, sandbox: str | None) -> None:
+    files = {"parcelkit/__init__.py": "", "parcelkit/rates.py": GUARDED_RATES, "tests/test_rates.py": PINNED_TESTS}
+    repo.commit("Start parcelkit", files)
+    sha = repo.commit(machine("Simplify rates"), {"parcelkit/rates.py": RATES})
+    out = run_check(repo, sha, sandbox=sandbox)
+    assert out.report is not None, out.stderr
+    assert out.report["sandbox"] == (sandbox or test_sandbox()), out.stderr
+    assert out.report["tests"]["failed_ids"] == ["tests/test_rates.py::test_negative"], out.stdout
+    assert out.code == 1
+
+
+def test_deleting_dead_code_passes(repo: ScratchRepo) -> None:
+    """Honest: a machine commit deletes a function nothing uses; the tests run, all pass, and so does the gate."""
+    dead = GUARDED_RATES + "\n\ndef legacy_rate(weight):\n    return 4.0 * weight\n"
+    files = {"parcelkit/__init__.py": "", "parcelkit/rates.py": dead, "tests/test_rates.py": PINNED_TESTS}
+    repo.commit("Start parcelkit", files)
+    sha = repo.commit(machine("Drop the unused legacy rate"), {"parcelkit/rates.py": GUARDED_RATES})
+    out = run_check(repo, sha)
+    assert out.report is not None, out.stderr
+    assert out.report["run"] is not None and out.report["run"]["status"] == "completed", out.stdout
+    assert out.code == 0 and out.report["findings"] == [], out.stdout

@@ -101,11 +101,11 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
 
     rules = RuleContext(change, provenance, policy, head_sources, base_sources, read_base=_base_reader(git, change))
     findings = apply_rules("static", rules)
-    if not provenance.machine_lines:
-        # a machine commit without added lines (a deletion, a scope matching nothing) or a mark written where
-        # the gate does not read it is still judged by the static rules (verifier.rules.marks and the rest)
+    if not provenance.machine_lines and not _machine_touched_code(change, provenance):
+        # a scope matching nothing, or a mark written where the gate does not read it, is still judged by the
+        # static rules (verifier.rules.marks and the rest); there is no machine-written code to run
         return _report(check, findings, notes=("no machine-written lines to verify",))
-    check.say(f"{provenance.machine_line_count} machine-written lines in {len(provenance.machine_lines)} files")
+    check.say(_what_is_judged(provenance))
     selection, run = options.premade if options.premade is not None else _select_and_run(check)
     coverage = _coverage(check, run)
     dynamic = RuleContext(
@@ -116,6 +116,19 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
     findings += apply_rules("mutation", replace(dynamic, mutation=mutation))
     notes = _sandbox_notes(run)
     return _report(check, findings, run=run, coverage=coverage, notes=notes, selection=selection, mutation=mutation)
+
+
+def _machine_touched_code(change: Change, provenance: Provenance) -> bool:
+    """Whether a machine commit changed a file the tests could notice, adding no line: a change that only
+    deletes (a safety check, say) still runs the tests, or removing a check would verify nothing."""
+    return any(path in provenance.machine_touched for f in change.files for path in (f.path, f.old_path) if path)
+
+
+def _what_is_judged(provenance: Provenance) -> str:
+    if not provenance.machine_lines:
+        return "machine-written deletions only: running the tests they may break"
+    files = len(provenance.machine_lines)
+    return f"{provenance.machine_line_count} machine-written lines in {files} files"
 
 
 def _mutation(check: CheckContext, run: RunResult, hidden: frozenset[tuple[str, int]]) -> MutationResult | None:
