@@ -265,6 +265,7 @@ def _coverage(check: CheckContext, run: RunResult) -> CoverageSummary | None:
     if run.status != "completed":
         return None
     from verifier.testrun.measure import summarise_coverage
+    from verifier.testrun.testfiles import classify_test_code
 
     policy = check.policy
     return summarise_coverage(
@@ -272,7 +273,7 @@ def _coverage(check: CheckContext, run: RunResult) -> CoverageSummary | None:
         run.coverage,
         check.head_sources,
         policy.coverage_threshold,
-        policy.coverage_exclude,
+        classify_test_code(run, policy.coverage_exclude),
         threshold_for=lambda path: settings_for_path(policy, path).coverage_threshold,
     )
 

@@ -67,14 +67,15 @@ def plan_mutants(
     """Every mutant of the executable machine-written lines of non-test code, with the tests to run it;
     none touching a ``hidden`` line (one that holds a credential-like literal: a report never quotes it)."""
     from verifier.mutation.plan import mutants_for_file
-    from verifier.pathglob import matches_any
     from verifier.rules.catalog import load_all
+    from verifier.testrun.testfiles import classify_test_code
     from verifier.verdict.settings import settings_for_path
 
     default_per_line = load_all()[RULE_ID].options["per_line"]
+    is_test_code = classify_test_code(run, policy.coverage_exclude)
     planned = []
     for path in sorted(provenance.machine_lines):
-        if not path.endswith(".py") or path not in sources or matches_any(path, policy.coverage_exclude):
+        if not path.endswith(".py") or path not in sources or is_test_code(path):
             continue
         per_line = int(settings_for_path(policy, path).option(RULE_ID, "per_line", default_per_line))
         lines = [line for line in provenance.machine_lines[path] if (path, line) not in hidden]
@@ -183,15 +184,16 @@ def plan_reverts(
     """For a change that modifies existing code and adds or changes tests: each new or changed
     machine-written test that executed any line of the modified file, to run with the file as it was at base (a test
     that still passes there does not show the change). The base text travels as the mutant's text."""
-    from verifier.pathglob import matches_any
+    from verifier.testrun.testfiles import classify_test_code
 
-    changed_tests = _changed_test_functions(provenance, policy, sources)
+    is_test_code = classify_test_code(run, policy.coverage_exclude)
+    changed_tests = _changed_test_functions(provenance, is_test_code, sources)
     if not changed_tests:
         return []
     planned: list[tuple[Mutant, tuple[str, ...]]] = []
     for file in change.files:
         path, old = file.path, file.old_path
-        if file.status != "modified" or not path.endswith(".py") or matches_any(path, policy.coverage_exclude):
+        if file.status != "modified" or not path.endswith(".py") or is_test_code(path):
             continue
         head, base = sources.get(path), base_sources.get(old or path)
         if head is None or base is None or head == base or path not in provenance.machine_lines:
@@ -204,15 +206,15 @@ def plan_reverts(
     return planned[:REVERTS_CAP]
 
 
-def _changed_test_functions(provenance: Provenance, policy: Policy, sources: Mapping[str, str]) -> set[str]:
+def _changed_test_functions(
+    provenance: Provenance, is_test_code: Callable[[str], bool], sources: Mapping[str, str]
+) -> set[str]:
     """Node ids (without parameters) of test functions with a machine-written line, in test files."""
     import ast
 
-    from verifier.pathglob import matches_any
-
     found: set[str] = set()
     for path, lines in provenance.machine_lines.items():
-        if not path.endswith(".py") or not matches_any(path, policy.coverage_exclude) or path not in sources:
+        if not path.endswith(".py") or not is_test_code(path) or path not in sources:
             continue
         try:
             tree = ast.parse(sources[path])

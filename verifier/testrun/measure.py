@@ -18,7 +18,6 @@ from dataclasses import dataclass
 from typing import Any
 
 from verifier.models import CoverageSummary, CoverageTarget, FileCoverage
-from verifier.pathglob import matches_any
 
 EXPORT_LIMITS = {"files": 200_000, "contexts": 2_000_000, "line": 10_000_000, "context_chars": 4096}
 
@@ -182,14 +181,15 @@ def summarise_coverage(
     measured: Mapping[str, FileCoverage],
     sources: Mapping[str, str],
     threshold: float,
-    exclude: tuple[str, ...] = (),
+    is_test_code: Callable[[str], bool] | None = None,
     threshold_for: Callable[[str], float] | None = None,
 ) -> CoverageSummary:
     """Count executable and covered machine-written statements per file.
 
     ``threshold_for`` gives a file's own threshold (a per-path policy override); a file whose threshold
     differs from ``threshold`` is judged on its own and kept out of the change-wide counts, so that
-    neither can hide the other's shortfall.
+    neither can hide the other's shortfall. ``is_test_code`` (:mod:`verifier.testrun.testfiles`) tells the
+    test files, which are not judged.
     """
     executable = covered = 0
     uncovered: dict[str, tuple[int, ...]] = {}
@@ -197,7 +197,7 @@ def summarise_coverage(
     partial: dict[str, dict[int, tuple[int, ...]]] = {}
     separate: list[CoverageTarget] = []
     for path, lines in sorted(machine_lines.items()):
-        if not path.endswith(".py") or matches_any(path, exclude) or path not in sources:
+        if not path.endswith(".py") or (is_test_code is not None and is_test_code(path)) or path not in sources:
             continue
         file = measured.get(path)
         statements, executed = _statements(file, sources[path])

@@ -1,0 +1,65 @@
+"""Which files are test code follows what pytest collected, not the name pattern alone.
+
+Attack: machine-written code hidden in a module named like a test (``parcelkit/test_pricing.py``, where
+pytest finds no test) used to be skipped by the coverage rule. Honest: a machine-written test file and its
+helper module next to it are still test code, not judged for coverage (nor mutated).
+The collection rules quoted (``test_*.py`` / ``*_test.py`` files) are pytest's documented defaults.
+"""
+
+from __future__ import annotations
+
+from conftest import machine, run_check
+
+from verifier.demo import scenario as demo
+from verifier.demo.scratch import ScratchRepo
+from verifier.models import RunResult
+from verifier.models import TestOutcome as Recorded  # not collected as a test class
+from verifier.testrun.testfiles import classify_test_code
+
+PATTERNS = ("tests/**", "**/test_*.py", "**/*_test.py", "**/conftest.py")
+BASE = {"parcelkit/__init__.py": "", "parcelkit/rates.py": demo.RATES, "tests/test_rates.py": demo.TEST_RATES}
+DISCOUNT = "def discount(total):\n    return total * 0.9\n"
+TEST = "from parcelkit.discount import discount\n\n\ndef test_discount():\n    assert discount(10) == 9\n"
+REFUND = "def refund(total):\n    if total < 0:\n        raise ValueError(total)\n    return -total\n"
+
+
+def run_of(*node_ids: str) -> RunResult:
+    tests = tuple(Recorded(node_id, "passed") for node_id in node_ids)
+    return RunResult("completed", "namespace", "namespace", 0, tests, {})
+
+
+def test_a_test_named_module_without_tests_is_code() -> None:
+    is_test = classify_test_code(run_of("tests/test_rates.py::test_rate"), PATTERNS)
+    assert not is_test("parcelkit/test_pricing.py")  # pytest collected nothing there
+    assert not is_test("tests/test_other.py")  # named like a test module, nothing collected from it
+    assert not is_test("parcelkit/rates.py")
+
+
+def test_collected_files_helpers_and_conftest_are_test_code() -> None:
+    is_test = classify_test_code(run_of("tests/test_rates.py::test_rate[1]"), PATTERNS)
+    assert is_test("tests/test_rates.py") and is_test("tests/helpers.py") and is_test("parcelkit/conftest.py")
+
+
+def test_code_hidden_in_a_test_named_module_is_judged(repo: ScratchRepo) -> None:
+    repo.commit("Start parcelkit", BASE)
+    hidden = "from parcelkit.test_pricing import refund\n\n\n" + DISCOUNT
+    files = {"parcelkit/discount.py": hidden, "parcelkit/test_pricing.py": REFUND, "tests/test_discount.py": TEST}
+    repo.commit(machine("Add a discount"), files)
+    out = run_check(repo, "HEAD~1..HEAD")
+    assert out.report is not None, out.stderr
+    uncovered = [f for f in out.report["findings"] if f["path"] == "parcelkit/test_pricing.py"]
+    assert out.code == 1 and uncovered, out.report["findings"]
+
+
+def test_machine_written_tests_helpers_and_conftest_pass(repo: ScratchRepo) -> None:
+    repo.commit("Start parcelkit", BASE)
+    helper = "def tenth_off(total):\n    return total - total / 10\n"
+    test = (
+        "from helpers import tenth_off\n\nfrom parcelkit.discount import discount\n\n\n"
+        "def test_discount():\n    assert discount(10) == tenth_off(10) == 9\n"
+    )
+    files = {"parcelkit/discount.py": DISCOUNT, "tests/helpers.py": helper, "tests/test_discount.py": test}
+    repo.commit(machine("Add a discount"), files)
+    out = run_check(repo, "HEAD~1..HEAD")
+    assert out.report is not None, out.stderr
+    assert out.code == 0 and out.report["findings"] == [], out.report["findings"]
