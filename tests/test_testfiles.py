@@ -1,9 +1,10 @@
-"""Which files are test code follows what pytest collected, not the name pattern alone.
+"""Which files are test code follows what pytest would collect, not the name pattern alone.
 
-Attack: machine-written code hidden in a module named like a test (``parcelkit/test_pricing.py``, where
-pytest finds no test) used to be skipped by the coverage rule. Honest: a machine-written test file and its
+Attack: machine-written code hidden in a module named like a test (``parcelkit/test_pricing.py``, which
+defines no test) used to be skipped by the coverage rule. Honest: a machine-written test file and its
 helper module next to it are still test code, not judged for coverage (nor mutated).
-The collection rules quoted (``test_*.py`` / ``*_test.py`` files) are pytest's documented defaults.
+The collection rules quoted (``test_*.py`` / ``*_test.py`` files, ``test`` functions, ``Test`` classes) are
+pytest's documented defaults.
 """
 
 from __future__ import annotations
@@ -12,8 +13,6 @@ from conftest import machine, run_check
 
 from verifier.demo import scenario as demo
 from verifier.demo.scratch import ScratchRepo
-from verifier.models import RunResult
-from verifier.models import TestOutcome as Recorded  # not collected as a test class
 from verifier.testrun.testfiles import classify_test_code
 
 PATTERNS = ("tests/**", "**/test_*.py", "**/*_test.py", "**/conftest.py")
@@ -23,21 +22,18 @@ TEST = "from parcelkit.discount import discount\n\n\ndef test_discount():\n    a
 REFUND = "def refund(total):\n    if total < 0:\n        raise ValueError(total)\n    return -total\n"
 
 
-def run_of(*node_ids: str) -> RunResult:
-    tests = tuple(Recorded(node_id, "passed") for node_id in node_ids)
-    return RunResult("completed", "namespace", "namespace", 0, tests, {})
-
-
 def test_a_test_named_module_without_tests_is_code() -> None:
-    is_test = classify_test_code(run_of("tests/test_rates.py::test_rate"), PATTERNS)
-    assert not is_test("parcelkit/test_pricing.py")  # pytest collected nothing there
-    assert not is_test("tests/test_other.py")  # named like a test module, nothing collected from it
+    sources = {"parcelkit/test_pricing.py": REFUND, "tests/test_rates.py": demo.TEST_RATES}
+    is_test = classify_test_code(PATTERNS, sources)
+    assert not is_test("parcelkit/test_pricing.py")  # pytest would collect nothing there
     assert not is_test("parcelkit/rates.py")
+    assert is_test("tests/test_rates.py")
 
 
-def test_collected_files_helpers_and_conftest_are_test_code() -> None:
-    is_test = classify_test_code(run_of("tests/test_rates.py::test_rate[1]"), PATTERNS)
-    assert is_test("tests/test_rates.py") and is_test("tests/helpers.py") and is_test("parcelkit/conftest.py")
+def test_helpers_conftest_and_test_classes_are_test_code() -> None:
+    sources = {"tests/test_units.py": "class TestUnits:\n    def test_kilo(self):\n        assert 1\n"}
+    is_test = classify_test_code(PATTERNS, sources)
+    assert is_test("tests/test_units.py") and is_test("tests/helpers.py") and is_test("parcelkit/conftest.py")
 
 
 def test_code_hidden_in_a_test_named_module_is_judged(repo: ScratchRepo) -> None:

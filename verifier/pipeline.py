@@ -273,7 +273,7 @@ def _coverage(check: CheckContext, run: RunResult) -> CoverageSummary | None:
         run.coverage,
         check.head_sources,
         policy.coverage_threshold,
-        classify_test_code(run, policy.coverage_exclude),
+        classify_test_code(policy.coverage_exclude, check.head_sources),
         threshold_for=lambda path: settings_for_path(policy, path).coverage_threshold,
     )
 

@@ -72,7 +72,7 @@ def plan_mutants(
     from verifier.verdict.settings import settings_for_path
 
     default_per_line = load_all()[RULE_ID].options["per_line"]
-    is_test_code = classify_test_code(run, policy.coverage_exclude)
+    is_test_code = classify_test_code(policy.coverage_exclude, sources)
     planned = []
     for path in sorted(provenance.machine_lines):
         if not path.endswith(".py") or path not in sources or is_test_code(path):
@@ -186,7 +186,7 @@ def plan_reverts(
     that still passes there does not show the change). The base text travels as the mutant's text."""
     from verifier.testrun.testfiles import classify_test_code
 
-    is_test_code = classify_test_code(run, policy.coverage_exclude)
+    is_test_code = classify_test_code(policy.coverage_exclude, sources)
     changed_tests = _changed_test_functions(provenance, is_test_code, sources)
     if not changed_tests:
         return []

@@ -1,45 +1,53 @@
-"""Which files are test code: what pytest collected, not a name pattern alone.
+"""Which files are test code: those pytest would collect tests from, not a name pattern alone.
 
 Coverage and the mutation stage judge code and leave tests alone. A name pattern by itself is a way out:
-code placed in ``mypackage/test_pricing.py`` (pytest collects nothing there) would be skipped by both. So a
-file counts as test code when it matches the policy's test patterns (``coverage.exclude``) *and* the run
-shows it is part of the tests: pytest collected a test from it, it is a ``conftest.py``, or it is a helper
-module (not named like a test module) in a folder pytest collected tests from.
+code placed in ``mypackage/test_pricing.py`` would be skipped by both. So a file matching the policy's
+test patterns (``coverage.exclude``) counts as test code only when it is a ``conftest.py``, a helper module
+(not named like a test module), or a test module that defines something pytest collects: a ``test``
+function or a ``Test`` class at module level (pytest's documented default ``python_functions`` and
+``python_classes``). A test-named module with no test in it is code, and judged as code.
+
+The answer depends on the committed source only, never on which tests a run (or a part of one) executed,
+so every part of a split run plans the same mutants.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable
+import ast
+from collections.abc import Callable, Mapping
 from pathlib import PurePosixPath
 
-from verifier.models import RunResult
 from verifier.pathglob import matches_any
 
 IsTestCode = Callable[[str], bool]
 
 
-def collected_files(run: RunResult | None) -> frozenset[str]:
-    """The files pytest collected the run's tests from (the file part of each node id)."""
-    if run is None:
-        return frozenset()
-    return frozenset(test.node_id.split("::", 1)[0] for test in run.tests)
-
-
-def classify_test_code(run: RunResult | None, patterns: tuple[str, ...]) -> IsTestCode:
+def classify_test_code(patterns: tuple[str, ...], sources: Mapping[str, str]) -> IsTestCode:
     """A predicate: is this repository path test code (kept out of coverage and mutants)?"""
-    files = collected_files(run)
-    folders = frozenset(str(PurePosixPath(path).parent) for path in files)
 
     def is_test_code(path: str) -> bool:
         if not matches_any(path, patterns):
             return False
         name = PurePosixPath(path).name
-        if path in files or name == "conftest.py":
+        if name == "conftest.py" or not _test_module_name(name):
             return True
-        # a helper next to the collected tests is test code; a test-named module pytest found no test in is not
-        return str(PurePosixPath(path).parent) in folders and not _test_module_name(name)
+        return path not in sources or defines_tests(sources[path])
 
     return is_test_code
+
+
+def defines_tests(source: str) -> bool:
+    """Whether pytest's default rules would collect a test from this module's top level."""
+    try:
+        tree = ast.parse(source)
+    except (SyntaxError, ValueError):
+        return True  # pytest reports it as a collection error, which fails the run
+    for node in tree.body:
+        if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef)) and node.name.startswith("test"):
+            return True
+        if isinstance(node, ast.ClassDef) and node.name.startswith("Test"):
+            return True
+    return False
 
 
 def _test_module_name(name: str) -> bool:
