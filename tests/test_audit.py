@@ -220,6 +220,16 @@ def test_policy_waivers_are_read_again_when_the_policy_changes(tmp_path: Path):
     assert run_audit(repo.path, window).expiring_waivers == ()
 
 
+def test_a_waiver_expired_by_the_window_end_is_listed_not_a_problem(tmp_path: Path):
+    """A lapsed waiver no longer breaks the policy: the audit lists it with the days since it expired."""
+    repo = ScratchRepo(tmp_path / "repo")
+    waiver = "waivers:\n  - {rule: code.syntax, path: parcelkit/**, reason: draft, owner: ada, expires: 2024-03-07}\n"
+    repo.commit("Start", {"verifier.yaml": waiver, "parcelkit/rates.py": _lines("rate", 2)}, date=_date("03-01"))
+    audit = run_audit(repo.path, AuditRequest(since="2024-03-04", until="2024-03-10", weeks=0, use_cache=False))
+    assert not audit.problems
+    assert [(e.waiver.path, e.days_left) for e in audit.expiring_waivers] == [("parcelkit/**", -3)]  # 03-07 to 03-10
+
+
 def test_agent_identities_come_from_the_trusted_policy(tmp_path: Path):
     repo = ScratchRepo(tmp_path / "repo")
     policy = f"version: 1\naudit:\n  agent_identities: [{AGENT_IDENTITY[1]}]\n"

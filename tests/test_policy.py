@@ -21,11 +21,12 @@ from verifier.policy.loader import (
     shipped_layer,
     shipped_policies,
 )
+from verifier.policy.notices import replaced_lists
 from verifier.rules import REGISTRY, Rule
 from verifier.rules.catalog import load_all
 from verifier.verdict.judge import judge_finding
 from verifier.verdict.settings import settings_for_path
-from verifier.verdict.waivers import waivers_used
+from verifier.verdict.waivers import waiver_notes, waivers_used
 
 
 def error_of(text: str) -> PolicyError:
@@ -292,18 +293,63 @@ def test_a_matching_waiver_turns_a_finding_into_info() -> None:
     assert waivers_used(policy, [hit, miss]) == (waiver,)
 
 
-def test_waiver_expiry_is_inclusive_and_a_lapsed_one_is_an_error() -> None:
+def test_waiver_expiry_is_inclusive_and_a_lapsed_one_waives_nothing() -> None:
     text = (
         "version: 1\nwaivers:\n  - rule: code.syntax\n    path: legacy/**\n    reason: generated code\n"
         "    owner: ada.okafor\n    expires: 2030-06-30\n"
     )
     layers = [shipped_layer("default"), Layer("v.yaml", parse_layer(text, "v.yaml"))]
-    assert build_policy(layers, today=date(2030, 6, 30)).waivers[0].expires == "2030-06-30"
-    with pytest.raises(PolicyError) as caught:
-        build_policy(layers, today=date(2030, 7, 1))
-    error = caught.value
-    assert (error.source, error.line, error.key) == ("v.yaml", 7, "waivers[0].expires")
-    assert "code.syntax" in str(error) and "legacy/**" in str(error) and "expired on 2030-06-30" in str(error)
+    last_day = build_policy(layers, today=date(2030, 6, 30))
+    assert last_day.waivers[0].expires == "2030-06-30" and last_day.expired_waivers == ()
+    lapsed = build_policy(layers, today=date(2030, 7, 1))
+    assert lapsed.waivers == () and [w.source for w in lapsed.expired_waivers] == ["v.yaml:3"]
+    on_its_path = Finding("code.syntax", "block", "invalid syntax", path="legacy/a.py")
+    judged = judge_finding(lapsed, "code.syntax", "block", False, on_its_path)
+    assert judged is not None and judged.severity == "block" and "waived_by" not in judged.details
+    assert judged.message == (
+        "invalid syntax (its waiver expired on 2030-06-30 (v.yaml:3); renew it with a later date or remove it)"
+    )
+    other_path = Finding("code.syntax", "block", "m", path="src/a.py")
+    elsewhere = judge_finding(lapsed, "code.syntax", "block", False, other_path)
+    assert elsewhere is not None and elsewhere.message == "m" and "waiver_expired" not in elsewhere.details
+    [note] = waiver_notes(lapsed, date(2030, 7, 1))
+    assert "'legacy/**'" in note and "v.yaml:3" in note and "expired on 2030-06-30" in note
+
+
+@pytest.mark.parametrize(
+    ("today", "warned", "days"),
+    [
+        (date(2030, 6, 15), False, ""),
+        (date(2030, 6, 16), True, "(in 14 days)"),
+        (date(2030, 6, 29), True, "(in 1 day)"),
+        (date(2030, 6, 30), True, "(its last day is today)"),
+    ],
+)
+def test_a_waiver_is_warned_about_from_fourteen_days_ahead(today: date, warned: bool, days: str) -> None:
+    text = "version: 1\nwaivers:\n  - {rule: code.syntax, path: gen/**, reason: r, owner: o, expires: 2030-06-30}\n"
+    policy = build_policy([shipped_layer("default"), Layer("v.yaml", parse_layer(text, "v.yaml"))], today=today)
+    assert len(policy.waivers) == 1 and (policy.expiring_waivers == policy.waivers) is warned
+    expected = (
+        f"the waiver of code.syntax for 'gen/**' (owner o, v.yaml:3) expires on 2030-06-30 {days}: "
+        "renew it or fix what it covers before then"
+    )
+    assert waiver_notes(policy, today) == ((expected,) if warned else ())
+
+
+def test_replaced_lists_name_the_dropped_entries_of_every_layer_below() -> None:
+    org = Layer("org.yaml", parse_layer("version: 1\nselection:\n  ignore_paths: ['**/*.md', 'site/**']\n", "org.yaml"))
+    repo = Layer("v.yaml", parse_layer("version: 1\nselection:\n  ignore_paths: ['site/**']\n", "v.yaml"))
+    found = replaced_lists([shipped_layer("default"), org, repo])
+    assert [(r.key, r.where, r.replaced) for r in found] == [
+        ("selection.ignore_paths", "org.yaml:3", f"shipped:default.yaml:{_line_of_default('  ignore_paths:')}"),
+        ("selection.ignore_paths", "v.yaml:3", "org.yaml:3"),
+    ]
+    assert found[1].dropped == ("**/*.md",) and "site/**" not in found[0].dropped
+
+
+def _line_of_default(needle: str) -> int:
+    text = (shipped_dir() / "default.yaml").read_text()
+    return text[: text.index(needle)].count("\n") + 1
 
 
 # -- numbers and the size of messages ------------------------------------------------------------------

@@ -7,9 +7,11 @@ import json
 import os
 import subprocess
 import sys
+from datetime import datetime, timedelta, timezone
 from pathlib import Path
 
 import pytest
+import yaml
 from conftest import ROOT, machine, run_check
 
 from verifier.demo import scenario as demo
@@ -17,6 +19,7 @@ from verifier.demo.scratch import ScratchRepo
 from verifier.errors import PolicyError
 from verifier.gitio import Git
 from verifier.policy.loader import load_policy, shipped_dir
+from verifier.rules.catalog import load_all
 
 BASE_FILES = {
     "parcelkit/__init__.py": "",
@@ -235,11 +238,102 @@ def test_a_waiver_added_by_the_change_counts_for_nothing(repo: ScratchRepo) -> N
     assert out.report["waivers_used"] == [] and out.report["policy"] == "shipped default policy"
 
 
-def test_an_expired_waiver_is_a_policy_error(repo: ScratchRepo) -> None:
-    _, sha = waiver_repo(repo, "2020-01-31")
+def utc_today_plus(days: int) -> str:
+    """A date ``days`` after today (UTC, the day the gate judges waivers by), as a policy file writes it."""
+    return (datetime.now(timezone.utc).date() + timedelta(days=days)).isoformat()
+
+
+def test_an_expired_waiver_no_longer_hides_a_finding_on_its_own_path(repo: ScratchRepo) -> None:
+    """Attack: the assistant's broken legacy module leans on a waiver that lapsed; the finding blocks again."""
+    base, sha = waiver_repo(repo, "2020-01-31")
     out = run_check(repo, sha)
-    assert out.code == 2 and "Traceback" not in out.stderr
-    line = line_of("version: 1\n" + WAIVER, "expires")
-    assert f":verifier.yaml:{line}: key 'waivers[0].expires'" in out.stderr
-    assert "code.syntax" in out.stderr and "expired on 2020-01-31" in out.stderr
-    assert out.report == {**out.report, "verdict": "error", "exit_code": 2}
+    assert out.code == 1 and out.report is not None and out.report["verdict"] == "block", out.stdout + out.stderr
+    [finding] = [f for f in out.report["findings"] if f["rule"] == "code.syntax"]
+    line = line_of("version: 1\n" + WAIVER, "- rule")
+    source = f"{base[:12]}:verifier.yaml:{line}"
+    assert (finding["path"], finding["severity"]) == ("legacy/tariff.py", "block")
+    assert f"its waiver expired on 2020-01-31 ({source})" in finding["message"]
+    assert finding["details"]["waiver_expired"]["owner"] == "ada.okafor" and "waived_by" not in finding["details"]
+    assert out.report["waivers_used"] == []
+    assert any("legacy/**" in note and "expired on 2020-01-31" in note for note in out.report["notes"])
+    assert "Traceback" not in out.stderr
+
+
+def test_another_path_passes_when_a_waiver_has_expired(repo: ScratchRepo) -> None:
+    """Honest: a waiver for legacy/ lapsed; a tested change elsewhere is judged normally and passes."""
+    repo.commit(
+        "Start parcelkit", {**BASE_FILES, "verifier.yaml": "version: 1\n" + WAIVER.format(expires="2020-01-31")}
+    )
+    sha = repo.commit(
+        machine("Volumetric weight"), {"parcelkit/volume.py": demo.VOLUME, "tests/test_volume.py": demo.TEST_VOLUME}
+    )
+    out = run_check(repo, sha)
+    assert out.code == 0 and out.report is not None and out.report["verdict"] == "pass", out.stdout + out.stderr
+    assert any("legacy/**" in note and "expired on 2020-01-31" in note for note in out.report["notes"])
+    checked = verifier("-C", str(repo.path), "policy", "check")
+    assert checked.returncode == 0 and ": valid (" in checked.stdout, checked.stderr
+    assert "warning: the waiver of code.syntax for 'legacy/**'" in checked.stdout
+    assert "expired on 2020-01-31" in checked.stdout
+
+
+def test_a_waiver_expiring_within_two_weeks_is_warned_about(repo: ScratchRepo) -> None:
+    """Honest: the waiver still applies (exit 0), and the check and policy check say when it runs out."""
+    soon, later = utc_today_plus(5), utc_today_plus(30)
+    far = WAIVER.replace("code.syntax", "patch.size").replace("legacy/**", "docs/**").format(expires=later)
+    policy = "version: 1\n" + WAIVER.format(expires=soon) + far.removeprefix("waivers:\n")
+    base = repo.commit("Start parcelkit", {**BASE_FILES, "verifier.yaml": policy})
+    sha = repo.commit(machine("Legacy tariff module"), {"legacy/tariff.py": BROKEN})
+    out = run_check(repo, sha)
+    assert out.code == 0 and out.report is not None and out.report["verdict"] == "pass", out.stdout + out.stderr
+    warned = [note for note in out.report["notes"] if "expires on" in note]
+    source = f"{base[:12]}:verifier.yaml:{line_of(policy, '- rule')}"
+    assert warned == [
+        f"the waiver of code.syntax for 'legacy/**' (owner ada.okafor, {source}) expires on {soon} (in 5 days): "
+        "renew it or fix what it covers before then"
+    ]
+    checked = verifier("-C", str(repo.path), "policy", "check")
+    assert checked.returncode == 0, checked.stderr
+    assert "warning: the waiver of code.syntax for 'legacy/**'" in checked.stdout and soon in checked.stdout
+    assert "docs/**" not in checked.stdout  # 30 days ahead: no warning yet
+
+
+def test_policy_check_and_show_report_a_list_that_replaces_a_default(repo: ScratchRepo) -> None:
+    """The shipped default excludes test files in four globs; a repository listing one of them drops three."""
+    shipped = yaml.safe_load((shipped_dir() / "default.yaml").read_text())["coverage"]["exclude"]
+    policy = 'version: 1\ncoverage:\n  exclude: ["tests/**", "generated/**"]\n'
+    repo.commit("Policy", {"verifier.yaml": policy})
+    dropped = [glob for glob in shipped if glob != "tests/**"]
+    assert dropped  # the shipped default has more than tests/**: otherwise this test proves nothing
+    checked = verifier("-C", str(repo.path), "policy", "check")
+    assert checked.returncode == 0 and ": valid (" in checked.stdout, checked.stderr
+    [notice] = [line for line in checked.stdout.splitlines() if line.startswith("notice:")]
+    default_line = line_of((shipped_dir() / "default.yaml").read_text(), "  exclude:")
+    assert f"verifier.yaml:3: coverage.exclude replaces the list of shipped:default.yaml:{default_line}" in notice
+    assert all(json.dumps(glob) in notice for glob in dropped)
+    assert "exclude: " + json.dumps(["tests/**", "generated/**", *dropped]) in notice
+    text = verifier("-C", str(repo.path), "policy", "show")
+    assert text.returncode == 0 and notice.split(": ", 2)[2] in text.stdout
+    data = json.loads(verifier("-C", str(repo.path), "policy", "show", "--format", "json").stdout)
+    [replaced] = data["replaced_lists"]
+    assert (replaced["key"], replaced["dropped"]) == ("coverage.exclude", dropped)
+
+
+def test_a_list_that_keeps_the_defaults_gives_no_notice(repo: ScratchRepo) -> None:
+    """Honest: every default listed again, plus one of the repository's own: nothing is dropped, no notice."""
+    shipped = yaml.safe_load((shipped_dir() / "default.yaml").read_text())["coverage"]["exclude"]
+    repo.commit("Policy", {"verifier.yaml": f"version: 1\ncoverage:\n  exclude: {json.dumps([*shipped, 'gen/**'])}\n"})
+    checked = verifier("-C", str(repo.path), "policy", "check")
+    assert checked.returncode == 0 and ": valid (" in checked.stdout and "notice:" not in checked.stdout
+    data = json.loads(verifier("-C", str(repo.path), "policy", "show", "--format", "json").stdout)
+    assert data["replaced_lists"] == []
+
+
+def test_a_rule_list_option_replacing_its_default_names_the_adding_option(repo: ScratchRepo) -> None:
+    protected = load_all()["paths.protected"].options["paths"]
+    repo.commit("Policy", {"verifier.yaml": "version: 1\nrules:\n  paths.protected:\n    paths: [deploy/**]\n"})
+    checked = verifier("-C", str(repo.path), "policy", "check")
+    assert checked.returncode == 0, checked.stderr
+    [notice] = [line for line in checked.stdout.splitlines() if line.startswith("notice:")]
+    assert "rules.paths.protected.paths replaces the list of the rule's default" in notice
+    assert json.dumps("verifier.yaml") in notice and "deploy/**" in protected  # a dropped one and a kept one
+    assert "rules.paths.protected.extra, which adds to the default" in notice

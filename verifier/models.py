@@ -144,7 +144,9 @@ class Policy:
     overrides: tuple[
         PathOverride, ...
     ] = ()  # in order; a later one wins (see verifier.verdict.settings.settings_for_path)
-    waivers: tuple[Waiver, ...] = ()
+    waivers: tuple[Waiver, ...] = ()  # the waivers in force on the day the policy was read
+    expired_waivers: tuple[Waiver, ...] = ()  # past their date: they waive nothing, their findings count again
+    expiring_waivers: tuple[Waiver, ...] = ()  # of ``waivers``, those expiring soon (a warning ahead of time)
     agent_identities: tuple[str, ...] = ()  # emails of assistants whose unmarked commits the audit counts
     files: tuple[str, ...] = ()  # the repository's files (at base) this policy is built from: verifier.yaml, extends
     selection: SelectionSettings = field(default_factory=lambda: SelectionSettings())

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field, replace
+from datetime import datetime, timezone
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -35,7 +36,7 @@ from verifier.policy.loader import load_policy
 from verifier.provenance.attribution import attribute, has_mark_text
 from verifier.verdict.decision import decide
 from verifier.verdict.settings import enabled_anywhere, settings_for_path
-from verifier.verdict.waivers import waived_by, waivers_used
+from verifier.verdict.waivers import waived_by, waiver_notes, waivers_used
 
 if TYPE_CHECKING:
     from verifier.sandbox import Backend
@@ -318,7 +319,7 @@ def _report(
         coverage=coverage,
         findings=tuple(findings),
         sources=_shown_sources(check, findings),
-        notes=notes,
+        notes=(*notes, *waiver_notes(check.policy, datetime.now(timezone.utc).date())),
         waivers_used=waivers_used(check.policy, findings),
         selection=selection,
         mutation=mutation,

@@ -239,7 +239,10 @@ def _policy_facts(
         policy = load_policy(git, end, today=day)
     except VerifierError as error:
         return (), (), [f"the trusted policy at the window's end could not be read: {error.message}"]
-    waivers = tuple(WaiverInfo(w.rule, w.path, w.reason, w.owner, str(w.expires)) for w in policy.waivers)
+    waivers = tuple(
+        WaiverInfo(w.rule, w.path, w.reason, w.owner, str(w.expires))
+        for w in (*policy.waivers, *policy.expired_waivers)
+    )
     identities = policy.agent_identities
     if cache_file is not None:
         cache.save_marshal(

@@ -3,11 +3,17 @@
 from __future__ import annotations
 
 import argparse
+from datetime import datetime, timezone
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from verifier.cli.check import add_org_policy_option
 from verifier.cli.rules import show_rules
 from verifier.errors import ExitCode, UsageError
+
+if TYPE_CHECKING:
+    from verifier.models import Policy
+    from verifier.policy.parse import Layer
 
 NAME = "policy"
 
@@ -42,13 +48,25 @@ def check_file(args: argparse.Namespace) -> int:
     target = args.file if args.file is not None else root / POLICY_FILE
     if not target.is_file():
         raise UsageError(f"no policy file {target}", hint="name one: verifier policy check FILE")
-    policy = build_policy(file_layers(target, root, args.org_policy))
+    layers = file_layers(target, root, args.org_policy)
+    policy = build_policy(layers)
     print(
         f"{target}: valid (coverage threshold {policy.coverage_threshold:g}%, "
         f"wall limit {policy.limits.wall_seconds:g}s, {len(policy.overrides)} override(s), "
         f"{len(policy.waivers)} waiver(s))"
     )
+    print(_notices(layers, policy), end="")
     return ExitCode.PASS
+
+
+def _notices(layers: list[Layer], policy: Policy) -> str:
+    """The notices of a valid policy, one a line: lists that replace a default, waivers past or near their date."""
+    from verifier.policy.notices import replaced_lists
+    from verifier.verdict.waivers import waiver_notes
+
+    lines = [f"notice: {replaced.message}" for replaced in replaced_lists(layers)]
+    lines += [f"warning: {note}" for note in waiver_notes(policy, datetime.now(timezone.utc).date())]
+    return "".join(f"{line}\n" for line in lines)
 
 
 def show(args: argparse.Namespace) -> int:
@@ -56,10 +74,14 @@ def show(args: argparse.Namespace) -> int:
     from verifier.gitio import Git
     from verifier.policy.loader import build_policy, policy_layers
     from verifier.policy.view import render_show, render_show_json
+    from verifier.verdict.waivers import waiver_notes
 
     git = Git(Git(args.repo).toplevel())
     base = git.resolve("HEAD") if git.has_commits() else None
     layers = policy_layers(git, base, args.org_policy)
-    build_policy(layers)  # the same checks as a real run (an expired waiver is an error here too)
-    print(render_show_json(layers) if args.format == "json" else render_show(layers), end="")
+    policy = build_policy(layers)  # the same checks as a real run
+    if args.format == "json":
+        print(render_show_json(layers, waiver_notes(policy, datetime.now(timezone.utc).date())), end="")
+    else:
+        print(render_show(layers) + _notices(layers, policy), end="")
     return ExitCode.PASS

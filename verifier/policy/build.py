@@ -1,16 +1,19 @@
 """Building the typed :class:`~verifier.models.Policy` from validated layers: merged key by key, later
-layers winning, ``overrides`` and ``waivers`` joined; an expired waiver is a :class:`PolicyError`."""
+layers winning, ``overrides`` and ``waivers`` joined. A waiver past its date is set apart (it waives
+nothing, and the findings it covered count again); one expiring within :data:`WAIVER_NOTICE_DAYS` is
+listed too, so the check and ``verifier policy check`` can warn about it ahead of time."""
 
 from __future__ import annotations
 
 from collections.abc import Iterable, Mapping
-from datetime import date, datetime, timezone
+from datetime import date, datetime, timedelta, timezone
 from typing import Any
 
 from verifier.models import Limits, PathOverride, Policy, RuleSetting, SelectionSettings, Waiver
-from verifier.policy.parse import Layer, error_at
+from verifier.policy.parse import Layer
 
 JOINED_KEYS = ("overrides", "waivers")  # lists that later layers extend instead of replacing
+WAIVER_NOTICE_DAYS = 14  # a waiver expiring within this many days is warned about
 
 
 def merge_layers(layers: Iterable[Mapping[str, Any]], top: bool = True) -> dict[str, Any]:
@@ -34,7 +37,8 @@ def describe_source(layers: list[Layer]) -> str:
 
 
 def build_policy(layers: list[Layer], today: date | None = None) -> Policy:
-    """Merge the layers into the typed :class:`Policy`; an expired waiver is a :class:`PolicyError`."""
+    """Merge the layers into the typed :class:`Policy`; waivers past their date (``today``, UTC by default)
+    go to ``expired_waivers``, not ``waivers``."""
     merged = merge_layers(layer.data for layer in layers)
 
     def get(section: str, key: str) -> Any:
@@ -42,8 +46,9 @@ def build_policy(layers: list[Layer], today: date | None = None) -> Policy:
 
     limits = merged["limits"]
     rules, options = _rule_values(merged.get("rules", {}))
-    waivers = tuple(_waiver(entry) for entry in merged.get("waivers", []))
-    _refuse_expired(waivers, merged.get("waivers", []), today or datetime.now(timezone.utc).date())
+    day = today or datetime.now(timezone.utc).date()
+    every_waiver = [_waiver(entry) for entry in merged.get("waivers", [])]
+    waivers = tuple(w for w in every_waiver if not _expired(w, day))
     return Policy(
         source=describe_source(layers),
         coverage_threshold=float(get("coverage", "threshold")),
@@ -66,6 +71,8 @@ def build_policy(layers: list[Layer], today: date | None = None) -> Policy:
         rule_options=options,
         overrides=tuple(_override(entry) for entry in merged.get("overrides", [])),
         waivers=waivers,
+        expired_waivers=tuple(w for w in every_waiver if _expired(w, day)),
+        expiring_waivers=tuple(w for w in waivers if _expires_within(w, day, WAIVER_NOTICE_DAYS)),
         selection=_selection(merged.get("selection", {})),
         files=tuple(layer.repo_path for layer in layers if layer.repo_path is not None),
         agent_identities=tuple(getattr(merged.get("audit", {}).get("agent_identities"), "value", ())),
@@ -116,15 +123,10 @@ def _waiver(entry: Mapping[str, Any]) -> Waiver:
     )
 
 
-def _refuse_expired(waivers: tuple[Waiver, ...], entries: list[Mapping[str, Any]], today: date) -> None:
-    """A waiver is valid through its expiry date; after it, the policy is broken until someone renews
-    or removes the waiver (a silent lapse would either keep blocking for no stated reason or, worse,
-    tempt people to drop the gate)."""
-    for waiver, entry in zip(waivers, entries, strict=True):
-        if date.fromisoformat(waiver.expires) < today:
-            raise error_at(
-                entry["expires"],
-                f"waivers[{entry['_at'].value}].expires",
-                f"the waiver of {waiver.rule} for '{waiver.path}' (owner {waiver.owner}) expired on "
-                f"{waiver.expires}; renew it with a later date or remove it",
-            )
+def _expired(waiver: Waiver, today: date) -> bool:
+    """A waiver applies through its expiry date; from the day after, it waives nothing."""
+    return date.fromisoformat(waiver.expires) < today
+
+
+def _expires_within(waiver: Waiver, today: date, days: int) -> bool:
+    return date.fromisoformat(waiver.expires) <= today + timedelta(days=days)

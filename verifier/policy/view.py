@@ -100,10 +100,15 @@ def render_show(layers: list[Layer]) -> str:
     return "\n".join(lines) + "\n"
 
 
-def render_show_json(layers: list[Layer]) -> str:
+def render_show_json(layers: list[Layer], waiver_notes: tuple[str, ...] = ()) -> str:
+    """The effective policy as data; ``replaced_lists`` are the lists that drop entries of a default."""
+    from verifier.policy.notices import replaced_lists
+
     data = {
         "layers": [layer.label for layer in layers],
         "values": [{"key": r.key, "value": _plain(r.value), "from": r.origin} for r in effective_values(layers)],
+        "replaced_lists": [replaced.as_data() for replaced in replaced_lists(layers)],
+        "waiver_notes": list(waiver_notes),
     }
     return json.dumps(data, indent=2, default=str) + "\n"
 

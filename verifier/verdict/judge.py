@@ -1,5 +1,6 @@
 """Each finding's severity, decided in one place: the rule's setting at the finding's path (per-path
-overrides included), then a waiver (the finding becomes ``info``, saying who waived it until when), then
+overrides included), then a waiver (the finding becomes ``info``, saying who waived it until when; a waiver
+past its date waives nothing, and the finding says it lapsed), then
 the caps: a failure that already happens at base warns (unless the policy blocks those too), and a
 finding that says it may at most warn never blocks.
 
@@ -16,7 +17,7 @@ from verifier.models import Finding, Policy, RuleSetting
 from verifier.rules import Rule, RuleContext
 from verifier.rules.catalog import load_all, run_rules
 from verifier.verdict.settings import enabled_anywhere, settings_for_path
-from verifier.verdict.waivers import waiver_for, waiver_record
+from verifier.verdict.waivers import expired_waiver_for, lapsed_note, waiver_for, waiver_record
 
 
 def apply_rules(stage: str, context: RuleContext) -> list[Finding]:
@@ -57,9 +58,18 @@ def judge_finding(policy: Policy, rule_id: str, default: RuleSetting, fixed: boo
         return None
     waiver = None if fixed else waiver_for(policy, finding)
     if waiver is None:
-        return replace(finding, severity=setting)
+        return _lapsed(policy, replace(finding, severity=setting))
     details = {**finding.details, "waived_by": waiver_record(waiver), "waived_severity": setting}
     return replace(finding, severity="info", details=details)
+
+
+def _lapsed(policy: Policy, finding: Finding) -> Finding:
+    """The finding, saying so when an expired waiver would have covered it."""
+    lapsed = expired_waiver_for(policy, finding)
+    if lapsed is None:
+        return finding
+    details = {**finding.details, "waiver_expired": waiver_record(lapsed)}
+    return replace(finding, message=f"{finding.message} ({lapsed_note(lapsed)})", details=details)
 
 
 def _pre_existing(policy: Policy, registered: Rule, finding: Finding) -> Finding:

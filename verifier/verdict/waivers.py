@@ -1,8 +1,11 @@
-"""Waivers: which of the trusted policy's owned, dated exceptions covers a finding."""
+"""Waivers: which of the trusted policy's owned, dated exceptions covers a finding, which expired waiver
+would have covered it (its finding counts again, saying so), and the notes about waivers past or near
+their date."""
 
 from __future__ import annotations
 
 from collections.abc import Callable, Iterable, Mapping
+from datetime import date
 
 from verifier.models import Finding, Policy, Waiver
 from verifier.pathglob import matches_any
@@ -15,6 +18,44 @@ def waiver_for(policy: Policy, finding: Finding) -> Waiver | None:
         if waiver.rule == finding.rule and _covers(waiver.path, finding):
             return waiver
     return None
+
+
+def expired_waiver_for(policy: Policy, finding: Finding) -> Waiver | None:
+    """The first expired waiver that would have covered ``finding``: the finding is judged as any other,
+    and says that its waiver has lapsed."""
+    for waiver in policy.expired_waivers:
+        if waiver.rule == finding.rule and _covers(waiver.path, finding):
+            return waiver
+    return None
+
+
+def lapsed_note(waiver: Waiver) -> str:
+    """What a finding an expired waiver no longer covers adds to its message."""
+    return f"its waiver expired on {waiver.expires} ({waiver.source}); renew it with a later date or remove it"
+
+
+def waiver_notes(policy: Policy, today: date | None = None) -> tuple[str, ...]:
+    """One note per waiver past its date and per waiver expiring soon, naming its rule, path and date."""
+    expired = [
+        f"the waiver of {w.rule} for '{w.path}' (owner {w.owner}, {w.source}) expired on {w.expires}: "
+        "findings there count again; renew it with a later date or remove it"
+        for w in policy.expired_waivers
+    ]
+    expiring = [
+        f"the waiver of {w.rule} for '{w.path}' (owner {w.owner}, {w.source}) expires on {w.expires}"
+        f"{_days_left(w, today)}: renew it or fix what it covers before then"
+        for w in policy.expiring_waivers
+    ]
+    return (*expired, *expiring)
+
+
+def _days_left(waiver: Waiver, today: date | None) -> str:
+    if today is None:
+        return ""
+    left = (date.fromisoformat(waiver.expires) - today).days
+    if left == 0:
+        return " (its last day is today)"
+    return f" (in {left} day{'' if left == 1 else 's'})"
 
 
 def waived_by(policy: Policy) -> Callable[[Finding], dict[str, str] | None]:
