@@ -212,7 +212,7 @@ def test_every_format_is_written_and_the_exit_is_zero_without_matplotlib(history
     assert done.stderr.count("verifier: wrote ") == 4
 
 
-def test_the_readme_audit_line_works_after_the_readme_install(history, tmp_path: Path):  # noqa: F811
+def test_the_readme_audit_line_needs_no_extra(history, tmp_path: Path):  # noqa: F811
     """The README's weekly-audit command, as written there, without matplotlib or any extra."""
     repo, _c = history
     lines = [line for line in (ROOT / "README.md").read_text().splitlines() if line.startswith("verifier audit ")]
