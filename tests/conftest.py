@@ -134,3 +134,16 @@ def processes_carrying(marker: str) -> list[int]:
             except OSError:
                 continue
     return found
+
+
+def run_audit_cli(repo: ScratchRepo | Path, *args: str, env: dict | None = None) -> subprocess.CompletedProcess[str]:
+    """Run ``verifier audit`` as a real process on the checkout's code, with only the system PATH beside it
+    (``env`` adds to or overrides that); return the finished process with its text output."""
+    path = repo.path if isinstance(repo, ScratchRepo) else repo
+    return subprocess.run(
+        [sys.executable, "-m", "verifier", "-C", str(path), "audit", *args],
+        capture_output=True,
+        text=True,
+        env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin", **(env or {})},
+        check=False,
+    )

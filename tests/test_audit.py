@@ -11,7 +11,7 @@ from pathlib import Path
 
 import pytest
 
-from tests.conftest import ROOT, machine
+from tests.conftest import ROOT, machine, run_audit_cli
 from verifier.audit.build import AuditRequest, run_audit
 from verifier.audit.model import FilePatch
 from verifier.audit.patches import parse_patch
@@ -262,35 +262,10 @@ def test_cli_formats(history, tmp_path: Path):
     repo, c = history
     before = repo.git("for-each-ref") + repo.git("status", "--porcelain")
     out = tmp_path / "out"
-    done = subprocess.run(
-        [
-            sys.executable,
-            "-m",
-            "verifier",
-            "-C",
-            str(repo.path),
-            "audit",
-            "--since",
-            "2024-03-04",
-            "--until",
-            "2024-03-10",
-            "--weeks",
-            "2",
-            "--agent-email",
-            AGENT_IDENTITY[1],
-            "--format",
-            "json",
-            "--format",
-            "csv",
-            "--format",
-            "markdown",
-            "--output",
-            str(out),
-        ],
-        capture_output=True,
-        text=True,
-        env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"},
-        check=False,
+    done = run_audit_cli(
+        repo,
+        *("--since", "2024-03-04", "--until", "2024-03-10", "--weeks", "2", "--agent-email", AGENT_IDENTITY[1]),
+        *("--format", "json", "--format", "csv", "--format", "markdown", "--output", str(out)),
     )
     assert done.returncode == 0, done.stderr
     report = json.loads((out / "audit.json").read_text())
@@ -325,12 +300,7 @@ def test_cli_formats(history, tmp_path: Path):
 
 def test_bad_dates_are_usage_errors(history):
     repo, _c = history
-    done = subprocess.run(
-        [sys.executable, "-m", "verifier", "-C", str(repo.path), "audit", "--since", "last tuesday"],
-        capture_output=True,
-        text=True,
-        env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"},
-    )
+    done = run_audit_cli(repo, "--since", "last tuesday")
     assert done.returncode == 2 and "is not a date" in done.stderr and "Traceback" not in done.stderr
 
 
@@ -373,26 +343,12 @@ def test_recheck_runs_the_gate_and_writes_the_note(tmp_path: Path):
         },
         date=_date("03-05"),
     )
-    command = [
-        sys.executable,
-        "-m",
-        "verifier",
-        "-C",
-        str(repo.path),
-        "audit",
-        "--since",
-        "2024-03-04",
-        "--until",
-        "2024-03-10",
-        "--format",
-        "json",
-    ]
-    env = {"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"}
-    before = json.loads(subprocess.run(command, capture_output=True, text=True, env=env, check=True).stdout)
-    assert before["totals"]["unverified"] == 1
-    after = subprocess.run(
-        [*command, "--recheck", "--sandbox", test_sandbox()], capture_output=True, text=True, env=env, check=True
-    )
+    window = ("--since", "2024-03-04", "--until", "2024-03-10", "--format", "json")
+    first = run_audit_cli(repo, *window)
+    assert first.returncode == 0, first.stderr
+    assert json.loads(first.stdout)["totals"]["unverified"] == 1
+    after = run_audit_cli(repo, *window, "--recheck", "--sandbox", test_sandbox())
+    assert after.returncode == 0, after.stderr
     report = json.loads(after.stdout)
     assert report["totals"]["unverified"] == 0 and report["commits"][0]["verdict"] == "pass"
     note = json.loads(repo.git("notes", f"--ref={NOTES}", "show", sha))  # the note git holds now
@@ -545,10 +501,9 @@ def test_every_format_says_checked_and_passed_apart(tmp_path: Path):
     assert _git(repo.path, "push", "-q", "origin", "feature").returncode != 0
     window = _window()
     out = tmp_path / "out"
-    done = subprocess.run(
-        [sys.executable, "-m", "verifier", "-C", str(repo.path), "audit", "--ref", "feature", "--since",
-         str(window.since), "--until", str(window.until), "--weeks", "0", "--format", "all", "--output", str(out)],
-        capture_output=True, text=True, env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"},
+    done = run_audit_cli(
+        repo, "--ref", "feature", "--since", str(window.since), "--until", str(window.until), "--weeks", "0",
+        "--format", "all", "--output", str(out),
     )  # fmt: skip
     assert done.returncode == 0, done.stderr
     report = json.loads((out / "audit.json").read_text())

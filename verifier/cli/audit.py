@@ -93,15 +93,16 @@ def run(args: argparse.Namespace) -> int:
 def _write_reports(audit: Audit, formats: list[str], output: Path | None) -> None:
     from verifier.audit.report import SUFFIX, render
 
+    texts = {fmt: render(audit, fmt) for fmt in formats}  # every format first: a failure leaves no partial set
     if output is None:
-        for fmt in formats:
-            print(render(audit, fmt), end="")
+        for text in texts.values():
+            print(text, end="")
         return
     targets = (
         [(formats[0], output)] if len(formats) == 1 else [(fmt, output / f"audit.{SUFFIX[fmt]}") for fmt in formats]
     )
     for fmt, target in targets:
-        write_atomically(target, render(audit, fmt))
+        write_atomically(target, texts[fmt])
         print(f"verifier: wrote {target}", file=sys.stderr)
 
 
