@@ -24,7 +24,15 @@ TERN = "tern-coder/1.4"
 ELDER = "ledger-helper/0.9"  # only ever checked by a verifier that wrote format-1 notes (no mutant counts)
 WINDOW = ("--since", "2024-03-04", "--until", "2024-03-10", "--weeks", "1")
 
+# a team accepts the survivors of the weak commit's last line (a human's waiver, read from the trusted base)
+WAIVER = (
+    "version: 1\n"
+    "waivers:\n  - rule: tests.mutant-survived\n    path: freight/pallet.py:7\n"
+    "    reason: no surcharge and a zero surcharge mean the same to the invoice\n"
+    "    owner: mira.santos\n    expires: 2099-12-31\n"
+)
 START = {
+    "verifier.yaml": WAIVER,
     "freight/__init__.py": "",
     "tests/__init__.py": "",
     "tests/test_start.py": "def test_start():\n    assert 2 * 2 == 4\n",
@@ -162,6 +170,7 @@ def test_the_notes_carry_the_counts_of_the_checks_own_report(checked):
         note = json.loads(repo.git("notes", f"--ref={NOTES}", "show", c[key]))  # git's own note reader
         assert _shown(note["checks"][-1]["mutants"]) == _expected(counts[key])
     assert counts["weak"]["survived"] > 0 and counts["weak"]["score"] < 80  # the assistant's weak tests
+    assert counts["weak"]["accepted"] >= 1  # the waived line's survivors
     assert counts["strong"]["score"] >= 80 and counts["early"]["score"] >= 80
 
 
@@ -176,6 +185,7 @@ def test_per_agent_and_week_the_audit_equals_each_checks_report(checked):
     window = report["totals"]["mutants"]
     assert window["killed"] == counts["weak"]["killed"] + counts["strong"]["killed"]
     assert window["survived"] == counts["weak"]["survived"] + counts["strong"]["survived"]
+    assert window["accepted"] == counts["weak"]["accepted"] + counts["strong"]["accepted"]
     assert window["checks"] == 2 and report["totals"]["mutation_no_data"] == 1
     assert report["trend"][-1]["mutants"] == window  # the trend's last period is the window
     assert _shown(report["trend"][0]["mutants"]) == _expected(counts["early"])
@@ -245,3 +255,16 @@ def test_counts_that_are_not_counts_are_no_data(tmp_path: Path):
     report = _audit_json(repo)
     assert report["totals"]["mutants"] is None and report["totals"]["mutation_no_data"] == 1
     assert report["commits"][0]["mutants"] is None and report["commits"][0]["status"] == "pass"
+
+
+def test_the_page_with_mutation_charts_renders_in_chromium(checked, tmp_path: Path):
+    from tests.test_audit_html import _chromium, _dump_dom, _root
+
+    chromium = _chromium()
+    repo, _c, _counts = checked
+    page = tmp_path / "audit.html"
+    done = run_audit_cli(repo, *WINDOW, "--format", "html", "--output", str(page))
+    assert done.returncode == 0, done.stderr
+    root = _root(_dump_dom(chromium, page, tmp_path / "profile"))
+    assert 'data-audit-ready="1"' in root and "data-audit-error" not in root, root
+    assert 'data-audit-charts="4"' in root  # the two trend charts and one per week with mutation data
