@@ -9,8 +9,10 @@ accepted, score), and git's own note reader (``git notes show``) for what a note
 from __future__ import annotations
 
 import csv
+import html
 import io
 import json
+import re
 from pathlib import Path
 
 import pytest
@@ -268,3 +270,26 @@ def test_the_page_with_mutation_charts_renders_in_chromium(checked, tmp_path: Pa
     root = _root(_dump_dom(chromium, page, tmp_path / "profile"))
     assert 'data-audit-ready="1"' in root and "data-audit-error" not in root, root
     assert 'data-audit-charts="4"' in root  # the two trend charts and one per week with mutation data
+
+
+def test_an_agent_name_with_markup_is_escaped_in_the_mutation_table_and_chart(tmp_path: Path):
+    """The agent comes from the commit's trailer, which anyone writes: in the page it is text, never markup."""
+    from verifier.report import notes
+
+    hostile = "<script>document.documentElement.setAttribute('data-injected','1')</script>"
+    repo = ScratchRepo(tmp_path / "repo")
+    repo.commit("Start the freight tables", START, date=_date("03-01"))
+    sha = repo.commit(machine("Add the parcel surcharge", hostile), _files("parcel", "parcel", True), _date("03-05"))
+    entry = {"checked_at": "2024-03-05T13:00:00Z", "how": "ci", "skipped": False, "verdict": "pass", "findings": [],
+             "waivers": [], "range": {"base": None, "head": sha, "commits": 1, "verdict": "pass", "findings": []},
+             "mutants": {"killed": 3, "survived": 1, "accepted": 0, "score": 75.0}}  # fmt: skip
+    repo.git("notes", f"--ref={NOTES}", "add", "-m", json.dumps(notes.appended(None, sha, entry)), sha)
+    page_file = tmp_path / "audit.html"
+    done = run_audit_cli(repo, *WINDOW, "--format", "html", "--output", str(page_file))
+    assert done.returncode == 0, done.stderr
+    page = page_file.read_text()
+    assert hostile not in page and "&lt;script&gt;document" in page
+    assert _table_rows(page, "week from") == [["2024-03-04", hostile, "1", "0", "3", "1", "0", "75%"]]
+    chart = page.split('<figure class="chart" id="chart-mutation-2024-03-04">', 1)[1].split("</figure>", 1)[0]
+    bar = re.search(r'<g class="bar"><title>(.*?)</title>', chart)
+    assert bar is not None and html.unescape(bar.group(1)) == f"{hostile}: 75%"  # Python's own unescaping
