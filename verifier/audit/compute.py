@@ -7,7 +7,8 @@ from __future__ import annotations
 
 import bisect
 from collections import Counter, defaultdict
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import replace
 from datetime import date, datetime, timezone
 from typing import Any
 
@@ -15,6 +16,7 @@ from verifier.audit.authorship import authorship
 from verifier.audit.model import (
     DAY,
     REVERT,
+    AgentWeek,
     Audit,
     AuditCommit,
     CommitLines,
@@ -22,6 +24,7 @@ from verifier.audit.model import (
     Group,
     History,
     LogCommit,
+    MutantCounts,
     Period,
     Revert,
     Settings,
@@ -29,7 +32,7 @@ from verifier.audit.model import (
 )
 from verifier.audit.replay import line_facts
 from verifier.audit.window import iso, parse_iso
-from verifier.report.notes import NoteRecord, read_record
+from verifier.report.notes import NoteRecord, latest_check, read_record
 
 VERIFIED_VERDICTS = ("pass", "warn", "block")
 
@@ -41,16 +44,19 @@ def compute_audit(history: History, settings: Settings | None = None) -> Audit:
         history.lines if history.lines is not None else line_facts(history.commits, history.agent_emails, history.end)
     )
     reverts, reverted_by = _reverts(history, facts)
-    rows = {
-        c.sha: _row(c, facts[c.sha], history.notes.get(c.sha), settings.churn_days, reverted_by.get(c.sha))
-        for c in history.commits
-        if facts[c.sha].agent is not None
-    }
+    rows = _count_mutants_once(
+        {
+            c.sha: _row(c, facts[c.sha], history.notes.get(c.sha), settings.churn_days, reverted_by.get(c.sha))
+            for c in history.commits
+            if facts[c.sha].agent is not None
+        }
+    )
     in_window = [c for c in history.commits if c.time >= history.since]
     window_rows = [rows[c.sha] for c in in_window if c.sha in rows]
     ordered = sorted(window_rows, key=lambda r: r.date, reverse=True)
     ordered.sort(key=lambda r: {"unverified": 0, "blocked-merged": 1}.get(r.status, 2))
     window = _period(history.since, history.until, in_window, rows, facts)
+    trend = _trend(history, rows, facts, settings.weeks, window)
     return Audit(
         ref=history.ref,
         end=history.end,
@@ -63,8 +69,9 @@ def compute_audit(history: History, settings: Settings | None = None) -> Audit:
         waivers_by_rule=_waiver_counts(window_rows),
         expiring_waivers=_expiring(history.waivers, history.until, settings.expiry_days),
         reverts=tuple(r for r in reverts if parse_iso(r.date) >= history.since),
-        trend=_trend(history, rows, facts, settings.weeks, window),
+        trend=trend,
         problems=history.problems,
+        mutation=_agent_weeks(history, rows, trend),
     )
 
 
@@ -125,7 +132,61 @@ def _row(
         checked_how=newest.how if newest else None,
         range_findings=newest.range_findings if newest else (),
         check_key=(str(newest.range_base), str(newest.range_head), newest.checked_at) if newest else (),
+        mutants=_mutants_of(note),
     )
+
+
+def _mutants_of(note: Mapping[str, Any] | None) -> MutantCounts | None:
+    """The newest entry's mutant counts (verifier.report.notes: ``mutants``); None when it has none or
+    they are not counts: an older note, a check without the mutation stage, a skipped entry."""
+    newest = latest_check(note) if note is not None else None
+    counts = newest.get("mutants") if newest is not None and newest.get("skipped") is not True else None
+    if not isinstance(counts, Mapping):
+        return None
+    values = [counts.get(key) for key in ("killed", "survived", "accepted")]
+    numbers = [v for v in values if type(v) is int and v >= 0]  # bool is not a count
+    if len(numbers) != len(values):
+        return None
+    killed, survived, accepted = numbers
+    return MutantCounts(killed, survived, accepted)
+
+
+def _count_mutants_once(rows: Mapping[str, AuditCommit]) -> dict[str, AuditCommit]:
+    """Mark, for each check with mutant counts, the one row that carries them into the totals: the
+    check's head commit when it is a row, else the newest row the check covered (every commit of a
+    checked range holds a copy of the whole change's counts)."""
+    by_check: dict[tuple[str, ...], list[AuditCommit]] = defaultdict(list)
+    for row in rows.values():
+        if row.mutants is not None:
+            by_check[row.check_key].append(row)
+    carriers = set()
+    for key, covered in by_check.items():
+        head = next((r for r in covered if r.sha == key[1]), None)
+        carriers.add((head or max(covered, key=lambda r: (r.date, r.sha))).sha)
+    return {sha: replace(row, mutants_counted=True) if sha in carriers else row for sha, row in rows.items()}
+
+
+def _summed_mutants(rows: Iterable[AuditCommit]) -> MutantCounts | None:
+    """The carried counts of ``rows`` summed; None when no row has mutation data."""
+    with_data = [r for r in rows if r.mutants is not None]
+    if not with_data:
+        return None
+    return sum((r.mutants for r in with_data if r.mutants and r.mutants_counted), MutantCounts(checks=0))
+
+
+def _agent_weeks(history: History, rows: Mapping[str, AuditCommit], trend: Sequence[Period]) -> tuple[AgentWeek, ...]:
+    """Per trend week (the window last) and per agent: the commits, those with mutation data, the counts."""
+    found = []
+    for period in trend:
+        start, stop = parse_iso(period.since), parse_iso(period.until)
+        grouped: dict[str, list[AuditCommit]] = defaultdict(list)
+        for commit in history.commits:
+            if start <= commit.time < stop and commit.sha in rows:
+                grouped[rows[commit.sha].agent].append(rows[commit.sha])
+        for agent, mine in sorted(grouped.items()):
+            with_data = sum(1 for r in mine if r.mutants is not None)
+            found.append(AgentWeek(agent, period.since, period.until, len(mine), with_data, _summed_mutants(mine)))
+    return tuple(found)
 
 
 def _problem(record: NoteRecord | None) -> str | None:
@@ -171,6 +232,8 @@ def _period(
         blocked_merged=sum(1 for r in mine if r.status == "blocked-merged"),
         passed=sum(1 for r in mine if r.passed),
         skipped_at_commit=sum(1 for r in mine if r.at_commit == "skipped"),
+        mutants=_summed_mutants(mine),
+        mutation_no_data=sum(1 for r in mine if r.mutants is None),
     )
 
 

@@ -14,6 +14,13 @@ note at all leaves the commit *unverified* (fail closed). Apart from its status,
 commit time* when no entry of its note comes from a commit hook that ran: a later range check that passed
 it does not hide that. Findings are counted once: a commit's own findings on that commit, the whole
 change's facts once per check.
+
+Mutants (killed, survived, accepted by a waiver) come from the newest entry of a commit's note, like its
+status. An entry's counts are the mutation stage's for the whole checked change, so they are counted once
+per check: on the check's head commit when it is a machine commit of the span, else on the newest machine
+commit the check covered (its agent and week get them). A commit whose newest entry has no counts (an older
+note, a check without the mutation stage, a skipped or unreadable record) has *no mutation data*: it
+counts apart, never as zero survivors.
 """
 
 from __future__ import annotations
@@ -34,6 +41,13 @@ DEFINITIONS = {
     "blocked-merged": "on the branch although the newest check's verdict on its own lines was block",
     "skipped at commit time": "no check by the commit hook ran on it (skipped, bypassed or not installed), "
     "whatever a later check found",
+    "mutants killed / survived / accepted": "from the newest check of each commit's note: faulty versions of its "
+    "machine-written lines that a test caught (timeouts and crashes included), that every test let through, "
+    "and survivors a waiver accepts; a check's counts cover its whole change and are counted once, on its head "
+    "commit (else the newest commit it covered), in that commit's agent and week",
+    "mutation score": "killed share of the killed and surviving mutants (accepted ones left out)",
+    "no mutation data": "the newest check recorded no mutant counts (an older note, the stage off, skipped or "
+    "unreadable): counted apart, never as zero survivors",
 }
 REVERT = re.compile(r"This reverts commit ([0-9a-f]{7,40})")  # the message git revert writes
 AT_COMMIT = ("checked", "skipped", "unknown")  # unknown: only format-1 notes, which did not say how they ran
@@ -125,6 +139,30 @@ class Settings:
 
 
 @dataclass(frozen=True)
+class MutantCounts:
+    """The mutation stage's counts, as one check recorded them or summed over checks."""
+
+    killed: int = 0  # timeouts and crashes included
+    survived: int = 0  # not accepted by a waiver
+    accepted: int = 0  # survivors a waiver accepts
+    checks: int = 1  # how many checks' counts these are
+
+    @property
+    def score(self) -> float | None:
+        """Killed share of the killed and surviving mutants (the stage's own arithmetic), None when none."""
+        judged = self.killed + self.survived
+        return None if not judged else round(100.0 * self.killed / judged, 2)
+
+    def __add__(self, other: MutantCounts) -> MutantCounts:
+        return MutantCounts(
+            self.killed + other.killed,
+            self.survived + other.survived,
+            self.accepted + other.accepted,
+            self.checks + other.checks,
+        )
+
+
+@dataclass(frozen=True)
 class AuditCommit:
     """One machine-written commit of the window."""
 
@@ -153,6 +191,8 @@ class AuditCommit:
     checked_how: str | None = None  # how the newest check ran (verifier.report.notes.HOW)
     range_findings: tuple[Mapping[str, Any], ...] = ()  # the newest check's facts of the whole change
     check_key: tuple[str, ...] = ()  # which check the newest entry was (range and time): counts its facts once
+    mutants: MutantCounts | None = None  # the newest check's counts (its whole change); None: no mutation data
+    mutants_counted: bool = False  # True: this commit carries its check's counts into the totals
 
     @property
     def checked(self) -> bool:
@@ -180,6 +220,8 @@ class Period:
     blocked_merged: int
     passed: int = 0
     skipped_at_commit: int = 0
+    mutants: MutantCounts | None = None  # summed once per check; None: no machine commit with mutation data
+    mutation_no_data: int = 0  # machine commits without mutation data
 
     @property
     def machine_share(self) -> float | None:
@@ -207,6 +249,22 @@ class Group:
     unverified: int
     blocked_merged: int
     reverted: int
+
+
+@dataclass(frozen=True)
+class AgentWeek:
+    """The mutants of one agent's commits in one trend week (or the window, the last one)."""
+
+    agent: str
+    since: str
+    until: str
+    commits: int
+    with_data: int  # commits whose newest check recorded mutant counts
+    mutants: MutantCounts | None  # counted once per check (see DEFINITIONS); None: no commit with data
+
+    @property
+    def no_data(self) -> int:
+        return self.commits - self.with_data
 
 
 @dataclass(frozen=True)
@@ -244,6 +302,7 @@ class Audit:
     trend: tuple[Period, ...]  # oldest first; the last one is the window
     problems: tuple[str, ...] = ()
     notes_ref: str = DEFAULT_NOTES_REF
+    mutation: tuple[AgentWeek, ...] = ()  # per trend week (oldest first, the window last), then per agent
 
     @property
     def attention(self) -> tuple[AuditCommit, ...]:

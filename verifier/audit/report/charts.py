@@ -10,7 +10,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from verifier.audit.model import Period
+from verifier.audit.model import AgentWeek, Period
 from verifier.audit.report.numbers import percent
 
 WIDTH = 500
@@ -91,4 +91,21 @@ def trend_charts(trend: Sequence[Period]) -> tuple[Chart, ...]:
             "week starting",
             [(p.since[5:10], p.verified_share) for p in trend],
         ),
+    )
+
+
+def mutation_charts(rows: Sequence[AgentWeek]) -> tuple[Chart, ...]:
+    """One small chart per week with mutation data: a bar per agent, its mutation score."""
+    weeks: dict[str, list[AgentWeek]] = {}
+    for row in rows:
+        weeks.setdefault(row.since, []).append(row)
+    return tuple(
+        bar_chart(
+            f"chart-mutation-{since[:10]}",
+            f"Mutation score, week from {since[:10]} (%)",
+            "agent",
+            [(r.agent, r.mutants.score if r.mutants else None) for r in mine],
+        )
+        for since, mine in weeks.items()
+        if any(r.mutants is not None for r in mine)
     )

@@ -2,14 +2,16 @@
 
 ``checked`` (yes: the gate has a record that judged the commit's own lines) and ``passed`` (yes: that
 verdict was pass or warn) are separate columns, as is ``at_commit_time`` (checked, skipped or unknown):
-see verifier.audit.model.DEFINITIONS."""
+see verifier.audit.model.DEFINITIONS. The ``mutants_*`` columns are empty when the commit has no mutation
+data; they hold its newest check's counts of the whole checked change, and ``mutants_counted`` says whether
+this row carries them into the totals (a check's counts are counted once)."""
 
 from __future__ import annotations
 
 import csv
 import io
 
-from verifier.audit.model import Audit
+from verifier.audit.model import Audit, AuditCommit
 
 COLUMNS = (
     "sha",
@@ -35,6 +37,11 @@ COLUMNS = (
     "range_findings",
     "waivers",
     "reverted_by",
+    "mutants_killed",
+    "mutants_survived",
+    "mutants_accepted",
+    "mutation_score",
+    "mutants_counted",
 )
 
 
@@ -68,6 +75,15 @@ def render(audit: Audit) -> str:
                 len(c.range_findings),
                 len(c.waivers),
                 c.reverted_by or "",
+                *_mutant_cells(c),
             ]
         )
     return out.getvalue()
+
+
+def _mutant_cells(commit: AuditCommit) -> list[object]:
+    counts = commit.mutants
+    if counts is None:
+        return ["", "", "", "", ""]
+    score = "" if counts.score is None else counts.score
+    return [counts.killed, counts.survived, counts.accepted, score, "yes" if commit.mutants_counted else "no"]

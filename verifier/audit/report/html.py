@@ -15,7 +15,7 @@ from functools import lru_cache
 import jinja2
 
 from verifier.audit.model import DEFINITIONS, Audit, Period
-from verifier.audit.report.charts import trend_charts
+from verifier.audit.report.charts import mutation_charts, trend_charts
 from verifier.audit.report.numbers import percent
 
 TEMPLATE = "audit.html.j2"
@@ -42,6 +42,8 @@ def render(audit: Audit) -> str:
             window=audit.window,
             cards=_cards(audit.window, audit),
             charts=trend_charts(audit.trend),
+            mutation_charts=mutation_charts(audit.mutation),
+            count=lambda n: "n/a" if n is None else n,
             skipped_at_commit=sum(1 for c in audit.commits if c.at_commit == "skipped"),
             definitions=DEFINITIONS,
             yes_no=lambda flag: "yes" if flag else "no",
@@ -62,4 +64,6 @@ def _cards(w: Period, audit: Audit) -> list[tuple[str, object, bool]]:
         ("machine lines alive at the end", f"{w.machine_lines_alive} / {w.machine_lines_added}", False),
         (f"rewritten within {audit.churn_days} days", w.machine_lines_churned, False),
         ("reverts of machine commits", len(audit.reverts), False),
+        ("mutation score", percent(w.mutants.score) if w.mutants else "no data", False),
+        ("surviving mutants", w.mutants.survived if w.mutants else "no data", bool(w.mutants and w.mutants.survived)),
     ]

@@ -5,7 +5,9 @@ FORMAT_VERSION history (one line per version):
      waivers, reverts, trend (oldest week first, the window last), problems. Added since, same version:
      definitions (the words of the statuses), totals' checked (= verified), passed and
      skipped_at_commit_time, commits' checked, passed, at_commit_time, checks, checked_how and
-     range_findings (findings then hold only the commit's own).
+     range_findings (findings then hold only the commit's own); mutation (per trend week and agent:
+     commits, with_data, no_data, mutants), totals' and trend weeks' mutants and mutation_no_data,
+     commits' mutants (null: no mutation data; ``counted``: this commit carries its check's counts).
 """
 
 from __future__ import annotations
@@ -13,7 +15,7 @@ from __future__ import annotations
 import json
 from typing import Any
 
-from verifier.audit.model import DEFINITIONS, FORMAT_VERSION, Audit, AuditCommit, Group, Period
+from verifier.audit.model import DEFINITIONS, FORMAT_VERSION, Audit, AuditCommit, Group, MutantCounts, Period
 
 
 def as_dict(audit: Audit) -> dict[str, Any]:
@@ -50,6 +52,18 @@ def as_dict(audit: Audit) -> dict[str, Any]:
             for r in audit.reverts
         ],
         "trend": [{"since": p.since, "until": p.until, **period_dict(p)} for p in audit.trend],
+        "mutation": [
+            {
+                "since": w.since,
+                "until": w.until,
+                "agent": w.agent,
+                "commits": w.commits,
+                "with_data": w.with_data,
+                "no_data": w.no_data,
+                "mutants": mutants_dict(w.mutants),
+            }
+            for w in audit.mutation
+        ],
         "problems": list(audit.problems),
     }
 
@@ -71,6 +85,21 @@ def period_dict(period: Period) -> dict[str, Any]:
         "machine_share": period.machine_share,
         "verified_share": period.verified_share,
         "survival": period.survival,
+        "mutants": mutants_dict(period.mutants),
+        "mutation_no_data": period.mutation_no_data,
+    }
+
+
+def mutants_dict(counts: MutantCounts | None) -> dict[str, Any] | None:
+    """Killed, survived, accepted, score and how many checks' counts; None: no mutation data."""
+    if counts is None:
+        return None
+    return {
+        "killed": counts.killed,
+        "survived": counts.survived,
+        "accepted": counts.accepted,
+        "score": counts.score,
+        "checks": counts.checks,
     }
 
 
@@ -102,6 +131,9 @@ def commit_dict(commit: AuditCommit) -> dict[str, Any]:
         "findings": [dict(f) for f in commit.findings],
         "range_findings": [dict(f) for f in commit.range_findings],
         "waivers": [dict(w) for w in commit.waivers],
+        "mutants": None
+        if commit.mutants is None
+        else {**(mutants_dict(commit.mutants) or {}), "counted": commit.mutants_counted},
     }
 
 

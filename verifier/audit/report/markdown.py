@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
-from verifier.audit.model import DEFINITIONS, Audit, Group
-from verifier.audit.report.numbers import percent
+from verifier.audit.model import DEFINITIONS, Audit, Group, MutantCounts
+from verifier.audit.report.numbers import count, percent
 
 
 def render(audit: Audit) -> str:
@@ -19,6 +19,7 @@ def render(audit: Audit) -> str:
         f"- alive at the window's end: {w.machine_lines_alive} of {w.machine_lines_added} machine lines "
         f"({percent(w.survival)}); {w.machine_lines_churned} rewritten within {audit.churn_days} days; "
         f"{len(audit.reverts)} reverts of machine commits",
+        f"- mutants: {_mutant_summary(w.mutants)}; {w.mutation_no_data} machine commits without mutation data",
         "",
     ]
     lines += [f"> {problem}" for problem in audit.problems] + ([""] if audit.problems else [])
@@ -26,6 +27,7 @@ def render(audit: Audit) -> str:
     lines += _groups("By agent", audit.agents) + _groups("By person (committer)", audit.people)
     lines += _counts(audit)
     lines += _trend(audit)
+    lines += _mutation(audit)
     lines += _definitions()
     return "\n".join(lines).rstrip() + "\n"
 
@@ -119,4 +121,33 @@ def _trend(audit: Audit) -> list[str]:
         f"{p.unverified} | {percent(p.survival)} |"
         for p in audit.trend
     ]
+    return [*rows, ""]
+
+
+def _mutant_summary(counts: MutantCounts | None) -> str:
+    if counts is None:
+        return "no mutation data"
+    return (
+        f"{counts.killed} killed, {counts.survived} survived, {counts.accepted} accepted by a waiver "
+        f"(score {percent(counts.score)})"
+    )
+
+
+def _mutation(audit: Audit) -> list[str]:
+    if not audit.mutation:
+        return []
+    rows = [
+        "## Mutants by agent and week",
+        "",
+        "| week from | agent | commits | without data | killed | survived | accepted | score |",
+        "|---|---|---:|---:|---:|---:|---:|---:|",
+    ]
+    for w in audit.mutation:
+        m = w.mutants
+        cells = [m.killed, m.survived, m.accepted] if m is not None else [None, None, None]
+        rows.append(
+            f"| {w.since[:10]} | {_cell(w.agent)} | {w.commits} | {w.no_data} | "
+            + " | ".join(count(n) for n in cells)
+            + f" | {percent(m.score if m else None)} |"
+        )
     return [*rows, ""]

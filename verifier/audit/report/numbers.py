@@ -5,3 +5,8 @@ from __future__ import annotations
 
 def percent(value: float | None) -> str:
     return "n/a" if value is None else f"{value:g}%"
+
+
+def count(value: int | None) -> str:
+    """A count, or "n/a" when there is no data (never a zero that was not counted)."""
+    return "n/a" if value is None else str(value)
