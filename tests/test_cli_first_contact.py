@@ -11,7 +11,7 @@ import sys
 from pathlib import Path
 
 import pytest
-from conftest import ROOT
+from conftest import ROOT, machine, test_sandbox
 
 from verifier.demo.scratch import ScratchRepo
 
@@ -51,3 +51,26 @@ def test_a_rule_id_near_nothing_gets_no_guess(repo: ScratchRepo) -> None:
 def test_a_known_rule_id_is_explained(repo: ScratchRepo) -> None:
     done = verifier(repo.path, "rules", "coverage.new-lines")
     assert done.returncode == 0 and done.stdout.startswith("coverage.new-lines: ")
+
+
+TEST_ADD = "from inkwell.sums import add\n\n\ndef test_add():\n    assert add(2, 3) == 5\n"
+
+
+def test_counted_nouns_agree_with_one(repo: ScratchRepo) -> None:
+    """One machine commit changing one line of one file: "1 commit", "1 file", never "(s)"."""
+    base = repo.commit("Human: a test for add", {"tests/test_add.py": TEST_ADD})
+    head = repo.commit(machine("Add in the other order"), {"inkwell/sums.py": SUMS.replace("a + b", "b + a")})
+    done = verifier(repo.path, "check", f"{base}..{head}", "--sandbox", test_sandbox(), "--no-notes")
+    assert done.returncode in (0, 1), done.stdout + done.stderr
+    assert ", 1 commit, " in done.stdout
+    assert "machine-written lines: 1 in 1 file\n" in done.stdout
+    assert "verifier: 1 machine-written line in 1 file\n" in done.stderr
+    assert "(s)" not in done.stdout + done.stderr and "1 errors" not in done.stdout
+    assert "0 errors" in done.stdout  # zero takes the plural, as English does
+
+
+def test_the_plural_helper_counts_in_english() -> None:
+    from verifier.words import counted
+
+    assert [counted(n, "file") for n in (0, 1, 2)] == ["0 files", "1 file", "2 files"]
+    assert counted(1, "patch", "patches") == "1 patch" and counted(3, "patch", "patches") == "3 patches"

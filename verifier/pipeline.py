@@ -36,6 +36,7 @@ from verifier.provenance.attribution import attribute, has_mark_text
 from verifier.verdict.decision import decide
 from verifier.verdict.settings import enabled_anywhere, settings_for_path
 from verifier.verdict.waivers import waived_by, waivers_used
+from verifier.words import counted
 
 if TYPE_CHECKING:
     from verifier.sandbox import Backend
@@ -105,7 +106,8 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
         # a machine commit without added lines (a deletion, a scope matching nothing) or a mark written where
         # the gate does not read it is still judged by the static rules (verifier.rules.marks and the rest)
         return _report(check, findings, notes=("no machine-written lines to verify",))
-    check.say(f"{provenance.machine_line_count} machine-written lines in {len(provenance.machine_lines)} files")
+    lines, files = provenance.machine_line_count, len(provenance.machine_lines)
+    check.say(f"{counted(lines, 'machine-written line')} in {counted(files, 'file')}")
     selection, run = options.premade if options.premade is not None else _select_and_run(check)
     coverage = _coverage(check, run)
     dynamic = RuleContext(

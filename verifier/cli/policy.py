@@ -8,6 +8,7 @@ from pathlib import Path
 from verifier.cli.check import add_org_policy_option
 from verifier.cli.rules import show_rules
 from verifier.errors import ExitCode, UsageError
+from verifier.words import counted
 
 NAME = "policy"
 
@@ -45,8 +46,8 @@ def check_file(args: argparse.Namespace) -> int:
     policy = build_policy(file_layers(target, root, args.org_policy))
     print(
         f"{target}: valid (coverage threshold {policy.coverage_threshold:g}%, "
-        f"wall limit {policy.limits.wall_seconds:g}s, {len(policy.overrides)} override(s), "
-        f"{len(policy.waivers)} waiver(s))"
+        f"wall limit {policy.limits.wall_seconds:g}s, {counted(len(policy.overrides), 'override')}, "
+        f"{counted(len(policy.waivers), 'waiver')})"
     )
     return ExitCode.PASS
 

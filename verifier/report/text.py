@@ -19,6 +19,7 @@ from collections.abc import Callable, Mapping
 from typing import TextIO
 
 from verifier.models import Finding, MutantOutcome, Report, RunResult
+from verifier.words import counted
 
 Paint = Callable[[str, str], str]  # (style key, text) -> the text, coloured or not
 
@@ -97,14 +98,16 @@ def _header(report: Report) -> str:
     head = change.head[:12] if change.head != "index" else "the index"
     sandbox = f", sandbox {report.run.backend}" if report.run else ""
     agents = ", ".join(report.provenance.agents) or "none"
-    return f"change {change.spec}: {base} -> {head}, {len(change.commits)} commit(s), agents: {agents}{sandbox}"
+    return (
+        f"change {change.spec}: {base} -> {head}, {counted(len(change.commits), 'commit')}, agents: {agents}{sandbox}"
+    )
 
 
 def _machine_lines(report: Report) -> list[str]:
     machine = report.provenance.machine_lines
     if not machine:
         return ["machine-written lines: none"]
-    rows = [f"machine-written lines: {report.provenance.machine_line_count} in {len(machine)} file(s)"]
+    rows = [f"machine-written lines: {report.provenance.machine_line_count} in {counted(len(machine), 'file')}"]
     rows += [f"  {path}: {len(lines)} ({', '.join(line_spans(lines))})" for path, lines in machine.items()]
     return rows
 
@@ -114,7 +117,7 @@ def _tests(report: Report) -> list[str]:
     if run is None:
         return []
     counts = f"{len(run.tests)} run, {run.count('passed')} passed, {run.count('failed')} failed, "
-    counts += f"{run.count('error')} errors, {run.count('skipped')} skipped"
+    counts += f"{counted(run.count('error'), 'error')}, {run.count('skipped')} skipped"
     if run.count("flaky"):
         counts += f", {run.count('flaky')} flaky"
     return [f"tests: {counts} ({run.status}, {run.wall_seconds:.1f}s)", *_selection(report), *_differential(run)]
@@ -128,15 +131,18 @@ def _selection(report: Report) -> list[str]:
     if selection.whole_suite:
         return [f"selection: every test ({selection.reason}; map: {selection.map_status}{shard})"]
     rows = [
-        f"selection: {selection.reason}; {selection.left_out} of {selection.known_tests} known tests left out "
+        f"selection: {selection.reason}; "
+        f"{selection.left_out} of {counted(selection.known_tests, 'known test')} left out "
         f"(map: {selection.map_status}{shard})"
     ]
     groups = _reason_groups(selection.reasons)
     for (reason, is_file), count in groups[:MAX_REASON_GROUPS]:
-        noun = ("test file" if is_file else "test") + ("" if count == 1 else "s")
-        rows.append(f"  {count} {noun}: {reason}")
+        rows.append(f"  {counted(count, 'test file' if is_file else 'test')}: {reason}")
     if len(groups) > MAX_REASON_GROUPS:
-        rows.append(f"  ... {len(groups) - MAX_REASON_GROUPS} more reasons (the JSON report lists every test and why)")
+        rows.append(
+            f"  ... {counted(len(groups) - MAX_REASON_GROUPS, 'more reason')} "
+            "(the JSON report lists every test and why)"
+        )
     return rows
 
 

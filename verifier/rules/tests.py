@@ -7,6 +7,7 @@ from collections.abc import Iterator
 from verifier.models import Finding
 from verifier.rules import RuleContext, rule
 from verifier.testrun.differential import classify
+from verifier.words import counted
 
 _INCOMPLETE = {
     "timeout": "the test run hit its wall-clock limit and was stopped",
@@ -72,7 +73,7 @@ def incomplete_run(context: RuleContext) -> Iterator[Finding]:
     for problem in run.problems[:20]:
         yield Finding("run.incomplete", "error", f"cannot verify: {problem}")
     if len(run.problems) > 20:
-        yield Finding("run.incomplete", "error", f"cannot verify: {len(run.problems) - 20} more problem(s)")
+        yield Finding("run.incomplete", "error", f"cannot verify: {counted(len(run.problems) - 20, 'more problem')}")
     yield Finding("run.incomplete", "error", detail, details={"output_tail": run.output_tail[-4000:]})
 
 

@@ -42,6 +42,7 @@ from verifier.pathglob import matches_any
 from verifier.selection import impactmap
 from verifier.selection.impactmap import IMPORT_TIME, ImpactMap
 from verifier.selection.imports import dotted_name
+from verifier.words import counted
 
 if TYPE_CHECKING:
     from verifier.gitio import Git
@@ -175,7 +176,8 @@ def to_selection(picks: Picks, impact: ImpactMap | None, status: str, shard: tup
     reasons = {key: tuple(value) for key, value in {**picks.node_ids, **picks.files}.items()}
     known = set(impact.outcomes) if impact else set()
     chosen = set(picks.node_ids) | (impact.tests_defined_in(picks.files) if impact else set())
-    described = f"{len(picks.node_ids)} test(s) and {len(picks.files)} test file(s) that can observe the change"
+    tests, files = counted(len(picks.node_ids), "test"), counted(len(picks.files), "test file")
+    described = f"{tests} and {files} that can observe the change"
     return Selection(
         whole_suite=False,
         node_ids=tuple(sorted(picks.node_ids)),
