@@ -74,3 +74,30 @@ def test_the_plural_helper_counts_in_english() -> None:
 
     assert [counted(n, "file") for n in (0, 1, 2)] == ["0 files", "1 file", "2 files"]
     assert counted(1, "patch", "patches") == "1 patch" and counted(3, "patch", "patches") == "3 patches"
+
+
+def auto_pick(env: dict) -> str:
+    """The backend ``--sandbox auto`` really takes in ``env`` (the registry's own choice, in a fresh process)."""
+    probe = "from verifier.sandbox import choose; print(choose('auto', allow_process=False).name)"
+    full_env = {**os.environ, "PYTHONPATH": str(ROOT), **env}
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, env=full_env)
+    return done.stdout.strip() or "none"
+
+
+def test_the_doctor_gives_the_docker_reason_once_and_says_what_auto_takes(repo: ScratchRepo, tmp_path: Path) -> None:
+    env = {"DOCKER_HOST": f"unix://{tmp_path}/no-engine.sock"}
+    done = verifier(repo.path, "sandbox", "doctor", env=env)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.count("the socket does not exist") == 1, done.stdout
+    assert done.stdout.count("start the engine") == 1, done.stdout
+    pick = auto_pick(env)
+    assert pick != "docker"
+    assert f"--sandbox auto will use {pick} here: the strongest backend that works" in done.stdout
+    assert "docker: unavailable" in done.stdout.splitlines()[-1]
+
+
+def test_the_doctor_names_the_backend_auto_takes_in_this_environment(repo: ScratchRepo) -> None:
+    done = verifier(repo.path, "sandbox", "doctor")
+    pick = auto_pick({})
+    last = done.stdout.splitlines()[-1]
+    assert last.startswith(f"--sandbox auto will use {pick} here") if pick != "none" else "auto" in last
