@@ -101,3 +101,36 @@ def test_the_doctor_names_the_backend_auto_takes_in_this_environment(repo: Scrat
     pick = auto_pick({})
     last = done.stdout.splitlines()[-1]
     assert last.startswith(f"--sandbox auto will use {pick} here") if pick != "none" else "auto" in last
+
+
+CHECKS = "from inkwell.sums import add\n\n\ndef expect_sum(a, b, total):\n    assert add(a, b) == total\n"
+TEST_VIA_HELPER = "from inkwell.checks import expect_sum\n\n\ndef test_add():\n    expect_sum(2, 2, 4)\n"
+TEST_DIRECT = "from inkwell.sums import add\n\n\ndef test_add():\n    assert add(2, 2) == 4{message}\n"
+
+
+def failing_line(repo: ScratchRepo, base_files: dict[str, str]) -> str:
+    """The terminal's tests.failing line after a machine commit breaks ``add`` (the tests are a human's)."""
+    base = repo.commit("Human: tests for add", base_files)
+    head = repo.commit(machine("Faster add"), {"inkwell/sums.py": SUMS.replace("a + b", "a + b + 1")})
+    done = verifier(repo.path, "check", f"{base}..{head}", "--sandbox", test_sandbox(), "--no-notes")
+    assert done.returncode == 1, done.stdout + done.stderr
+    return next(line for line in done.stdout.splitlines() if "[tests.failing]" in line)
+
+
+def test_a_failing_assert_shows_the_statement_and_pytests_values(repo: ScratchRepo) -> None:
+    line = failing_line(repo, {"tests/test_add.py": TEST_DIRECT.format(message="")})
+    # pytest rewrites asserts in test modules and reports the compared values ("assert 5 == 4")
+    assert line.endswith("tests/test_add.py::test_add failed: assert add(2, 2) == 4 (assert 5 == 4)"), line
+
+
+def test_a_bare_assertion_error_still_shows_what_was_asserted(repo: ScratchRepo) -> None:
+    """pytest does not rewrite asserts in a non-test module: its report says only ``E AssertionError``."""
+    line = failing_line(repo, {"inkwell/checks.py": CHECKS, "tests/test_add.py": TEST_VIA_HELPER})
+    assert line.endswith("failed: assert add(a, b) == total"), line
+
+
+def test_the_assertion_excerpt_is_escaped_and_capped(repo: ScratchRepo) -> None:
+    message = ', "wrong total \\x1b[2J' + "x" * 400 + '"'
+    line = failing_line(repo, {"tests/test_add.py": TEST_DIRECT.format(message=message)})
+    assert "\x1b" not in line and "wrong total \\x1b[2J" in line  # the escape shown, not obeyed
+    assert line.endswith("…") and "x" * 400 not in line

@@ -50,11 +50,26 @@ def failing_tests(context: RuleContext) -> Iterator[Finding]:
             )
 
 
+GIST_CAP = 200  # characters of a failure's gist in a finding's message (the whole text is in its details)
+
+
 def _gist(message: str) -> str:
-    """The line of pytest's report that says what went wrong (its first ``E`` line), else the last line."""
+    """What went wrong, in one capped line: pytest's first ``E`` line, led by the failing ``assert``
+    statement (the ``>`` line above it) when the error is an assertion, so a bare ``AssertionError`` (an
+    assert pytest did not rewrite, in a helper module) still shows what was asserted; else the last line."""
     lines = [line.strip() for line in message.splitlines() if line.strip()]
-    errors = [line[1:].strip() for line in lines if line.startswith("E ")]
-    return errors[0] if errors else (lines[-1] if lines else "no message")
+    first_error = next((index for index, line in enumerate(lines) if line.startswith("E ")), None)
+    if first_error is None:
+        return _capped(lines[-1] if lines else "no message")
+    error = lines[first_error][1:].strip()
+    statement = next((line[1:].strip() for line in reversed(lines[:first_error]) if line.startswith(">")), "")
+    if statement.startswith("assert ") and error.startswith(("AssertionError", "assert ")):
+        return _capped(statement if error in ("AssertionError", statement) else f"{statement} ({error})")
+    return _capped(error)
+
+
+def _capped(text: str) -> str:
+    return text if len(text) <= GIST_CAP else text[: GIST_CAP - 1] + "…"
 
 
 @rule("run.incomplete", default="block", summary="the tests could not be run to the end", stage="dynamic", fixed=True)
