@@ -134,3 +134,38 @@ def test_the_assertion_excerpt_is_escaped_and_capped(repo: ScratchRepo) -> None:
     line = failing_line(repo, {"tests/test_add.py": TEST_DIRECT.format(message=message)})
     assert "\x1b" not in line and "wrong total \\x1b[2J" in line  # the escape shown, not obeyed
     assert line.endswith("…") and "x" * 400 not in line
+
+
+def test_a_repository_without_tests_gets_one_message_and_exit_3(repo: ScratchRepo) -> None:
+    base = repo.head()
+    head = repo.commit(machine("Add mul"), {"inkwell/sums.py": SUMS + "\n\ndef mul(a, b):\n    return a * b\n"})
+    done = verifier(repo.path, "check", f"{base}..{head}", "--sandbox", test_sandbox(), "--no-notes")
+    assert done.returncode == 3, done.stdout + done.stderr  # ExitCode.UNVERIFIED: fail closed, never a pass
+    terminal = done.stdout + done.stderr
+    assert done.stdout.startswith("ERROR")
+    added = int(repo.git("diff", "--numstat", base, head).split()[0])  # git's own count of the added lines
+    assert (
+        f"no tests were collected at {head[:12]} (pytest looked in the repository, or its pytest configuration's "
+        f"testpaths): the {added} machine-written lines in 1 file cannot be verified; add tests (pytest collects "
+        "test_*.py and *_test.py files), or point the policy's tests.paths" in done.stdout
+    )
+    # pytest's own console ("test session starts", "collected 0 items"), coverage.py's warning, the status word
+    for raw in ("test session starts", "collected 0 items", "CoverageWarning", "No data was collected", "no-tests"):
+        assert raw not in terminal, raw
+
+
+def test_the_no_tests_message_names_the_policys_test_paths(repo: ScratchRepo) -> None:
+    policy = {"verifier.yaml": "version: 1\ntests:\n  paths: [checks]\n", "checks/helpers.py": "LIMIT = 3\n"}
+    base = repo.commit("Human: tests are to live in checks/", policy)
+    head = repo.commit(machine("Add mul"), {"inkwell/sums.py": SUMS + "\n\ndef mul(a, b):\n    return a * b\n"})
+    done = verifier(repo.path, "check", f"{base}..{head}", "--sandbox", test_sandbox(), "--no-notes")
+    assert done.returncode == 3, done.stdout + done.stderr
+    assert "pytest looked in the policy's tests.paths (checks)" in done.stdout
+
+
+def test_a_repository_with_a_test_is_not_told_it_has_none(repo: ScratchRepo) -> None:
+    base = repo.commit("Human: a test for add", {"tests/test_add.py": TEST_ADD})
+    head = repo.commit(machine("Add in the other order"), {"inkwell/sums.py": SUMS.replace("a + b", "b + a")})
+    done = verifier(repo.path, "check", f"{base}..{head}", "--sandbox", test_sandbox(), "--no-notes")
+    assert done.returncode == 0, done.stdout + done.stderr
+    assert "no tests were collected" not in done.stdout

@@ -238,6 +238,15 @@ class FileCoverage:
 
 
 RunStatus = Literal["completed", "timeout", "crashed", "collection-error", "no-tests", "harness-error"]
+# what each status means, in words for people (the status names are for the reports' readers and code)
+RUN_STATUS_TEXT: dict[str, str] = {
+    "completed": "the test run ran to the end",
+    "timeout": "the test run hit its wall-clock limit and was stopped",
+    "crashed": "the test run ended without writing its results (crashed or killed)",
+    "collection-error": "pytest could not collect the tests",
+    "no-tests": "pytest collected no tests",
+    "harness-error": "the test run's results cannot be trusted or the harness failed",
+}
 
 
 @dataclass(frozen=True)

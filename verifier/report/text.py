@@ -53,9 +53,10 @@ def render(report: Report, colour: bool = False, quiet: bool = False) -> str:
     else:
         out.append(_header(report))
         out += _machine_lines(report)
-        out += _tests(report)
-        out += _coverage(report, paint)
-        out += _mutants(report, paint)
+        if not _collected_nothing(report):  # else the run.incomplete finding says it all, in one message
+            out += _tests(report)
+            out += _coverage(report, paint)
+            out += _mutants(report, paint)
         out += _findings(report.findings, paint)
         out += _waivers(report)
         out += [f"note: {note}" for note in report.notes]
@@ -251,6 +252,10 @@ def _findings(findings: tuple[Finding, ...], paint: Paint) -> list[str]:
     if hidden:
         rows.append(f"  {hidden} more [coverage.new-lines]: the uncovered machine-written lines listed above")
     return rows
+
+
+def _collected_nothing(report: Report) -> bool:
+    return report.run is not None and report.run.status == "no-tests"
 
 
 def waiver_of(finding: Finding) -> dict[str, str] | None:

@@ -4,18 +4,11 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
-from verifier.models import Finding
+from verifier.models import INDEX, RUN_STATUS_TEXT, Finding
 from verifier.rules import RuleContext, rule
+from verifier.rules.weakened import PYTEST_FILES
 from verifier.testrun.differential import classify
 from verifier.words import counted
-
-_INCOMPLETE = {
-    "timeout": "the test run hit its wall-clock limit and was stopped",
-    "crashed": "the test run ended without writing its results (crashed or killed)",
-    "collection-error": "pytest could not collect the tests",
-    "no-tests": "pytest collected no tests",
-    "harness-error": "the test run's results cannot be trusted or the harness failed",
-}
 
 
 @rule(
@@ -80,7 +73,10 @@ def incomplete_run(context: RuleContext) -> Iterator[Finding]:
     run = context.run
     if run is None or run.status == "completed":
         return
-    detail = _INCOMPLETE[run.status]
+    if run.status == "no-tests":
+        yield Finding("run.incomplete", "error", _no_tests(context), details={"status": run.status})
+        return
+    detail = RUN_STATUS_TEXT[run.status]
     if run.limit_hit:
         detail += f" (limit reached: {run.limit_hit})"
     for error in run.collection_errors[:10]:
@@ -90,6 +86,25 @@ def incomplete_run(context: RuleContext) -> Iterator[Finding]:
     if len(run.problems) > 20:
         yield Finding("run.incomplete", "error", f"cannot verify: {counted(len(run.problems) - 20, 'more problem')}")
     yield Finding("run.incomplete", "error", detail, details={"output_tail": run.output_tail[-4000:]})
+
+
+def _no_tests(context: RuleContext) -> str:
+    """One message for a run that collected nothing: where pytest looked, what cannot be verified, what to do."""
+    head = context.change.head
+    revision = "the index" if head == INDEX else head[:12]
+    paths = context.policy.test_paths
+    looked = (
+        f"the policy's tests.paths ({', '.join(paths)})"
+        if paths
+        else "the repository, or its pytest configuration's testpaths"
+    )
+    machine = context.provenance.machine_lines
+    return (
+        f"no tests were collected at {revision} (pytest looked in {looked}): the "
+        f"{counted(context.provenance.machine_line_count, 'machine-written line')} in {counted(len(machine), 'file')} "
+        f"cannot be verified; add tests (pytest collects {' and '.join(PYTEST_FILES)} files), or point the "
+        "policy's tests.paths in verifier.yaml at the folders that hold them"
+    )
 
 
 @rule(

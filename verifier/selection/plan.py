@@ -37,7 +37,7 @@ from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
-from verifier.models import INDEX, Change, FileChange, Policy, Selection
+from verifier.models import INDEX, RUN_STATUS_TEXT, Change, FileChange, Policy, Selection
 from verifier.pathglob import matches_any
 from verifier.selection import impactmap
 from verifier.selection.impactmap import IMPORT_TIME, ImpactMap
@@ -167,7 +167,7 @@ def obtain_map(
     say("building the who-tests-what map: the whole suite at base, under coverage")
     built, run = impactmap.build(git, base, policy, backend, environment)
     if built is None:
-        return None, f"could not be built: the run at base ended '{run.status}'"
+        return None, f"could not be built: at base, {RUN_STATUS_TEXT[run.status]}"
     impactmap.save(git, built)
     return built, "built"
 
