@@ -6,6 +6,7 @@ excerpt, a did-you-mean for rule ids, and counted nouns that agree with their nu
 from __future__ import annotations
 
 import os
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -169,3 +170,76 @@ def test_a_repository_with_a_test_is_not_told_it_has_none(repo: ScratchRepo) -> 
     done = verifier(repo.path, "check", f"{base}..{head}", "--sandbox", test_sandbox(), "--no-notes")
     assert done.returncode == 0, done.stdout + done.stderr
     assert "no tests were collected" not in done.stdout
+
+
+SLOW_TEST = (
+    "import time\n\nfrom inkwell.sums import add\n\n\n"
+    "def test_slow_{n}():\n    time.sleep(1)\n    assert add({n}, 1) == {n} + 1\n"
+)
+SLOW_FILES = {f"tests/test_slow_{n}.py": SLOW_TEST.format(n=n) for n in range(3)}
+
+
+def slow_change(repo: ScratchRepo) -> str:
+    base = repo.commit("Human: slow tests", SLOW_FILES)
+    head = repo.commit(machine("Add in the other order"), {"inkwell/sums.py": SUMS.replace("a + b", "b + a")})
+    return f"{base}..{head}"
+
+
+def on_a_terminal(repo: Path, *args: str) -> tuple[int, str]:
+    """Run the CLI with stdout and stderr on a real pseudo-terminal (Python's pty module), 200 columns wide."""
+    import fcntl
+    import pty
+    import select
+    import struct
+    import termios
+
+    main, child = pty.openpty()
+    fcntl.ioctl(child, termios.TIOCSWINSZ, struct.pack("HHHH", 50, 200, 0, 0))
+    process = subprocess.Popen(
+        [sys.executable, "-m", "verifier", "-C", str(repo), *args],
+        stdin=subprocess.DEVNULL,
+        stdout=child,
+        stderr=child,
+        env={**os.environ, "PYTHONPATH": str(ROOT), "NO_COLOR": "1"},
+    )
+    os.close(child)
+    screen = b""
+    while True:
+        if not select.select([main], [], [], 300)[0]:
+            process.kill()
+            break
+        try:
+            data = os.read(main, 1 << 16)
+        except OSError:  # the terminal's other side closed: the CLI ended
+            break
+        if not data:
+            break
+        screen += data
+    os.close(main)
+    return process.wait(timeout=60), screen.decode("utf-8", "replace")
+
+
+def test_a_terminal_shows_which_test_runs_and_how_many_are_left(repo: ScratchRepo, tmp_path: Path) -> None:
+    report_file = tmp_path / "report.json"
+    args = ("check", slow_change(repo), "--sandbox", test_sandbox(), "--no-notes", "--all-tests")
+    code, screen = on_a_terminal(repo.path, *args, "--format", "json", "--output", str(report_file))
+    assert code == 0, screen
+    shown = re.findall(
+        r"tests (\d)/3 done, (\d) left \(\d+\.\ds\) . running (tests/test_slow_\d\.py::test_slow_\d)",
+        screen,
+    )
+    assert shown, screen
+    assert all(int(done) + int(left) == 3 for done, left, _test in shown)
+    assert {test for _done, _left, test in shown} <= {f"tests/test_slow_{n}.py::test_slow_{n}" for n in range(3)}
+    # the supervisor's progress lines are taken out of what the report keeps of the run's output
+    assert "verifier-progress-" not in screen and "verifier-progress-" not in report_file.read_text()
+
+
+def test_piped_output_stays_plain_without_per_test_progress(repo: ScratchRepo, tmp_path: Path) -> None:
+    report_file = tmp_path / "report.json"
+    args = ("check", slow_change(repo), "--sandbox", test_sandbox(), "--no-notes", "--all-tests")
+    done = verifier(repo.path, *args, "--format", "json", "--output", str(report_file))
+    assert done.returncode == 0, done.stderr
+    assert "verifier: running the tests in the" in done.stderr
+    assert "\r" not in done.stderr and "\x1b" not in done.stderr and "done, " not in done.stderr
+    assert "verifier-progress-" not in done.stderr + done.stdout + report_file.read_text()

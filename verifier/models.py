@@ -8,7 +8,7 @@ on data alone and every boundary can be serialised (see :func:`to_plain`).
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any, Literal
 
@@ -183,6 +183,10 @@ class SelectionSettings:
     ignore_paths: tuple[str, ...] = ()  # globs of files no test reads (documentation)
 
 
+# per-test progress of a run, for a display: (tests done, tests to run, the test that runs now)
+TestProgress = Callable[[int, int, str], None]
+
+
 @dataclass(frozen=True)
 class SandboxRequest:
     """What a sandbox backend runs: a Python command in a copy of ``tree``, limited and scrubbed."""
@@ -192,6 +196,8 @@ class SandboxRequest:
     env: Mapping[str, str]
     limits: Limits
     collect: tuple[str, ...]  # workspace-relative files to bring back
+    # sees the output as it arrives (the progress display); never judged, and its errors never stop a run
+    on_output: Callable[[bytes], None] | None = field(default=None, compare=False, repr=False)
 
 
 @dataclass(frozen=True)

@@ -30,6 +30,7 @@ from verifier.models import (
     Report,
     RunResult,
     Selection,
+    TestProgress,
 )
 from verifier.policy.loader import load_policy
 from verifier.provenance.attribution import attribute, has_mark_text
@@ -53,6 +54,7 @@ class Options:
 
     sandbox: str = "auto"  # auto, or a name of verifier.sandbox.BACKENDS
     progress: Progress | None = None
+    test_progress: TestProgress | None = None  # per-test progress of the run at head (a terminal's display)
     org_policy: str | None = None  # the organisation policy's path; None: $VERIFIER_ORG_POLICY, if set
     index_file: str | None = None  # for --staged: the index to read (a commit hook's GIT_INDEX_FILE)
     all_tests: bool = False  # run every test, whatever the selection stage would choose
@@ -245,7 +247,9 @@ def _run_tests(check: CheckContext, selection: Selection, backend: Backend) -> R
 
     check.say(f"running the tests in the {backend.name} sandbox")
     judged = tuple(f.path for f in check.change.files if f.path.endswith(".py") and f.added_lines)
-    result = testrun.run_revision(check.git, check.change.head, check.policy, selection, backend, judged)
+    result = testrun.run_revision(
+        check.git, check.change.head, check.policy, selection, backend, judged, check.options.test_progress
+    )
     return testrun.read_run(result)
 
 

@@ -3,8 +3,9 @@
 Colour only when asked for: :func:`wants_colour` says yes for a terminal when ``NO_COLOR`` is unset or empty
 (https://no-color.org). ``quiet`` (for hooks) keeps the verdict line, the uncovered lines and the findings.
 :class:`StageDisplay` shows progress while the gate works: the sandbox hands its results back only when the
-run ends, so it shows the current stage and the time spent in it (a spinner on a terminal, one line per
-stage otherwise), not per-test progress.
+run ends; while the tests run, the supervisor streams per-test progress, which the terminal's line shows
+(how many done and left, the test that runs now). Elsewhere (piped, in hooks) each stage is one plain line
+and there is no per-test progress.
 """
 
 from __future__ import annotations
@@ -297,6 +298,7 @@ def line_spans(lines: tuple[int, ...]) -> list[str]:
 
 
 _SPINNER = "|/-\\"
+MAX_TEST_NAME = 200  # characters of the running test's node id (the terminal's width cuts it further)
 
 
 class StageDisplay:
@@ -310,6 +312,7 @@ class StageDisplay:
         self.live = hasattr(self.stream, "isatty") and self.stream.isatty()
         self.interval = interval
         self._stage = ""
+        self._detail: tuple[str, str] | None = None  # the running tests' counts and current test, on a terminal
         self._since = time.monotonic()
         self._lock = threading.Lock()
         self._stop = threading.Event()
@@ -319,9 +322,17 @@ class StageDisplay:
         with self._lock:
             if self.live and self._stage:
                 self._draw(final=True)
-            self._stage, self._since = stage, time.monotonic()
+            self._stage, self._since, self._detail = stage, time.monotonic(), None
             if not self.live:
                 print(f"verifier: {stage}", file=self.stream, flush=True)
+
+    def tests(self, done: int, total: int, current: str) -> None:
+        """Per-test progress of the stage that runs the tests (on a terminal; elsewhere nothing)."""
+        if not self.live:
+            return
+        left = max(total - done, 0)
+        with self._lock:
+            self._detail = f"tests {done}/{total} done, {left} left", printable(current)[:MAX_TEST_NAME]
 
     def __enter__(self) -> StageDisplay:
         if self.live:
@@ -345,11 +356,24 @@ class StageDisplay:
                     self._draw(final=False, turn=turn)
             turn += 1
 
+    def _width(self) -> int:
+        try:
+            return os.get_terminal_size(self.stream.fileno()).columns or 80
+        except (OSError, ValueError, AttributeError):
+            return 80
+
     def _draw(self, final: bool, turn: int = 0) -> None:
         elapsed = time.monotonic() - self._since
         mark = "done" if final else _SPINNER[turn % len(_SPINNER)]
         end = "\n" if final else ""
-        self.stream.write(f"\r\033[2Kverifier: {self._stage} ({elapsed:.1f}s) {mark}{end}")
+        if self._detail and not final:
+            counts, current = self._detail
+            line = f"verifier: {counts} ({elapsed:.1f}s) {mark}" + (f" running {current}" if current else "")
+        else:
+            line = f"verifier: {self._stage} ({elapsed:.1f}s) {mark}"
+        if not final:  # one terminal row, or the redraw would leave the wrapped part behind
+            line = line[: self._width() - 1]
+        self.stream.write(f"\r\033[2K{line}{end}")
         self.stream.flush()
 
 
