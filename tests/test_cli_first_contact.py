@@ -219,20 +219,29 @@ def on_a_terminal(repo: Path, *args: str) -> tuple[int, str]:
     return process.wait(timeout=60), screen.decode("utf-8", "replace")
 
 
+PROGRESS = r"tests (\d)/3 done, (\d) left \(\d+\.\ds\) . running (tests/test_slow_\d\.py::test_slow_\d)"
+
+
 def test_a_terminal_shows_which_test_runs_and_how_many_are_left(repo: ScratchRepo, tmp_path: Path) -> None:
     report_file = tmp_path / "report.json"
     args = ("check", slow_change(repo), "--sandbox", test_sandbox(), "--no-notes", "--all-tests")
     code, screen = on_a_terminal(repo.path, *args, "--format", "json", "--output", str(report_file))
     assert code == 0, screen
-    shown = re.findall(
-        r"tests (\d)/3 done, (\d) left \(\d+\.\ds\) . running (tests/test_slow_\d\.py::test_slow_\d)",
-        screen,
-    )
+    shown = re.findall(PROGRESS, screen)
     assert shown, screen
     assert all(int(done) + int(left) == 3 for done, left, _test in shown)
     assert {test for _done, _left, test in shown} <= {f"tests/test_slow_{n}.py::test_slow_{n}" for n in range(3)}
     # the supervisor's progress lines are taken out of what the report keeps of the run's output
     assert "verifier-progress-" not in screen and "verifier-progress-" not in report_file.read_text()
+
+
+def test_the_map_build_at_base_shows_its_progress_too(repo: ScratchRepo) -> None:
+    """Without a map, the whole suite runs at base first (the longest wait of a first check)."""
+    code, screen = on_a_terminal(repo.path, "check", slow_change(repo), "--sandbox", test_sandbox(), "--no-notes")
+    assert code == 0, screen
+    first = re.search(PROGRESS, screen)
+    assert first is not None and "building the who-tests-what map" in screen, screen
+    assert first.start() < screen.index("running the tests in the")  # shown while the map was being built
 
 
 def test_piped_output_stays_plain_without_per_test_progress(repo: ScratchRepo, tmp_path: Path) -> None:

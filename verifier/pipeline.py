@@ -54,7 +54,8 @@ class Options:
 
     sandbox: str = "auto"  # auto, or a name of verifier.sandbox.BACKENDS
     progress: Progress | None = None
-    test_progress: TestProgress | None = None  # per-test progress of the run at head (a terminal's display)
+    # per-test progress of the run at head and of the map's build at base (a terminal's display)
+    test_progress: TestProgress | None = None
     org_policy: str | None = None  # the organisation policy's path; None: $VERIFIER_ORG_POLICY, if set
     index_file: str | None = None  # for --staged: the index to read (a commit hook's GIT_INDEX_FILE)
     all_tests: bool = False  # run every test, whatever the selection stage would choose
@@ -217,6 +218,7 @@ def _select_and_run(check: CheckContext) -> tuple[Selection, RunResult]:
         all_tests=check.options.all_tests,
         shard=check.options.shard,
         say=check.say,
+        on_test=check.options.test_progress,
     )
     check.say(f"tests: {selection.reason} (map: {selection.map_status})")
     run = _run_tests(check, selection, backend)
