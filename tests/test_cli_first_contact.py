@@ -5,6 +5,7 @@ excerpt, a did-you-mean for rule ids, and counted nouns that agree with their nu
 
 from __future__ import annotations
 
+import json
 import os
 import re
 import subprocess
@@ -252,3 +253,27 @@ def test_piped_output_stays_plain_without_per_test_progress(repo: ScratchRepo, t
     assert "verifier: running the tests in the" in done.stderr
     assert "\r" not in done.stderr and "\x1b" not in done.stderr and "done, " not in done.stderr
     assert "verifier-progress-" not in done.stderr + done.stdout + report_file.read_text()
+
+
+def test_a_machine_commit_that_removes_every_test_cannot_pass(repo: ScratchRepo) -> None:
+    """An assistant deletes the only test and changes the code: nothing is collected, so nothing is verified."""
+    base = repo.commit("Human: a test for add", {"tests/test_add.py": TEST_ADD})
+    broken = {"inkwell/sums.py": SUMS.replace("a + b", "a - b")}
+    head = repo.commit(machine("Simplify"), broken, remove=("tests/test_add.py",))
+    done = verifier(repo.path, "check", f"{base}..{head}", "--sandbox", test_sandbox(), "--no-notes")
+    assert done.returncode in (1, 3), done.stdout + done.stderr  # a block (the deleted test) or unverified
+    assert "no tests were collected" in done.stdout and "[tests.weakened]" in done.stdout
+
+
+def test_on_a_terminal_a_failing_change_still_blocks(repo: ScratchRepo, tmp_path: Path) -> None:
+    """The progress stream changes what the terminal shows, never the verdict or the kept output."""
+    base = repo.commit("Human: slow tests", SLOW_FILES)
+    head = repo.commit(machine("Off by one"), {"inkwell/sums.py": SUMS.replace("a + b", "a + b + 1")})
+    report_file = tmp_path / "report.json"
+    args = ("check", f"{base}..{head}", "--sandbox", test_sandbox(), "--no-notes", "--all-tests")
+    code, screen = on_a_terminal(repo.path, *args, "--format", "json", "--output", str(report_file))
+    assert code == 1, screen
+    report = json.loads(report_file.read_text())
+    failing = [f for f in report["findings"] if f["rule"] == "tests.failing"]
+    assert len(failing) == 3 and report["verdict"] == "block"
+    assert re.search(PROGRESS, screen), screen
