@@ -157,7 +157,7 @@ def test_policy_explain_and_the_rule_listing_through_the_cli() -> None:
     assert verifier("policy", "rules").stdout == verifier("rules").stdout
     assert "code.syntax" in verifier("rules").stdout
     unknown = verifier("policy", "explain", "no.such")
-    assert unknown.returncode == 2 and "no rule 'no.such'" in unknown.stderr
+    assert unknown.returncode == 2 and "unknown rule 'no.such'" in unknown.stderr
 
 
 # --- real gate runs ---------------------------------------------------------------------------------------

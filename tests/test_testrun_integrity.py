@@ -53,7 +53,7 @@ def test_setup_failure_needs_no_call_phase() -> None:
     [
         ([collected(1), phase("t::a", "setup")], 0, "no teardown phase"),
         ([collected(1), phase("t::a", "setup"), phase("t::a", "teardown")], 0, "no call phase"),
-        ([collected(2), *test_records("t::a")], 0, "2 test(s) collected but 1 recorded"),
+        ([collected(2), *test_records("t::a")], 0, "2 tests collected but 1 recorded"),
         ([*test_records("t::a")], 0, "did not report how many"),
         ([collected(1), *test_records("t::a"), phase("t::a", "call", "passed")], 0, "at most once"),
         ([collected(1), *test_records("t::a")], 1, "no failure was recorded"),

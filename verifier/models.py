@@ -8,7 +8,7 @@ on data alone and every boundary can be serialised (see :func:`to_plain`).
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any, Literal
 
@@ -185,6 +185,10 @@ class SelectionSettings:
     ignore_paths: tuple[str, ...] = ()  # globs of files no test reads (documentation)
 
 
+# per-test progress of a run, for a display: (tests done, tests to run, the test that runs now)
+TestProgress = Callable[[int, int, str], None]
+
+
 @dataclass(frozen=True)
 class SandboxRequest:
     """What a sandbox backend runs: a Python command in a copy of ``tree``, limited and scrubbed."""
@@ -194,6 +198,8 @@ class SandboxRequest:
     env: Mapping[str, str]
     limits: Limits
     collect: tuple[str, ...]  # workspace-relative files to bring back
+    # sees the output as it arrives (the progress display); never judged, and its errors never stop a run
+    on_output: Callable[[bytes], None] | None = field(default=None, compare=False, repr=False)
 
 
 @dataclass(frozen=True)
@@ -240,6 +246,15 @@ class FileCoverage:
 
 
 RunStatus = Literal["completed", "timeout", "crashed", "collection-error", "no-tests", "harness-error"]
+# what each status means, in words for people (the status names are for the reports' readers and code)
+RUN_STATUS_TEXT: dict[str, str] = {
+    "completed": "the test run ran to the end",
+    "timeout": "the test run hit its wall-clock limit and was stopped",
+    "crashed": "the test run ended without writing its results (crashed or killed)",
+    "collection-error": "pytest could not collect the tests",
+    "no-tests": "pytest collected no tests",
+    "harness-error": "the test run's results cannot be trusted or the harness failed",
+}
 
 
 @dataclass(frozen=True)

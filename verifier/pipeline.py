@@ -31,12 +31,14 @@ from verifier.models import (
     Report,
     RunResult,
     Selection,
+    TestProgress,
 )
 from verifier.policy.loader import load_policy
 from verifier.provenance.attribution import attribute, has_mark_text
 from verifier.verdict.decision import decide
 from verifier.verdict.settings import enabled_anywhere, settings_for_path
 from verifier.verdict.waivers import waived_by, waiver_notes, waivers_used
+from verifier.words import counted
 
 if TYPE_CHECKING:
     from verifier.sandbox import Backend
@@ -53,6 +55,8 @@ class Options:
 
     sandbox: str = "auto"  # auto, or a name of verifier.sandbox.BACKENDS
     progress: Progress | None = None
+    # per-test progress of the run at head and of the map's build at base (a terminal's display)
+    test_progress: TestProgress | None = None
     org_policy: str | None = None  # the organisation policy's path; None: $VERIFIER_ORG_POLICY, if set
     index_file: str | None = None  # for --staged: the index to read (a commit hook's GIT_INDEX_FILE)
     all_tests: bool = False  # run every test, whatever the selection stage would choose
@@ -128,8 +132,8 @@ def _machine_touched_code(change: Change, provenance: Provenance) -> bool:
 def _what_is_judged(provenance: Provenance) -> str:
     if not provenance.machine_lines:
         return "machine-written deletions only: running the tests they may break"
-    files = len(provenance.machine_lines)
-    return f"{provenance.machine_line_count} machine-written lines in {files} files"
+    lines, files = provenance.machine_line_count, len(provenance.machine_lines)
+    return f"{counted(lines, 'machine-written line')} in {counted(files, 'file')}"
 
 
 def _mutation(check: CheckContext, run: RunResult, hidden: frozenset[tuple[str, int]]) -> MutationResult | None:
@@ -227,6 +231,7 @@ def _select_and_run(check: CheckContext) -> tuple[Selection, RunResult]:
         all_tests=check.options.all_tests,
         shard=check.options.shard,
         say=check.say,
+        on_test=check.options.test_progress,
     )
     check.say(f"tests: {selection.reason} (map: {selection.map_status})")
     run = _run_tests(check, selection, backend)
@@ -257,7 +262,9 @@ def _run_tests(check: CheckContext, selection: Selection, backend: Backend) -> R
 
     check.say(f"running the tests in the {backend.name} sandbox")
     judged = tuple(f.path for f in check.change.files if f.path.endswith(".py") and f.added_lines)
-    result = testrun.run_revision(check.git, check.change.head, check.policy, selection, backend, judged)
+    result = testrun.run_revision(
+        check.git, check.change.head, check.policy, selection, backend, judged, check.options.test_progress
+    )
     return testrun.read_run(result)
 
 

@@ -22,6 +22,7 @@ from typing import NamedTuple
 
 from verifier.errors import CannotVerify
 from verifier.models import FileChange, FileStatus
+from verifier.words import counted
 
 # Command-line config wins over every config file, and the flags below pin what config could change:
 # prefixes (diff.noprefix, diff.mnemonicPrefix), colour, external diff drivers, textconv, diff.relative,
@@ -153,7 +154,9 @@ def read_commit_patches(output: bytes, count: int) -> list[list[FileHunks]]:
     """Split ``git <COMMIT_PATCH_ARGS>`` output into the ``count`` commits asked for, each one's files."""
     parts = _COMMIT_LINE.split(output)
     if len(parts) != count + 1 or parts[0].strip():
-        raise _refuse(f"git diff-tree gave {len(parts) - 1} patches for {count} commits")
+        raise _refuse(
+            f"git diff-tree gave {counted(len(parts) - 1, 'patch', 'patches')} for {counted(count, 'commit')}"
+        )
     return [read_hunks(part) for part in parts[1:]]
 
 
@@ -436,7 +439,7 @@ def _listed(status: FileStatus, old_mode: str, new_mode: str, paths: list[str]) 
 def _apply_listing(changes: list[FileChange], listed: list[_Listed]) -> list[FileChange]:
     """Check the patch against the listing, file by file, and take the modes from the listing."""
     if len(changes) != len(listed):
-        raise _refuse(f"the patch has {len(changes)} files but the listing has {len(listed)}")
+        raise _refuse(f"the patch has {counted(len(changes), 'file')} but the listing has {len(listed)}")
     result = []
     for change, entry in zip(changes, listed, strict=True):
         seen = (change.status, change.path, change.old_path)

@@ -99,6 +99,7 @@ def _verify(args: argparse.Namespace) -> Report:
         options = Options(
             sandbox=args.sandbox,
             progress=progress,
+            test_progress=display.tests if progress is not None and display.live else None,
             org_policy=args.org_policy,
             index_file=index_file,
             all_tests=args.all_tests,

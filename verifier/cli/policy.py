@@ -10,6 +10,7 @@ from typing import TYPE_CHECKING
 from verifier.cli.check import add_org_policy_option
 from verifier.cli.rules import show_rules
 from verifier.errors import ExitCode, UsageError
+from verifier.words import counted
 
 if TYPE_CHECKING:
     from verifier.models import Policy
@@ -52,8 +53,8 @@ def check_file(args: argparse.Namespace) -> int:
     policy = build_policy(layers)
     print(
         f"{target}: valid (coverage threshold {policy.coverage_threshold:g}%, "
-        f"wall limit {policy.limits.wall_seconds:g}s, {len(policy.overrides)} override(s), "
-        f"{len(policy.waivers)} waiver(s))"
+        f"wall limit {policy.limits.wall_seconds:g}s, {counted(len(policy.overrides), 'override')}, "
+        f"{counted(len(policy.waivers), 'waiver')})"
     )
     print(_notices(layers, policy), end="")
     return ExitCode.PASS

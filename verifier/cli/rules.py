@@ -28,6 +28,10 @@ def show_rules(rule_id: str | None) -> int:
         return ExitCode.PASS
     text = render_explain(rule_id)
     if text is None:
-        raise UsageError(f"no rule '{rule_id}'", hint="'verifier rules' lists them")
+        from verifier.rules.catalog import closest_rule_id
+
+        close = closest_rule_id(rule_id)
+        guess = f"; did you mean '{close}'?" if close else ""
+        raise UsageError(f"unknown rule '{rule_id}'{guess}", hint="'verifier rules' lists them")
     print(text, end="")
     return ExitCode.PASS

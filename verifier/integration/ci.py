@@ -11,6 +11,7 @@ from __future__ import annotations
 from collections.abc import Callable
 
 from verifier.gitio import Git
+from verifier.words import counted
 
 DEFAULT_ROUNDS = 10
 
@@ -22,7 +23,7 @@ def deepen_for(
     fetches = 0
     while git.is_shallow() and not history_ready(git, spec) and fetches < rounds:
         remote = remote_for(git, spec)
-        say(f"shallow clone: fetching {step} more commits of history from {remote}")
+        say(f"shallow clone: fetching {counted(step, 'more commit')} of history from {remote}")
         git.run(["fetch", "--quiet", "--no-tags", f"--deepen={step}", remote])
         fetches += 1
     return fetches

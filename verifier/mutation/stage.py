@@ -37,6 +37,7 @@ from verifier.models import (
     SandboxRequest,
 )
 from verifier.mutation.counts import RULE_ID
+from verifier.words import counted
 
 if TYPE_CHECKING:
     from verifier.gitio import Git
@@ -154,7 +155,7 @@ def run_mutation(
             pending.append((number, mutant, tests))
     problem = None
     if pending and backend is not None:
-        say(f"mutation: {len(pending)} mutants to run ({len(to_run) - len(pending)} known from the cache)")
+        say(f"mutation: {counted(len(pending), 'mutant')} to run ({len(to_run) - len(pending)} known from the cache)")
         durations = {test.node_id: test.duration for test in run.tests}
         found, problem = _run_in_sandbox(git, change.head, policy, backend, pending, durations)
         outcomes.update(found)

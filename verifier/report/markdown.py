@@ -9,6 +9,7 @@ import re
 
 from verifier.models import Finding, Report
 from verifier.report.text import line_spans, printable, waiver_of
+from verifier.words import counted
 
 SUFFIX = "md"  # a report of this format written into a folder is report.md
 FOR_MACHINES = True  # tools read it: alone on stdout
@@ -36,13 +37,14 @@ def _summary(report: Report) -> str:
     head = change.head[:12] if change.head != "index" else "the index"
     agents = ", ".join(f"`{agent}`" for agent in report.provenance.agents) or "none"
     rows = [
-        f"Change `{_inline(change.spec)}` ({base} → {head}): {len(change.commits)} commit(s), agents {agents}, "
-        f"{report.provenance.machine_line_count} machine-written line(s)."
+        f"Change `{_inline(change.spec)}` ({base} → {head}): {counted(len(change.commits), 'commit')}, "
+        f"agents {agents}, "
+        f"{counted(report.provenance.machine_line_count, 'machine-written line')}."
     ]
     if run is not None:
         rows.append(
             f"Tests in the `{run.backend}` sandbox: {len(run.tests)} run, {run.count('passed')} passed, "
-            f"{run.count('failed')} failed, {run.count('error')} errors, {run.count('skipped')} skipped "
+            f"{run.count('failed')} failed, {counted(run.count('error'), 'error')}, {run.count('skipped')} skipped "
             f"({run.status}, {run.wall_seconds:.1f}s)."
         )
     if cov is not None and cov.percent is not None:
@@ -100,7 +102,7 @@ def _findings(report: Report) -> str:
     if uncovered:
         rows.append(
             _details(
-                f"{len(uncovered)} uncovered machine-written line(s), with their code",
+                f"{counted(len(uncovered), 'uncovered machine-written line')}, with their code",
                 "\n\n".join(_finding(f, report) for f in uncovered),
             )
         )
@@ -149,12 +151,16 @@ def _test_details(report: Report) -> str:
         body = "\n\n".join(
             f"`{_inline(t.node_id)}` ({t.outcome})\n\n{_fence(t.message.strip() or 'no message')}" for t in failing
         )
-        parts.append(_details(f"{len(failing)} failing test(s)", body))
+        parts.append(_details(f"{counted(len(failing), 'failing test')}", body))
     if run.collection_errors:
         parts.append(_details("collection errors", _fence("\n".join(run.collection_errors))))
     if run.tests:
         listing = "\n".join(f"{t.outcome:<8} {t.node_id}" for t in run.tests)
-        parts.append(_details(f"all {len(run.tests)} test(s) the gate ran", _fence(listing)))
+        parts.append(
+            _details(
+                f"{'all ' if len(run.tests) > 1 else ''}{counted(len(run.tests), 'test')} the gate ran", _fence(listing)
+            )
+        )
     return "\n\n".join(parts)
 
 
@@ -168,7 +174,7 @@ def _commits(report: Report) -> str:
         agent = f"`{_cell(marks[commit.sha].agent)}`" if commit.sha in marks else "–"
         subject = commit.message.strip().split("\n", 1)[0] if commit.message.strip() else ""
         rows.append(f"| `{commit.sha[:12]}` | {_cell(commit.author)} | {agent} | {_cell(subject)} |")
-    return _details(f"{len(commits)} commit(s)", "\n".join(rows))
+    return _details(f"{counted(len(commits), 'commit')}", "\n".join(rows))
 
 
 # -- Markdown helpers -----------------------------------------------------------------------------

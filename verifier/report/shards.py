@@ -18,6 +18,7 @@ from typing import Any
 
 from verifier.errors import UsageError
 from verifier.models import FileCoverage, Report, RunResult, RunStatus, Selection, TestOutcome
+from verifier.words import counted
 
 _STATUS_ORDER = ("timeout", "crashed", "collection-error", "harness-error", "no-tests", "completed")
 
@@ -101,7 +102,7 @@ def joined_run(reports: list[dict[str, Any]]) -> tuple[Selection, RunResult]:
         whole_suite=chosen["whole_suite"],
         node_ids=tuple(chosen["node_ids"]),
         files=tuple(chosen["files"]),
-        reason=f"{chosen['reason']} (joined from {len(shards)} shards)",
+        reason=f"{chosen['reason']} (joined from {counted(len(shards), 'shard')})",
         reasons=reports[0].get("selection", {}).get("selected", {}),
         map_status=reports[0].get("selection", {}).get("map", "not used"),
     )

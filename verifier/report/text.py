@@ -3,8 +3,9 @@
 Colour only when asked for: :func:`wants_colour` says yes for a terminal when ``NO_COLOR`` is unset or empty
 (https://no-color.org). ``quiet`` (for hooks) keeps the verdict line, the uncovered lines and the findings.
 :class:`StageDisplay` shows progress while the gate works: the sandbox hands its results back only when the
-run ends, so it shows the current stage and the time spent in it (a spinner on a terminal, one line per
-stage otherwise), not per-test progress.
+run ends; while the tests run, the supervisor streams per-test progress, which the terminal's line shows
+(how many done and left, the test that runs now). Elsewhere (piped, in hooks) each stage is one plain line
+and there is no per-test progress.
 """
 
 from __future__ import annotations
@@ -19,6 +20,7 @@ from collections.abc import Callable, Mapping
 from typing import TextIO
 
 from verifier.models import Finding, MutantOutcome, Report, RunResult
+from verifier.words import counted
 
 Paint = Callable[[str, str], str]  # (style key, text) -> the text, coloured or not
 
@@ -52,9 +54,10 @@ def render(report: Report, colour: bool = False, quiet: bool = False) -> str:
     else:
         out.append(_header(report))
         out += _machine_lines(report)
-        out += _tests(report)
-        out += _coverage(report, paint)
-        out += _mutants(report, paint)
+        if not _collected_nothing(report):  # else the run.incomplete finding says it all, in one message
+            out += _tests(report)
+            out += _coverage(report, paint)
+            out += _mutants(report, paint)
         out += _findings(report.findings, paint)
         out += _waivers(report)
         out += [f"note: {note}" for note in report.notes]
@@ -97,14 +100,16 @@ def _header(report: Report) -> str:
     head = change.head[:12] if change.head != "index" else "the index"
     sandbox = f", sandbox {report.run.backend}" if report.run else ""
     agents = ", ".join(report.provenance.agents) or "none"
-    return f"change {change.spec}: {base} -> {head}, {len(change.commits)} commit(s), agents: {agents}{sandbox}"
+    return (
+        f"change {change.spec}: {base} -> {head}, {counted(len(change.commits), 'commit')}, agents: {agents}{sandbox}"
+    )
 
 
 def _machine_lines(report: Report) -> list[str]:
     machine = report.provenance.machine_lines
     if not machine:
         return ["machine-written lines: none"]
-    rows = [f"machine-written lines: {report.provenance.machine_line_count} in {len(machine)} file(s)"]
+    rows = [f"machine-written lines: {report.provenance.machine_line_count} in {counted(len(machine), 'file')}"]
     rows += [f"  {path}: {len(lines)} ({', '.join(line_spans(lines))})" for path, lines in machine.items()]
     return rows
 
@@ -114,7 +119,7 @@ def _tests(report: Report) -> list[str]:
     if run is None:
         return []
     counts = f"{len(run.tests)} run, {run.count('passed')} passed, {run.count('failed')} failed, "
-    counts += f"{run.count('error')} errors, {run.count('skipped')} skipped"
+    counts += f"{counted(run.count('error'), 'error')}, {run.count('skipped')} skipped"
     if run.count("flaky"):
         counts += f", {run.count('flaky')} flaky"
     return [f"tests: {counts} ({run.status}, {run.wall_seconds:.1f}s)", *_selection(report), *_differential(run)]
@@ -128,15 +133,18 @@ def _selection(report: Report) -> list[str]:
     if selection.whole_suite:
         return [f"selection: every test ({selection.reason}; map: {selection.map_status}{shard})"]
     rows = [
-        f"selection: {selection.reason}; {selection.left_out} of {selection.known_tests} known tests left out "
+        f"selection: {selection.reason}; "
+        f"{selection.left_out} of {counted(selection.known_tests, 'known test')} left out "
         f"(map: {selection.map_status}{shard})"
     ]
     groups = _reason_groups(selection.reasons)
     for (reason, is_file), count in groups[:MAX_REASON_GROUPS]:
-        noun = ("test file" if is_file else "test") + ("" if count == 1 else "s")
-        rows.append(f"  {count} {noun}: {reason}")
+        rows.append(f"  {counted(count, 'test file' if is_file else 'test')}: {reason}")
     if len(groups) > MAX_REASON_GROUPS:
-        rows.append(f"  ... {len(groups) - MAX_REASON_GROUPS} more reasons (the JSON report lists every test and why)")
+        rows.append(
+            f"  ... {counted(len(groups) - MAX_REASON_GROUPS, 'more reason')} "
+            "(the JSON report lists every test and why)"
+        )
     return rows
 
 
@@ -247,6 +255,10 @@ def _findings(findings: tuple[Finding, ...], paint: Paint) -> list[str]:
     return rows
 
 
+def _collected_nothing(report: Report) -> bool:
+    return report.run is not None and report.run.status == "no-tests"
+
+
 def waiver_of(finding: Finding) -> dict[str, str] | None:
     """The waiver record a waived finding carries (``details["waived_by"]``), else None."""
     waiver = finding.details.get("waived_by") if finding.details else None
@@ -286,6 +298,7 @@ def line_spans(lines: tuple[int, ...]) -> list[str]:
 
 
 _SPINNER = "|/-\\"
+MAX_TEST_NAME = 200  # characters of the running test's node id (the terminal's width cuts it further)
 
 
 class StageDisplay:
@@ -299,6 +312,7 @@ class StageDisplay:
         self.live = hasattr(self.stream, "isatty") and self.stream.isatty()
         self.interval = interval
         self._stage = ""
+        self._detail: tuple[str, str] | None = None  # the running tests' counts and current test, on a terminal
         self._since = time.monotonic()
         self._lock = threading.Lock()
         self._stop = threading.Event()
@@ -308,9 +322,17 @@ class StageDisplay:
         with self._lock:
             if self.live and self._stage:
                 self._draw(final=True)
-            self._stage, self._since = stage, time.monotonic()
+            self._stage, self._since, self._detail = stage, time.monotonic(), None
             if not self.live:
                 print(f"verifier: {stage}", file=self.stream, flush=True)
+
+    def tests(self, done: int, total: int, current: str) -> None:
+        """Per-test progress of the stage that runs the tests (on a terminal; elsewhere nothing)."""
+        if not self.live:
+            return
+        left = max(total - done, 0)
+        with self._lock:
+            self._detail = f"tests {done}/{total} done, {left} left", printable(current)[:MAX_TEST_NAME]
 
     def __enter__(self) -> StageDisplay:
         if self.live:
@@ -334,11 +356,24 @@ class StageDisplay:
                     self._draw(final=False, turn=turn)
             turn += 1
 
+    def _width(self) -> int:
+        try:
+            return os.get_terminal_size(self.stream.fileno()).columns or 80
+        except (OSError, ValueError, AttributeError):
+            return 80
+
     def _draw(self, final: bool, turn: int = 0) -> None:
         elapsed = time.monotonic() - self._since
         mark = "done" if final else _SPINNER[turn % len(_SPINNER)]
         end = "\n" if final else ""
-        self.stream.write(f"\r\033[2Kverifier: {self._stage} ({elapsed:.1f}s) {mark}{end}")
+        if self._detail and not final:
+            counts, current = self._detail
+            line = f"verifier: {counts} ({elapsed:.1f}s) {mark}" + (f" running {current}" if current else "")
+        else:
+            line = f"verifier: {self._stage} ({elapsed:.1f}s) {mark}"
+        if not final:  # one terminal row, or the redraw would leave the wrapped part behind
+            line = line[: self._width() - 1]
+        self.stream.write(f"\r\033[2K{line}{end}")
         self.stream.flush()
 
 

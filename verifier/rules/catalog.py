@@ -39,6 +39,14 @@ def load_all() -> Mapping[str, Rule]:
     return REGISTRY
 
 
+def closest_rule_id(text: str) -> str | None:
+    """The registered rule id nearest to ``text`` (a likely typo), or None when none is close."""
+    import difflib
+
+    close = difflib.get_close_matches(text, list(load_all()), n=1)
+    return close[0] if close else None
+
+
 def run_rules(stage: str, context: RuleContext, enabled: Callable[[Rule], bool] = lambda _rule: True) -> list[Finding]:
     """The raw findings of every rule of ``stage`` that ``enabled`` lets run, in the registry's order."""
     findings: list[Finding] = []

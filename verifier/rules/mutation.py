@@ -9,6 +9,7 @@ from typing import Any
 from verifier.models import Finding, MutantOutcome, MutationResult
 from verifier.mutation.counts import RULE_ID
 from verifier.rules import REGISTRY, RuleContext, rule
+from verifier.words import counted, plural
 
 SHOWN_TESTS = 5  # tests named in one finding; the details keep them all
 
@@ -51,8 +52,8 @@ def surviving_mutants(context: RuleContext) -> Iterator[Finding]:
         yield Finding(
             RULE_ID,
             "block",
-            f"the tests kill {killed} of {judged} mutants of the machine-written lines ({score:.1f}%, the policy "
-            f"asks for {threshold:g}%); {survived} survive"
+            f"the tests kill {killed} of {counted(judged, 'mutant')} of the machine-written lines "
+            f"({score:.1f}%, the policy asks for {threshold:g}%); {survived} {plural(survived, 'survives', 'survive')}"
             + (f", {sum(len(f.details['mutants']) for f in accepted)} accepted by waivers" if accepted else ""),
             details={"killed": killed, "survived": survived, "score": score, "threshold": threshold},
         )
@@ -72,7 +73,7 @@ def _errors(result: MutationResult) -> Iterator[Finding]:
         yield Finding(
             RULE_ID,
             "error",
-            f"{len(failed)} mutants could not be tried ({first}); the tests' strength is not verified",
+            f"{counted(len(failed), 'mutant')} could not be tried ({first}); the tests' strength is not verified",
             details={"problem": first},
         )
 

@@ -7,6 +7,7 @@ from collections.abc import Iterator
 from verifier.models import Finding
 from verifier.rules import RuleContext, rule
 from verifier.rules.machine import matches, option
+from verifier.words import counted
 
 RULE_ID = "patch.size"
 
@@ -35,6 +36,7 @@ def patch_size(context: RuleContext) -> Iterator[Finding]:
         yield Finding(
             RULE_ID,
             "warn",
-            f"{total} machine-written lines in {len(counts)} files; the policy allows {limit} per change",
+            f"{counted(total, 'machine-written line')} in {counted(len(counts), 'file')}; "
+            f"the policy allows {limit} per change",
             details={"lines": total, "limit": limit, "largest": dict(largest)},
         )

@@ -4,17 +4,11 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
-from verifier.models import Finding
+from verifier.models import INDEX, RUN_STATUS_TEXT, Finding
 from verifier.rules import RuleContext, rule
+from verifier.rules.weakened import PYTEST_FILES
 from verifier.testrun.differential import classify
-
-_INCOMPLETE = {
-    "timeout": "the test run hit its wall-clock limit and was stopped",
-    "crashed": "the test run ended without writing its results (crashed or killed)",
-    "collection-error": "pytest could not collect the tests",
-    "no-tests": "pytest collected no tests",
-    "harness-error": "the test run's results cannot be trusted or the harness failed",
-}
+from verifier.words import counted
 
 
 @rule(
@@ -49,11 +43,26 @@ def failing_tests(context: RuleContext) -> Iterator[Finding]:
             )
 
 
+GIST_CAP = 200  # characters of a failure's gist in a finding's message (the whole text is in its details)
+
+
 def _gist(message: str) -> str:
-    """The line of pytest's report that says what went wrong (its first ``E`` line), else the last line."""
+    """What went wrong, in one capped line: pytest's first ``E`` line, led by the failing ``assert``
+    statement (the ``>`` line above it) when the error is an assertion, so a bare ``AssertionError`` (an
+    assert pytest did not rewrite, in a helper module) still shows what was asserted; else the last line."""
     lines = [line.strip() for line in message.splitlines() if line.strip()]
-    errors = [line[1:].strip() for line in lines if line.startswith("E ")]
-    return errors[0] if errors else (lines[-1] if lines else "no message")
+    first_error = next((index for index, line in enumerate(lines) if line.startswith("E ")), None)
+    if first_error is None:
+        return _capped(lines[-1] if lines else "no message")
+    error = lines[first_error][1:].strip()
+    statement = next((line[1:].strip() for line in reversed(lines[:first_error]) if line.startswith(">")), "")
+    if statement.startswith("assert ") and error.startswith(("AssertionError", "assert ")):
+        return _capped(statement if error in ("AssertionError", statement) else f"{statement} ({error})")
+    return _capped(error)
+
+
+def _capped(text: str) -> str:
+    return text if len(text) <= GIST_CAP else text[: GIST_CAP - 1] + "…"
 
 
 @rule("run.incomplete", default="block", summary="the tests could not be run to the end", stage="dynamic", fixed=True)
@@ -64,7 +73,10 @@ def incomplete_run(context: RuleContext) -> Iterator[Finding]:
     run = context.run
     if run is None or run.status == "completed":
         return
-    detail = _INCOMPLETE[run.status]
+    if run.status == "no-tests":
+        yield Finding("run.incomplete", "error", _no_tests(context), details={"status": run.status})
+        return
+    detail = RUN_STATUS_TEXT[run.status]
     if run.limit_hit:
         detail += f" (limit reached: {run.limit_hit})"
     for error in run.collection_errors[:10]:
@@ -72,8 +84,27 @@ def incomplete_run(context: RuleContext) -> Iterator[Finding]:
     for problem in run.problems[:20]:
         yield Finding("run.incomplete", "error", f"cannot verify: {problem}")
     if len(run.problems) > 20:
-        yield Finding("run.incomplete", "error", f"cannot verify: {len(run.problems) - 20} more problem(s)")
+        yield Finding("run.incomplete", "error", f"cannot verify: {counted(len(run.problems) - 20, 'more problem')}")
     yield Finding("run.incomplete", "error", detail, details={"output_tail": run.output_tail[-4000:]})
+
+
+def _no_tests(context: RuleContext) -> str:
+    """One message for a run that collected nothing: where pytest looked, what cannot be verified, what to do."""
+    head = context.change.head
+    revision = "the index" if head == INDEX else head[:12]
+    paths = context.policy.test_paths
+    looked = (
+        f"the policy's tests.paths ({', '.join(paths)})"
+        if paths
+        else "the repository, or its pytest configuration's testpaths"
+    )
+    machine = context.provenance.machine_lines
+    return (
+        f"no tests were collected at {revision} (pytest looked in {looked}): the "
+        f"{counted(context.provenance.machine_line_count, 'machine-written line')} in {counted(len(machine), 'file')} "
+        f"cannot be verified; add tests (pytest collects {' and '.join(PYTEST_FILES)} files), or point the "
+        "policy's tests.paths in verifier.yaml at the folders that hold them"
+    )
 
 
 @rule(

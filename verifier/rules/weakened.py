@@ -21,6 +21,7 @@ from verifier.models import FileChange, Finding
 from verifier.rules import RuleContext, rule
 from verifier.rules.machine import base_text, glob_matcher, head_text, machine_lines, machine_removed, option
 from verifier.rules.testbody import RAISES_CALLS, Check, assertion_helpers, called_names, check_reads, checks_of
+from verifier.words import counted, plural
 
 RULE_ID = "tests.weakened"
 DEFAULT_TEST_GLOBS = ["tests/**/*.py", "test/**/*.py", "**/test_*.py", "**/*_test.py"]
@@ -400,7 +401,7 @@ def _compare_file(context: RuleContext, file: FileChange, at_base: bool, at_head
         yield Finding(
             RULE_ID,
             "block",
-            f"test file deleted ({len(base.functions)} test functions)",
+            f"test file deleted ({counted(len(base.functions), 'test function')})",
             path=file.path,
             details={"functions": sorted(base.functions)},
         )
@@ -411,8 +412,9 @@ def _compare_file(context: RuleContext, file: FileChange, at_base: bool, at_head
             yield Finding(
                 RULE_ID,
                 "block",
-                f"test file renamed from {file.old_path} to a name pytest does not collect: its {count} tests"
-                f" no longer run (pytest's default python_files: {' '.join(PYTEST_FILES)})",
+                f"test file renamed from {file.old_path} to a name pytest does not collect: "
+                f"its {counted(count, 'test')} no longer {plural(count, 'runs', 'run')} "
+                f"(pytest's default python_files: {' '.join(PYTEST_FILES)})",
                 path=file.path,
             )
             return
@@ -569,7 +571,9 @@ class _FileComparison:
             )
         if lost > len(dead):
             count = lost - len(dead)
-            yield self.finding(f"{now.qualname}: {count} of {len(before.asserts)} assertions removed", now.node.lineno)
+            yield self.finding(
+                f"{now.qualname}: {count} of {counted(len(before.asserts), 'assertion')} removed", now.node.lineno
+            )
 
     def _decorators(self, before: TestFunction, now: TestFunction) -> Iterator[Finding]:
         """A decorator added to an existing test can replace it by anything; known testing libraries' are fine."""

@@ -225,9 +225,14 @@ class _Supervision:
     """One run of one process: reads its output under the cap, enforces the wall time, reaps it."""
 
     def __init__(
-        self, process: subprocess.Popen[bytes], limits: Limits, stop: Callable[[subprocess.Popen[bytes]], None]
+        self,
+        process: subprocess.Popen[bytes],
+        limits: Limits,
+        stop: Callable[[subprocess.Popen[bytes]], None],
+        on_output: Callable[[bytes], None] | None = None,
     ) -> None:
         self.process = process
+        self.on_output = on_output
         self.limits = limits
         self.stop = stop
         self.output = CappedOutput(limits.output_bytes)
@@ -264,6 +269,7 @@ class _Supervision:
                 continue
             if chunk:
                 self.output.add(chunk)
+                show_output(self.on_output, chunk)
             else:
                 self.pipe_open = False
                 self.selector.unregister(self.pipe)
@@ -319,6 +325,16 @@ class _Supervision:
         return outcome
 
 
+def show_output(on_output: Callable[[bytes], None] | None, chunk: bytes) -> None:
+    """Hand ``chunk`` to the request's output watcher, if any; a failing watcher never stops the run."""
+    if on_output is None:
+        return
+    try:
+        on_output(chunk)
+    except Exception:  # the watcher only displays; the run and its judgement go on without it
+        return
+
+
 def supervise(
     argv: Sequence[str],
     *,
@@ -328,6 +344,7 @@ def supervise(
     preexec: Callable[[], None],
     stop: Callable[[subprocess.Popen[bytes]], None] = kill_group,
     pass_fds: Sequence[int] = (),
+    on_output: Callable[[bytes], None] | None = None,
 ) -> Outcome:
     """Run ``argv`` in its own session with stdin from /dev/null and stdout+stderr captured and capped.
 
@@ -346,7 +363,7 @@ def supervise(
         close_fds=True,
         pass_fds=tuple(pass_fds),
     )
-    supervision = _Supervision(process, limits, stop)
+    supervision = _Supervision(process, limits, stop, on_output)
     try:
         supervision.watch()
     finally:

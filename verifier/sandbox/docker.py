@@ -33,14 +33,14 @@ import tarfile
 import tempfile
 import threading
 import time
-from collections.abc import Iterator, Mapping
+from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
 from typing import TYPE_CHECKING, Any
 
 from verifier.errors import CannotVerify, SandboxUnavailable, VerifierError
 from verifier.models import Limits, SandboxRequest, SandboxResult
-from verifier.sandbox.common import COLLECT_CAP_BYTES
+from verifier.sandbox.common import COLLECT_CAP_BYTES, show_output
 from verifier.sandbox.engine import (  # re-exported: the names the backend's users know it by
     DEFAULT_IMAGE,
     IMAGE_ENV,
@@ -396,7 +396,9 @@ class _Run:
             except docker.errors.APIError as error:
                 raise _copy_in_failure(error, size_mb, self.limits.workspace_mb) from error
 
-    def execute(self, python_args: tuple[str, ...], env: Mapping[str, str]) -> _Outcome:
+    def execute(
+        self, python_args: tuple[str, ...], env: Mapping[str, str], on_output: Callable[[bytes], None] | None = None
+    ) -> _Outcome:
         """Run ``python *python_args`` in the workspace; kill at the wall limit or the output cap."""
         outcome = _Outcome()
         api = self.client.api
@@ -413,7 +415,7 @@ class _Run:
         raw = api.exec_start(exec_id, socket=True)
         watchdog.start()
         try:
-            self._read_output(raw, outcome)
+            self._read_output(raw, outcome, on_output)
         finally:
             watchdog.cancel()
             _close(raw)  # first: an unread stream would hold the engine up while it kills
@@ -423,7 +425,7 @@ class _Run:
             outcome.exit_code = api.exec_inspect(exec_id).get("ExitCode")
         return outcome
 
-    def _read_output(self, raw: Any, outcome: _Outcome) -> None:
+    def _read_output(self, raw: Any, outcome: _Outcome, on_output: Callable[[bytes], None] | None) -> None:
         from docker.utils.socket import frames_iter  # type: ignore[import-untyped,unused-ignore]
 
         _untimed(raw)
@@ -432,6 +434,7 @@ class _Run:
             for _stream, data in frames_iter(raw, tty=False):
                 room = cap - len(outcome.output)
                 outcome.output += data[: max(room, 0)]
+                show_output(on_output, data)
                 if len(data) > room:
                     outcome.truncated = True  # execute() kills the container once the stream is closed
                     return
@@ -633,7 +636,7 @@ class DockerBackend:
         refused: dict[str, str] = {}
         with box:
             box.copy_in(request.tree)
-            outcome = box.execute(request.python_args, request.env)
+            outcome = box.execute(request.python_args, request.env, request.on_output)
             exit_status, signal = _exit_and_signal(outcome.exit_code)
             # The engine's stats cost about half a second, so they are read only to explain a kill.
             cpu, peak_kb, limit_kb, _failures = box.usage() if signal else (0.0, 0, 0, 0)

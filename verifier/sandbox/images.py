@@ -33,6 +33,7 @@ from typing import TYPE_CHECKING, Any
 
 from verifier.errors import SandboxUnavailable, VerifierError
 from verifier.sandbox.engine import DEFAULT_IMAGE, IMAGE_ENV, LABEL, NAME, SANDBOX_UID, WORKSPACE, connect
+from verifier.words import counted
 
 if TYPE_CHECKING:  # the Docker SDK ships no type information (the ignore is unused where stubs exist)
     from docker import DockerClient  # type: ignore[import-untyped,unused-ignore]
@@ -208,7 +209,7 @@ def _fetch_wheels(folder: Path, requirements: list[str], python: str, progress: 
             *pip, "download", "--only-binary=:all:", f"--python-version={python}", "--implementation=cp",
             *platforms, "--dest", str(folder), "-r", str(listing),
         ]  # fmt: skip
-    progress(f"fetching wheels for {len(requirements)} requirement(s) for Python {python}")
+    progress(f"fetching wheels for {counted(len(requirements), 'requirement')} for Python {python}")
     _stream(command, progress, what="pip")
 
 
@@ -396,8 +397,8 @@ def docker_facts(image: str | None = None) -> list[tuple[str, str]]:
         endpoint = engine_endpoint()
         facts.append(("engine address", f"{endpoint.host or 'default socket'} ({endpoint.source})"))
         client = connect(timeout=10)
-    except SandboxUnavailable as error:
-        return [*facts, ("engine", f"not answering: {error}")]
+    except SandboxUnavailable:  # why, and what to do, is the backend's problem, which the doctor prints once
+        return [*facts, ("engine", "not answering")]
     try:
         facts += _engine_facts(client, image)
     finally:

@@ -151,6 +151,7 @@ class NamespaceBackend:
             limits=request.limits,
             preexec=functools.partial(_start_init, os.getpid(), group),
             stop=_ask_init_to_stop,
+            on_output=request.on_output,
         )
         status = _read_status(out_dir)
         if "error" in status:

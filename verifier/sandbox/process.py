@@ -75,6 +75,7 @@ class ProcessBackend:
                 env=env,
                 limits=request.limits,
                 preexec=_child_setup(request.limits),
+                on_output=request.on_output,
             )
             files, too_large = common.collect_files(workspace, request.collect)
             outcome = dataclasses.replace(outcome, output=outcome.output + common.too_large_note(too_large))

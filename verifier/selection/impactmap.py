@@ -24,7 +24,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from verifier import cache
-from verifier.models import Policy, RunResult, Selection
+from verifier.models import Policy, RunResult, Selection, TestProgress
 
 if TYPE_CHECKING:
     from verifier.gitio import Git
@@ -89,12 +89,14 @@ def from_run(tree: str, environment: str, run: RunResult) -> ImpactMap | None:
 
 
 def build(
-    git: Git, revision: str, policy: Policy, backend: Backend, environment: str
+    git: Git, revision: str, policy: Policy, backend: Backend, environment: str, on_test: TestProgress | None = None
 ) -> tuple[ImpactMap | None, RunResult]:
-    """Run the whole suite at ``revision`` in the sandbox and make its map (None when the run failed)."""
+    """Run the whole suite at ``revision`` in the sandbox and make its map (None when the run failed);
+    ``on_test``: per-test progress, for a display."""
     from verifier.testrun import harness as testrun
 
-    run = testrun.read_run(testrun.run_revision(git, revision, policy, Selection(whole_suite=True), backend))
+    everything = Selection(whole_suite=True)
+    run = testrun.read_run(testrun.run_revision(git, revision, policy, everything, backend, on_test=on_test))
     return from_run(tree_of(git, revision), environment, run), run
 
 

@@ -37,11 +37,12 @@ from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
-from verifier.models import INDEX, Change, FileChange, Policy, Selection
+from verifier.models import INDEX, RUN_STATUS_TEXT, Change, FileChange, Policy, Selection, TestProgress
 from verifier.pathglob import matches_any
 from verifier.selection import impactmap
 from verifier.selection.impactmap import IMPORT_TIME, ImpactMap
 from verifier.selection.imports import dotted_name
+from verifier.words import counted
 
 if TYPE_CHECKING:
     from verifier.gitio import Git
@@ -96,6 +97,7 @@ def select_tests(
     all_tests: bool = False,
     shard: tuple[int, int] | None = None,
     say: Callable[[str], None] = lambda _message: None,
+    on_test: TestProgress | None = None,
 ) -> tuple[Selection, ImpactMap | None]:
     """Choose the tests for ``change``; also return the base map when one was used (its outcomes serve
     a differential run)."""
@@ -109,7 +111,7 @@ def select_tests(
     trigger = whole_suite_trigger(change, policy)
     if trigger:
         return whole_suite(trigger, shard), None
-    impact, status = obtain_map(git, change.base, policy, backend, say)
+    impact, status = obtain_map(git, change.base, policy, backend, say, on_test)
     if impact is None and settings.without_map == "all":
         return whole_suite(f"no who-tests-what map of the base revision ({status})", shard, status), None
     picks = plan(
@@ -142,7 +144,12 @@ def whole_suite_trigger(change: Change, policy: Policy) -> str | None:
 
 
 def obtain_map(
-    git: Git, base: str, policy: Policy, backend: Backend, say: Callable[[str], None]
+    git: Git,
+    base: str,
+    policy: Policy,
+    backend: Backend,
+    say: Callable[[str], None],
+    on_test: TestProgress | None = None,
 ) -> tuple[ImpactMap | None, str]:
     """The base revision's map: from the cache, else built now when the policy allows; with its status."""
     environment = impactmap.environment_key(policy, backend)
@@ -164,9 +171,9 @@ def obtain_map(
             impactmap.save(git, updated)
             return updated, "updated"
     say("building the who-tests-what map: the whole suite at base, under coverage")
-    built, run = impactmap.build(git, base, policy, backend, environment)
+    built, run = impactmap.build(git, base, policy, backend, environment, on_test)
     if built is None:
-        return None, f"could not be built: the run at base ended '{run.status}'"
+        return None, f"could not be built: at base, {RUN_STATUS_TEXT[run.status]}"
     impactmap.save(git, built)
     return built, "built"
 
@@ -175,7 +182,8 @@ def to_selection(picks: Picks, impact: ImpactMap | None, status: str, shard: tup
     reasons = {key: tuple(value) for key, value in {**picks.node_ids, **picks.files}.items()}
     known = set(impact.outcomes) if impact else set()
     chosen = set(picks.node_ids) | (impact.tests_defined_in(picks.files) if impact else set())
-    described = f"{len(picks.node_ids)} test(s) and {len(picks.files)} test file(s) that can observe the change"
+    tests, files = counted(len(picks.node_ids), "test"), counted(len(picks.files), "test file")
+    described = f"{tests} and {files} that can observe the change"
     return Selection(
         whole_suite=False,
         node_ids=tuple(sorted(picks.node_ids)),

@@ -22,6 +22,7 @@ from verifier import cache
 from verifier.models import Change, Policy, RunResult, Selection, TestOutcome
 from verifier.selection import impactmap
 from verifier.selection.impactmap import ImpactMap
+from verifier.words import counted
 
 if TYPE_CHECKING:
     from verifier.gitio import Git
@@ -81,7 +82,7 @@ def with_baseline(
     cached = _load(target)
     if cached is not None:
         return replace(run, baseline=cached)
-    say(f"running the {len(wanted)} test(s) at base for the differential run")
+    say(f"running the {counted(len(wanted), 'test')} at base for the differential run")
     baseline = _run_at_base(git, change.base, policy, selection, backend, wanted)
     if baseline is not None:
         _store(target, baseline)

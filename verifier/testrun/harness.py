@@ -18,6 +18,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import re
 import secrets
 import shutil
 import tempfile
@@ -36,6 +37,7 @@ from verifier.models import (
     SandboxResult,
     Selection,
     TestOutcome,
+    TestProgress,
 )
 from verifier.testrun import integrity
 
@@ -90,6 +92,7 @@ class Prepared:
     folder: str  # the harness folder's name in the workspace
     analyses: Mapping[str, SourceAnalysis | None] = field(default_factory=dict)  # judged file -> host analysis
     known: frozenset[str] = frozenset()  # the tree's Python files: the only paths coverage data may name
+    progress_token: str | None = None  # marks the supervisor's progress lines in the output
 
 
 @dataclass(frozen=True)
@@ -102,11 +105,19 @@ class HarnessRun:
     analyses: Mapping[str, SourceAnalysis | None] = field(default_factory=dict)
     judged: tuple[str, ...] = ()
     known: frozenset[str] | None = None  # None: any path inside the workspace
+    progress_token: str | None = None
 
 
-def prepare(tree: Path, policy: Policy, selection: Selection, report_files: tuple[str, ...] = ()) -> Prepared:
+def prepare(
+    tree: Path,
+    policy: Policy,
+    selection: Selection,
+    report_files: tuple[str, ...] = (),
+    on_test: TestProgress | None = None,
+) -> Prepared:
     """Copy the harness into the materialised ``tree`` and describe the sandboxed run; the judged files
-    (``report_files``) are analysed here, from the committed source, before anything runs."""
+    (``report_files``) are analysed here, from the committed source, before anything runs. With
+    ``on_test``, the supervisor streams per-test progress, which reaches ``on_test`` as the run goes."""
     from verifier.testrun.measure import analyse_source
 
     analyses = {path: _analyse(tree, path, analyse_source) for path in report_files}
@@ -122,6 +133,7 @@ def prepare(tree: Path, policy: Policy, selection: Selection, report_files: tupl
     (target / "coveragerc").write_text(COVERAGERC.format(folder=folder, patch=""))
     (target / "coveragerc-parallel").write_text(COVERAGERC.format(folder=folder, patch=PARALLEL_PATCH))
     key = secrets.token_bytes(32)
+    progress_token = f"verifier-progress-{secrets.token_hex(8)}" if on_test else None
     targets = list(policy.test_paths) if selection.whole_suite else _test_files(tree, selection)
     settings = {
         "key": key.hex(),
@@ -134,6 +146,7 @@ def prepare(tree: Path, policy: Policy, selection: Selection, report_files: tupl
         "workers": workers_for(policy, selection),
         "reruns": policy.selection.reruns,
         "measure": True,
+        "progress": progress_token,
     }
     (target / "settings.json").write_text(json.dumps(settings))
     request = SandboxRequest(
@@ -142,8 +155,46 @@ def prepare(tree: Path, policy: Policy, selection: Selection, report_files: tupl
         env=dict(ENV_BASE),
         limits=policy.limits,
         collect=(f"{folder}/{SEALED}",),
+        on_output=ProgressReader(progress_token, on_test).feed if progress_token and on_test else None,
     )
-    return Prepared(request, key, folder, analyses, known)
+    return Prepared(request, key, folder, analyses, known, progress_token)
+
+
+class ProgressReader:
+    """Finds the supervisor's progress lines (``<token> <done> <total> <node id>``) in the output as it
+    arrives and hands them to a display. Sandbox output is untrusted: the numbers are only shown."""
+
+    LINE_CAP = 4096  # bytes of one unfinished progress line kept; a longer one is no progress line
+
+    def __init__(self, token: str, on_test: TestProgress) -> None:
+        self.marker = token.encode() + b" "
+        self.on_test = on_test
+        self.pending = b""
+
+    def feed(self, chunk: bytes) -> None:
+        self.pending += chunk
+        while True:
+            start = self.pending.find(self.marker)
+            if start < 0:
+                self.pending = self.pending[-len(self.marker) :]
+                return
+            end = self.pending.find(b"\n", start)
+            if end < 0:
+                self.pending = self.pending[start:] if len(self.pending) - start <= self.LINE_CAP else b""
+                return
+            self._line(self.pending[start + len(self.marker) : end].decode("utf-8", "replace"))
+            self.pending = self.pending[end + 1 :]
+
+    def _line(self, text: str) -> None:
+        done, _, rest = text.partition(" ")
+        total, _, test = rest.partition(" ")
+        if done.isdigit() and total.isdigit():
+            self.on_test(int(done), int(total), test[:200])
+
+
+def without_progress(output: str, token: str | None) -> str:
+    """The output as the tests wrote it: the supervisor's progress lines taken out."""
+    return output if token is None else re.sub(f"{re.escape(token)} [^\n]*\n", "", output)
 
 
 def python_files(tree: Path) -> frozenset[str]:
@@ -191,9 +242,16 @@ def _test_files(tree: Path, selection: Selection) -> list[str]:
 
 
 def run_revision(
-    git: Git, revision: str, policy: Policy, selection: Selection, backend: Backend, report_files: tuple[str, ...] = ()
+    git: Git,
+    revision: str,
+    policy: Policy,
+    selection: Selection,
+    backend: Backend,
+    report_files: tuple[str, ...] = (),
+    on_test: TestProgress | None = None,
 ) -> HarnessRun:
-    """Materialise ``revision`` (a commit, or INDEX) outside the repository and run its tests in ``backend``."""
+    """Materialise ``revision`` (a commit, or INDEX) outside the repository and run its tests in ``backend``
+    (``on_test``: per-test progress, for a display)."""
     workdir = Path(tempfile.mkdtemp(prefix="verifier-tree-"))
     try:
         tree = workdir / "tree"
@@ -201,9 +259,17 @@ def run_revision(
             git.export_index(tree)
         else:
             git.export_commit(revision, tree)
-        prepared = prepare(tree, policy, selection, report_files)
+        prepared = prepare(tree, policy, selection, report_files, on_test)
         result = backend.run(prepared.request)
-        return HarnessRun(result, prepared.key, prepared.folder, prepared.analyses, tuple(report_files), prepared.known)
+        return HarnessRun(
+            result,
+            prepared.key,
+            prepared.folder,
+            prepared.analyses,
+            tuple(report_files),
+            prepared.known,
+            prepared.progress_token,
+        )
     finally:
         shutil.rmtree(workdir, ignore_errors=True)
 
@@ -217,7 +283,7 @@ def read_run(run: HarnessRun) -> RunResult:
     common: dict[str, Any] = {
         "backend": result.backend,
         "isolation": result.isolation,
-        "output_tail": result.output[-8000:],
+        "output_tail": without_progress(result.output, run.progress_token)[-8000:],
         "wall_seconds": result.wall_seconds,
         "limit_hit": result.limit_hit,
     }

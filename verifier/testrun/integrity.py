@@ -19,6 +19,7 @@ from dataclasses import dataclass, field
 from typing import Any, Literal
 
 from verifier.models import TestOutcome
+from verifier.words import counted, plural
 
 SEAL_FORMAT = 1
 PHASES = ("setup", "call", "teardown")
@@ -87,7 +88,10 @@ def read_session(part: Any, asked: Sequence[str] | None = None) -> SessionReadin
     if part.get("held_open"):
         problems.append("a process left behind by the tests held the results channel open")
     if part.get("bad_lines"):
-        problems.append(f"{part['bad_lines']} line(s) on the results channel were not records")
+        bad = part["bad_lines"]
+        problems.append(
+            f"{counted(bad, 'line')} on the results channel {plural(bad, 'was not a record', 'were not records')}"
+        )
     phases, errors, collected, shard, finish, end = _walk(part["records"], problems)
     exit_code = _exit_code(returncode, finish, end, problems)
     tests = tuple(_fold(node_id, records) for node_id, records in phases.items())
@@ -130,7 +134,7 @@ def _walk(
             end = _int(record.get("exit"))
             if end is None:
                 problems.append("the session's end record has no exit code")
-        elif kind != "coverage":
+        elif kind not in ("coverage", "start"):  # a test's start feeds only the progress display
             problems.append(f"an unknown record kind on the results channel: {str(kind)[:40]!r}")
     return phases, errors, collected, shard, finish, end
 
@@ -176,7 +180,7 @@ def _check_counts(
     if collected is None:
         problems.append("the session did not report how many tests it collected")
     elif recorded != collected:
-        problems.append(f"{collected} test(s) collected but {recorded} recorded")
+        problems.append(f"{counted(collected, 'test')} collected but {recorded} recorded")
     if asked is not None and not set(phases) <= set(asked):
         problems.append("a re-run recorded tests it was not asked to run")
 

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from verifier.audit.model import DEFINITIONS, Audit, Group, MutantCounts
 from verifier.audit.report.numbers import count, percent
+from verifier.words import counted
 
 
 def render(audit: Audit) -> str:
@@ -11,15 +12,15 @@ def render(audit: Audit) -> str:
     lines = [
         f"# Machine-written code on {audit.ref}: {w.since[:10]} to {w.until[:10]}",
         "",
-        f"- {w.machine_commits} of {w.commits} commits machine-written; {w.machine_lines_added} of "
+        f"- {w.machine_commits} of {counted(w.commits, 'commit')} machine-written; {w.machine_lines_added} of "
         f"{w.lines_added} added lines ({percent(w.machine_share)})",
         f"- checked by the gate: {w.verified} of {w.machine_commits} ({percent(w.verified_share)}); passed: "
         f"{w.passed} of {w.machine_commits}; **{w.unverified} unverified**, **{w.blocked_merged} merged although "
         f"blocked**; {w.skipped_at_commit} skipped at commit time",
         f"- alive at the window's end: {w.machine_lines_alive} of {w.machine_lines_added} machine lines "
         f"({percent(w.survival)}); {w.machine_lines_churned} rewritten within {audit.churn_days} days; "
-        f"{len(audit.reverts)} reverts of machine commits",
-        f"- mutants: {_mutant_summary(w.mutants)}; {w.mutation_no_data} machine commits without mutation data",
+        f"{counted(len(audit.reverts), 'revert')} of machine commits",
+        f"- mutants: {_mutant_summary(w.mutants)}; {counted(w.mutation_no_data, 'machine commit')} without mutation data",
         "",
     ]
     lines += [f"> {problem}" for problem in audit.problems] + ([""] if audit.problems else [])

@@ -148,6 +148,10 @@ class Recorder:
         if self.send is not None and report.failed:
             self.send({"kind": "collect-error", "nodeid": str(report.nodeid), "message": message_of(report)})
 
+    def pytest_runtest_logstart(self, nodeid: str, location: Any) -> None:
+        if self.send is not None:  # for the progress display only; the judged records are the phases
+            self.send({"kind": "start", "nodeid": str(nodeid)})
+
     def pytest_runtest_logreport(self, report: Any) -> None:
         if self.send is not None:
             self.send(phase_record(report))

@@ -24,11 +24,13 @@ import hmac
 import importlib.util
 import json
 import os
+import select
 import signal
 import subprocess
 import sys
 import tempfile
 import threading
+import time
 from typing import Any
 
 FORMAT = 1
@@ -37,6 +39,8 @@ COVERAGE_CAP_BYTES = 24 << 20  # size of the coverage export; beyond it coverage
 DATA_FILE_CAP_BYTES = 256 << 20  # coverage.py's data file is read into memory at most this large
 DRAIN_SECONDS = 5.0  # how long the records pipe may stay open after the child ended
 PR_SET_DUMPABLE = 4
+PROGRESS_SECONDS = 0.25  # at most one progress line this often (the lines count against the output cap)
+PROGRESS_PENDING_CAP = 1 << 20  # bytes of an unfinished record line the progress display looks at
 
 
 def make_undumpable() -> bool:
@@ -57,17 +61,69 @@ def load_settings(folder: str) -> dict[str, Any]:
     return dict(settings)
 
 
+class ProgressLines:
+    """Per-test progress for the host's display, written to stdout as ``<token> <done> <total> <node id>``
+    lines while the records arrive. Display only: the host removes these lines from the output and judges
+    the sealed records alone."""
+
+    def __init__(self, token: str) -> None:
+        self.token = token
+        self.pending = b""
+        self.done = self.total = 0
+        self.current = ""
+        self.last = 0.0
+        self.unsent = False
+
+    def feed(self, chunk: bytes) -> None:
+        *lines, self.pending = (self.pending + chunk).split(b"\n")
+        if len(self.pending) > PROGRESS_PENDING_CAP:
+            self.pending = b""
+        for line in lines:
+            self._record(line)
+
+    def _record(self, line: bytes) -> None:
+        try:
+            record = json.loads(line)
+        except ValueError:
+            return
+        if not isinstance(record, dict):
+            return
+        kind = record.get("kind")
+        if kind == "collected" and isinstance(record.get("count"), int):
+            self.total = record["count"]
+        elif kind == "start":
+            self.current = " ".join(str(record.get("nodeid")).split())[:200]
+        elif kind == "phase" and record.get("when") == "teardown":
+            self.done += 1
+        else:
+            return
+        self.unsent = True
+        self.flush(at_most_every=PROGRESS_SECONDS)
+
+    def flush(self, at_most_every: float = 0.0) -> None:
+        """Write the latest state if it was not written yet (and the last line is ``at_most_every`` old)."""
+        now = time.monotonic()
+        if self.unsent and now - self.last >= at_most_every:
+            self.last, self.unsent = now, False
+            with contextlib.suppress(OSError):  # one write, shorter than a pipe's atomic size
+                os.write(1, f"{self.token} {self.done} {self.total} {self.current}\n".encode("utf-8", "replace"))
+
+
 class RecordReader(threading.Thread):
     """Reads JSON-line records from a pipe into a list, at most ``cap`` bytes."""
 
-    def __init__(self, fd: int, cap: int = RECORDS_CAP_BYTES) -> None:
+    def __init__(self, fd: int, cap: int = RECORDS_CAP_BYTES, progress: ProgressLines | None = None) -> None:
         super().__init__(daemon=True)
         self.fd, self.cap = fd, cap
         self.buffer = bytearray()
         self.overflow = False
+        self.progress = progress
 
     def run(self) -> None:
         while True:
+            if self.progress is not None and not select.select([self.fd], [], [], PROGRESS_SECONDS)[0]:
+                self.progress.flush(at_most_every=PROGRESS_SECONDS)  # the state a throttled record left
+                continue
             try:
                 chunk = os.read(self.fd, 1 << 16)
             except OSError:
@@ -78,6 +134,8 @@ class RecordReader(threading.Thread):
                 self.overflow = True
                 continue  # keep reading (and dropping) so the child never blocks on a full pipe
             self.buffer += chunk
+            if self.progress is not None:
+                self.progress.feed(chunk)
 
     def records(self) -> tuple[list[Any], int]:
         """The records read, and how many lines were not JSON."""
@@ -93,11 +151,12 @@ class RecordReader(threading.Thread):
         return parsed, bad
 
 
-def run_child(settings: dict[str, Any], child: dict[str, Any]) -> dict[str, Any]:
-    """Run one pytest session (``session.py``) and gather what it reported."""
+def run_child(settings: dict[str, Any], child: dict[str, Any], progress: str | None = None) -> dict[str, Any]:
+    """Run one pytest session (``session.py``) and gather what it reported (with ``progress``, a token:
+    per-test progress lines on stdout)."""
     records_read, records_write = os.pipe()
     settings_read, settings_write = os.pipe()
-    reader = RecordReader(records_read)
+    reader = RecordReader(records_read, progress=ProgressLines(progress) if progress else None)
     reader.start()
     command = [sys.executable, "-I", os.path.join(settings["harness"], "session.py")]
     process = subprocess.Popen(
@@ -239,7 +298,8 @@ def supervise(settings: dict[str, Any]) -> dict[str, Any]:
     data_dir = os.path.join(settings["harness"], "data")
     measure = bool(settings.get("measure", True))
     first_file = os.path.join(data_dir, "run")
-    first = run_child(settings, child_settings(settings, settings.get("selection"), measure, first_file))
+    first_settings = child_settings(settings, settings.get("selection"), measure, first_file)
+    first = run_child(settings, first_settings, settings.get("progress"))
     coverage, coverage_problem = coverage_result({**settings, "measure": measure, "data_file": first_file}, first)
     reruns = []
     still = failing(first["records"])
