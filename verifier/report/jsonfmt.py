@@ -9,6 +9,11 @@ FORMAT_VERSION history (one line per version):
   2: adds "mutants" (every mutant of the machine-written lines: path, line, status, original, mutated, tests,
      where original/mutated are the full text of the lines it changes), "mutation" (the counts and score) and
      "tests_at_base" (new or changed tests run with a changed file as it was at base: test, path, status).
+     added since: "finding_counts" (findings per rule, exact), the ``report.left-out`` finding (what the
+     caps of verifier.report.bounds left out of the detail), tests.failed_ids / flaky_ids / outcomes
+     capped at bounds.MAX_LISTED_TESTS with tests.listed_left_out (tests not listed; counts stay exact;
+     a --shard report's "shard" section keeps every test, which merge-reports needs). Bytes of a name
+     that are not UTF-8 are written as the text ``\\xNN``.
 """
 
 from __future__ import annotations
@@ -17,6 +22,7 @@ import json
 from typing import Any
 
 from verifier.models import Report, RunResult, to_plain
+from verifier.report.bounds import MAX_LISTED_TESTS, rule_counts, valid_text
 
 SUFFIX = "json"  # a report of this format written into a folder is report.json
 FOR_MACHINES = True  # tools read it: alone on stdout
@@ -79,6 +85,7 @@ def as_dict(report: Report) -> dict[str, Any]:
             }
             for f in report.findings
         ],
+        "finding_counts": rule_counts(report),
         "notes": list(report.notes),
         "waivers_used": [
             {
@@ -133,17 +140,21 @@ def _tests(report: Report) -> dict[str, Any]:
     run = report.run
     if run is None:
         return {"run": 0, "passed": 0, "failed": 0, "errors": 0, "skipped": 0, "failed_ids": []}
+    failed = [t.node_id for t in run.tests if t.outcome in ("failed", "error")]
+    flaky = [t.node_id for t in run.tests if t.outcome == "flaky"]
+    listed = run.tests[:MAX_LISTED_TESTS]
     return {
         "run": len(run.tests),
         "passed": run.count("passed"),
         "failed": run.count("failed"),
         "errors": run.count("error"),
         "skipped": run.count("skipped"),
-        "failed_ids": [t.node_id for t in run.tests if t.outcome in ("failed", "error")],
+        "failed_ids": failed[:MAX_LISTED_TESTS],
         "flaky": run.count("flaky"),
-        "flaky_ids": [t.node_id for t in run.tests if t.outcome == "flaky"],
-        "outcomes": [{"node_id": t.node_id, "outcome": t.outcome, "attempts": t.attempts} for t in run.tests],
+        "flaky_ids": flaky[:MAX_LISTED_TESTS],
+        "outcomes": [{"node_id": t.node_id, "outcome": t.outcome, "attempts": t.attempts} for t in listed],
         "differential": _differential(run),
+        **({"listed_left_out": len(run.tests) - len(listed)} if len(run.tests) > len(listed) else {}),
     }
 
 
@@ -204,8 +215,8 @@ def error_dict(message: str, exit_code: int) -> dict[str, Any]:
 
 
 def render(report: Report) -> str:
-    return json.dumps(as_dict(report), indent=2, ensure_ascii=False) + "\n"
+    return json.dumps(valid_text(as_dict(report)), indent=2, ensure_ascii=False) + "\n"
 
 
 def render_error(message: str, exit_code: int) -> str:
-    return json.dumps(error_dict(message, exit_code), indent=2, ensure_ascii=False) + "\n"
+    return json.dumps(valid_text(error_dict(message, exit_code)), indent=2, ensure_ascii=False) + "\n"

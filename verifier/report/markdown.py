@@ -8,6 +8,7 @@ from __future__ import annotations
 import re
 
 from verifier.models import Finding, Report
+from verifier.report.bounds import MAX_LISTED_TESTS, MAX_TEST_REPORTS, finding_count
 from verifier.report.text import line_spans, printable, waiver_of
 
 SUFFIX = "md"  # a report of this format written into a folder is report.md
@@ -94,7 +95,7 @@ def _findings(report: Report) -> str:
     shown = [f for f in report.findings if f.rule != "coverage.new-lines" or f.line is None]
     if not report.findings:
         return "### Findings\n\nNone."
-    rows = [f"### Findings ({len(report.findings)})"]
+    rows = [f"### Findings ({finding_count(report)})"]
     rows += [_finding(f, report) for f in shown]
     uncovered = [f for f in report.findings if f.rule == "coverage.new-lines" and f.line is not None]
     if uncovered:
@@ -147,13 +148,18 @@ def _test_details(report: Report) -> str:
     parts = []
     if failing:
         body = "\n\n".join(
-            f"`{_inline(t.node_id)}` ({t.outcome})\n\n{_fence(t.message.strip() or 'no message')}" for t in failing
+            f"`{_inline(t.node_id)}` ({t.outcome})\n\n{_fence(t.message.strip() or 'no message')}"
+            for t in failing[:MAX_TEST_REPORTS]
         )
+        if len(failing) > MAX_TEST_REPORTS:
+            body += f"\n\n… and {len(failing) - MAX_TEST_REPORTS} more failing test(s), their reports left out"
         parts.append(_details(f"{len(failing)} failing test(s)", body))
     if run.collection_errors:
         parts.append(_details("collection errors", _fence("\n".join(run.collection_errors))))
     if run.tests:
-        listing = "\n".join(f"{t.outcome:<8} {t.node_id}" for t in run.tests)
+        listing = "\n".join(f"{t.outcome:<8} {t.node_id}" for t in run.tests[:MAX_LISTED_TESTS])
+        if len(run.tests) > MAX_LISTED_TESTS:
+            listing += f"\n… and {len(run.tests) - MAX_LISTED_TESTS} more"
         parts.append(_details(f"all {len(run.tests)} test(s) the gate ran", _fence(listing)))
     return "\n\n".join(parts)
 
