@@ -42,11 +42,14 @@ def test_price_by_case(case):
 UNTESTED = "def rebate(order):\n    if order.vip:\n        return 5\n    return 0\n"
 NO_RERUNS = "selection:\n  reruns: 0\n"  # one run per failing case keeps the flood quick
 
-# The measured sizes of the flood before the bounds (PR 17's report): note 1.6 MB, JSON 4 MB, stdout 1 MB.
-JSON_BOUND = 512_000  # bytes: the JSON report of the flood, measured under 300 KB
-STDOUT_BOUND = 128_000  # bytes: the terminal view of the flood, measured under 40 KB
-MARKDOWN_BOUND = 128_000
-SARIF_BOUND = 512_000
+# Sizes of this flood measured on one run: before the bounds stdout 4.1 MB, note 308 KB, JSON 10.3 MB,
+# SARIF 11.1 MB, Markdown 9.4 MB, JUnit 13.8 MB; with them stdout 28 KB, note 16 KB, JSON 200 KB,
+# SARIF 196 KB, Markdown 73 KB, JUnit 606 KB (one test case per test). The bounds below leave some room.
+JSON_BOUND = 256_000
+SARIF_BOUND = 256_000
+STDOUT_BOUND = 64_000
+MARKDOWN_BOUND = 96_000
+JUNIT_BOUND_PER_TEST = 250  # bytes: JUnit has one test case per test, each kept short beyond the caps
 
 
 def gate(repo: Path, *args: str) -> subprocess.CompletedProcess[bytes]:
@@ -149,6 +152,7 @@ def test_the_machine_formats_of_a_flood_are_bounded_and_valid(flood: dict) -> No
     assert tests_suite is not None
     ran = json.loads((out / "report.json").read_text())["tests"]["run"]
     assert tests_suite.get("tests") == str(ran) and tests_suite.get("failures") == str(CASES)
+    assert (out / "report.junit.xml").stat().st_size < JUNIT_BOUND_PER_TEST * ran
     kept = [case for case in tests_suite.iter("failure") if case.text and "padding" in case.text]
     assert len(kept) == bounds.MAX_TEST_REPORTS
 
@@ -177,10 +181,10 @@ def test_a_non_utf8_name_reaches_every_format_as_valid_text(tmp_path: Path) -> N
     repo = ScratchRepo(tmp_path / "repo")
     repo.commit("Start parcelkit", BASE_FILES)
     with open(os.path.join(os.fsencode(repo.path), b"parcelkit/caf\xe9.py"), "wb") as handle:
-        handle.write(UNTESTED.encode())
+        handle.write(b"def rebate(order):\n    return eval(order.code)\n")  # a banned call: a finding on the file
     sha = repo.commit(machine("Cafe rebate"))
     done = gate(repo.path, "HEAD", "--format", "all", "--output", str(tmp_path / "out"))
-    assert done.returncode == 1, done.stderr.decode(errors="replace")
+    assert done.returncode in (1, 3), done.stderr.decode(errors="replace")
     assert b"internal error" not in done.stdout + done.stderr
     out = tmp_path / "out"
     texts = {name: (out / name).read_bytes().decode("utf-8") for name in os.listdir(out)}  # strict UTF-8
@@ -198,7 +202,7 @@ def test_a_non_utf8_name_reaches_every_format_as_valid_text(tmp_path: Path) -> N
         assert "caf\\xe9.py" in texts[name]
     assert "caf\\xe9.py" in done.stdout.decode("utf-8")
     note = note_text(repo, sha).decode("utf-8")
-    assert json.loads(note)["checks"][-1]["verdict"] == "block" and "caf\\\\xe9.py" in note
+    assert json.loads(note)["checks"][-1]["verdict"] == report["verdict"] and "caf\\\\xe9.py" in note
 
 
 # -- on data: the caps never change a verdict ---------------------------------------------------------------
@@ -234,3 +238,13 @@ def test_a_long_message_is_cut_with_a_marker() -> None:
     (finding,) = bounds.bounded(_report([Finding("calls.banned", "block", message, "pk/b.py", 1)])).findings
     assert finding.message.startswith("x" * bounds.MAX_MESSAGE_CHARS)
     assert finding.message.endswith("[123 more characters left out]")
+
+
+def test_an_output_tail_keeps_its_end() -> None:
+    tail = "collected 1 item\n" + "." * bounds.MAX_DETAIL_CHARS + "\nUnicodeEncodeError: the real cause"
+    finding = Finding("run.incomplete", "error", "the harness failed", details={"output_tail": tail})
+    (kept,) = bounds.bounded(_report([finding])).findings
+    assert kept.details["output_tail"].endswith("UnicodeEncodeError: the real cause")
+    assert kept.details["output_tail"].startswith(
+        f"[{len(tail) - bounds.MAX_DETAIL_CHARS} earlier characters left out]"
+    )

@@ -26,15 +26,15 @@ from typing import Any
 
 from verifier.models import Finding, Report, RunResult, TestOutcome
 
-MAX_PER_RULE = 50  # findings of one rule kept in detail
+MAX_PER_RULE = 25  # findings of one rule kept in detail
 MAX_FINDINGS = 200  # findings kept in detail in all (the summary finding aside)
 MAX_MESSAGE_CHARS = 1000  # characters of a finding's message
 MAX_DETAIL_CHARS = 2000  # characters of each text in a finding's details (a pytest report, an output tail)
-MAX_TEST_REPORTS = 20  # failing tests whose pytest report (message) is kept; the others get a marker
+MAX_TEST_REPORTS = 10  # failing tests whose pytest report (message) is kept; the others get a marker
 MAX_TEST_MESSAGE_CHARS = 2000  # characters of each kept pytest report
 MAX_LISTED_TESTS = 500  # tests listed one by one in the JSON, SARIF and Markdown lists (counts stay exact)
 LEFT_OUT_RULE = "report.left-out"
-LEFT_OUT_REPORT = f"[report left out: only the first {MAX_TEST_REPORTS} failing tests keep theirs]"
+LEFT_OUT_REPORT = f"[left out: over the cap of {MAX_TEST_REPORTS} kept reports]"
 
 _SEVERITY_ORDER = {"error": 0, "block": 1, "warn": 2, "info": 3}
 _SURROGATE = re.compile("[\udc80-\udcff]")
@@ -67,10 +67,13 @@ def finding_count(report: Report) -> int:
     return sum(rule_counts(report).values())
 
 
-def shortened(text: str, limit: int) -> str:
-    """``text`` cut to ``limit`` characters, with a marker saying how much was cut."""
+def shortened(text: str, limit: int, from_end: bool = False) -> str:
+    """``text`` cut to ``limit`` characters, with a marker saying how much was cut (``from_end``: the last
+    characters are kept, for an output tail)."""
     if len(text) <= limit:
         return text
+    if from_end:
+        return f"[{len(text) - limit} earlier characters left out] … {text[-limit:]}"
     return f"{text[:limit]} … [{len(text) - limit} more characters left out]"
 
 
@@ -134,11 +137,11 @@ def _short_finding(finding: Finding) -> Finding:
     return dataclasses.replace(finding, message=message, details=details)
 
 
-def _short_details(value: Any) -> Any:
+def _short_details(value: Any, key: str = "") -> Any:
     if isinstance(value, str):
-        return shortened(value, MAX_DETAIL_CHARS)
+        return shortened(value, MAX_DETAIL_CHARS, from_end=key.endswith("tail"))
     if isinstance(value, Mapping):
-        return {key: _short_details(item) for key, item in value.items()}
+        return {name: _short_details(item, str(name)) for name, item in value.items()}
     if isinstance(value, (list, tuple)):
         return type(value)(_short_details(item) for item in value)
     return value

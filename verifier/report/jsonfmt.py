@@ -10,10 +10,10 @@ FORMAT_VERSION history (one line per version):
      where original/mutated are the full text of the lines it changes), "mutation" (the counts and score) and
      "tests_at_base" (new or changed tests run with a changed file as it was at base: test, path, status).
      added since: "finding_counts" (findings per rule, exact), the ``report.left-out`` finding (what the
-     caps of verifier.report.bounds left out of the detail), tests.failed_ids / flaky_ids / outcomes
-     capped at bounds.MAX_LISTED_TESTS with tests.listed_left_out (tests not listed; counts stay exact;
-     a --shard report's "shard" section keeps every test, which merge-reports needs). Bytes of a name
-     that are not UTF-8 are written as the text ``\\xNN``.
+     caps of verifier.report.bounds left out of the detail); tests.failed_ids, flaky_ids, outcomes and
+     each class of tests.differential list at most bounds.MAX_LISTED_TESTS tests, tests.listed_left_out
+     and tests.differential_counts give the exact numbers (a --shard report's "shard" section keeps every
+     test: merge-reports needs them). Bytes of a name that are not UTF-8 are written as the text ``\\xNN``.
 """
 
 from __future__ import annotations
@@ -154,18 +154,29 @@ def _tests(report: Report) -> dict[str, Any]:
         "flaky_ids": flaky[:MAX_LISTED_TESTS],
         "outcomes": [{"node_id": t.node_id, "outcome": t.outcome, "attempts": t.attempts} for t in listed],
         "differential": _differential(run),
+        "differential_counts": _differential_counts(run),
         **({"listed_left_out": len(run.tests) - len(listed)} if len(run.tests) > len(listed) else {}),
     }
 
 
 def _differential(run: RunResult) -> dict[str, list[str]] | None:
-    """Node ids by class (broken, fixed, still-failing, new, unchanged) when a differential run happened."""
+    """Node ids by class (broken, fixed, still-failing, new, unchanged) when a differential run happened,
+    at most bounds.MAX_LISTED_TESTS of each (``differential_counts`` has the exact numbers)."""
     if run.baseline is None:
         return None
     from verifier.testrun.differential import CLASSES, classify_run
 
     classes = classify_run(run.tests, run.baseline)
-    return {name: sorted(test for test, found in classes.items() if found == name) for name in CLASSES}
+    return {name: sorted(t for t, found in classes.items() if found == name)[:MAX_LISTED_TESTS] for name in CLASSES}
+
+
+def _differential_counts(run: RunResult) -> dict[str, int] | None:
+    if run.baseline is None:
+        return None
+    from verifier.testrun.differential import CLASSES, classify_run
+
+    classes = list(classify_run(run.tests, run.baseline).values())
+    return {name: classes.count(name) for name in CLASSES}
 
 
 def _selection(report: Report) -> dict[str, Any] | None:
