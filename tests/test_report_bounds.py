@@ -205,6 +205,22 @@ def test_a_non_utf8_name_reaches_every_format_as_valid_text(tmp_path: Path) -> N
     assert json.loads(note)["checks"][-1]["verdict"] == report["verdict"] and "caf\\\\xe9.py" in note
 
 
+@pytest.mark.slow
+def test_a_lone_surrogate_in_a_failure_message_is_written_as_text(tmp_path: Path) -> None:
+    """The attack: a message no UTF-8 encoder accepts, to turn the verdict into an internal error."""
+    repo = ScratchRepo(tmp_path / "repo")
+    repo.commit("Start parcelkit", {**BASE_FILES, "verifier.yaml": NO_RERUNS})
+    test = "from parcelkit.rates import price\n\n\ndef test_one_kilo():\n    assert price(1) == 0, '\\ud800' + 'x'\n"
+    repo.commit(machine("A wrong expectation"), {"tests/test_kilo.py": test})
+    done = gate(repo.path, "HEAD", "--format", "all", "--output", str(tmp_path / "out"))
+    assert done.returncode == 1, done.stderr.decode(errors="replace")
+    assert b"internal error" not in done.stdout + done.stderr
+    out = tmp_path / "out"
+    texts = {name: (out / name).read_bytes().decode("utf-8") for name in os.listdir(out)}  # strict UTF-8
+    assert all("\\ud800x" in text for text in texts.values()), [n for n, t in texts.items() if "\\ud800x" not in t]
+    assert json.loads(texts["report.json"])["verdict"] == "block"
+
+
 # -- on data: the caps never change a verdict ---------------------------------------------------------------
 
 

@@ -37,7 +37,7 @@ LEFT_OUT_RULE = "report.left-out"
 LEFT_OUT_REPORT = f"[left out: over the cap of {MAX_TEST_REPORTS} kept reports]"
 
 _SEVERITY_ORDER = {"error": 0, "block": 1, "warn": 2, "info": 3}
-_SURROGATE = re.compile("[\udc80-\udcff]")
+_SURROGATE = re.compile("[\ud800-\udfff]")
 
 
 def bounded(report: Report) -> Report:
@@ -79,14 +79,21 @@ def shortened(text: str, limit: int, from_end: bool = False) -> str:
 
 def valid_text(value: Any) -> Any:
     """``value`` (plain data: dicts, lists, strings) with the undecodable bytes of a name, held as surrogate
-    escapes, written ``\\xNN``: valid Unicode that any encoder accepts."""
+    escapes (PEP 383), written ``\\xNN``, and any other lone surrogate (a test's message can hold one)
+    written ``\\udNNN``: valid Unicode that any encoder accepts."""
     if isinstance(value, str):
-        return _SURROGATE.sub(lambda match: f"\\x{ord(match.group(0)) - 0xDC00:02x}", value)
+        return _SURROGATE.sub(lambda match: surrogate_escape(match.group(0)), value)
     if isinstance(value, Mapping):
         return {valid_text(key): valid_text(item) for key, item in value.items()}
     if isinstance(value, (list, tuple)):
         return [valid_text(item) for item in value]
     return value
+
+
+def surrogate_escape(char: str) -> str:
+    """A lone surrogate as text: ``\\xNN`` for the byte a surrogate escape holds, else ``\\udNNN``."""
+    code = ord(char)
+    return f"\\x{code - 0xDC00:02x}" if 0xDC80 <= code <= 0xDCFF else f"\\u{code:04x}"
 
 
 # -- which findings stay in detail --------------------------------------------------------------------------

@@ -19,7 +19,7 @@ from collections.abc import Callable, Mapping
 from typing import TextIO
 
 from verifier.models import Finding, MutantOutcome, Report, RunResult
-from verifier.report.bounds import finding_count
+from verifier.report.bounds import finding_count, surrogate_escape
 
 Paint = Callable[[str, str], str]  # (style key, text) -> the text, coloured or not
 
@@ -83,8 +83,8 @@ def _finish(text: str, marker: str, colour: bool) -> str:
 
 # C0 controls but newline and tab, DEL, C1 controls, the bidirectional overrides and isolates that can
 # make code read differently from how it runs (CVE-2021-42574, "Trojan Source"), and the surrogate escapes
-# that hold the bytes of a name that is not UTF-8 (PEP 383)
-_CONTROL = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f\u202a-\u202e\u2066-\u2069\udc80-\udcff]")
+# that hold the bytes of a name that is not UTF-8 (PEP 383), with any other lone surrogate
+_CONTROL = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f\u202a-\u202e\u2066-\u2069\ud800-\udfff]")
 
 
 def printable(text: str) -> str:
@@ -96,7 +96,7 @@ def printable(text: str) -> str:
 
 def _escape(match: re.Match[str]) -> str:
     char = match.group(0)
-    return f"\\x{ord(char) - 0xDC00:02x}" if "\udc80" <= char <= "\udcff" else ascii(char)[1:-1]
+    return surrogate_escape(char) if "\ud800" <= char <= "\udfff" else ascii(char)[1:-1]
 
 
 def _header(report: Report) -> str:
