@@ -59,7 +59,16 @@ def test_a_checked_range_gets_one_note_per_commit(repo: ScratchRepo) -> None:
     body = full["checks"][0]
     assert set(body) == ENTRY_FIELDS
     assert full["format"] == 2 and full["tool"] == "verifier" and full["commit"] == marked
-    assert body["range"] == {"base": base, "head": marked, "commits": 2, "verdict": "block", "findings": []}
+    counts = out.report["finding_counts"]  # every finding per rule, exact, in the note as in the report
+    assert body["range"] == {
+        "base": base,
+        "head": marked,
+        "commits": 2,
+        "verdict": "block",
+        "findings": [],
+        "finding_counts": counts,
+    }
+    assert sum(counts.values()) == len(out.report["findings"])
     assert body["verdict"] == "block" == out.report["verdict"]
     assert body["agent"] == demo.AGENT and body["how"] == "by-hand" and body["skipped"] is False
     assert body["machine_lines"] == sum(len(lines) for lines in out.report["machine_lines"].values())

@@ -317,17 +317,21 @@ def _report(
     selection: Selection | None = None,
     mutation: MutationResult | None = None,
 ) -> Report:
-    return Report(
-        verdict=decide(findings),
-        change=check.change,
-        provenance=check.provenance,
-        policy_source=check.policy.source,
-        run=run,
-        coverage=coverage,
-        findings=tuple(findings),
-        sources=_shown_sources(check, findings),
-        notes=(*notes, *waiver_notes(check.policy, datetime.now(timezone.utc).date())),
-        waivers_used=waivers_used(check.policy, findings),
-        selection=selection,
-        mutation=mutation,
+    from verifier.report.bounds import bounded
+
+    return bounded(
+        Report(
+            verdict=decide(findings),
+            change=check.change,
+            provenance=check.provenance,
+            policy_source=check.policy.source,
+            run=run,
+            coverage=coverage,
+            findings=tuple(findings),
+            sources=_shown_sources(check, findings),
+            notes=(*notes, *waiver_notes(check.policy, datetime.now(timezone.utc).date())),
+            waivers_used=waivers_used(check.policy, findings),
+            selection=selection,
+            mutation=mutation,
+        )
     )

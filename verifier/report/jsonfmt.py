@@ -9,6 +9,11 @@ FORMAT_VERSION history (one line per version):
   2: adds "mutants" (every mutant of the machine-written lines: path, line, status, original, mutated, tests,
      where original/mutated are the full text of the lines it changes), "mutation" (the counts and score) and
      "tests_at_base" (new or changed tests run with a changed file as it was at base: test, path, status).
+     added since: "finding_counts" (findings per rule, exact), the ``report.left-out`` finding (what the
+     caps of verifier.report.bounds left out of the detail); tests.failed_ids, flaky_ids, outcomes and
+     each class of tests.differential list at most bounds.MAX_LISTED_TESTS tests, tests.listed_left_out
+     and tests.differential_counts give the exact numbers (a --shard report's "shard" section keeps every
+     test: merge-reports needs them). Bytes of a name that are not UTF-8 are written as the text ``\\xNN``.
 """
 
 from __future__ import annotations
@@ -17,6 +22,7 @@ import json
 from typing import Any
 
 from verifier.models import Report, RunResult, to_plain
+from verifier.report.bounds import MAX_LISTED_TESTS, rule_counts, valid_text
 
 SUFFIX = "json"  # a report of this format written into a folder is report.json
 FOR_MACHINES = True  # tools read it: alone on stdout
@@ -79,6 +85,7 @@ def as_dict(report: Report) -> dict[str, Any]:
             }
             for f in report.findings
         ],
+        "finding_counts": rule_counts(report),
         "notes": list(report.notes),
         "waivers_used": [
             {
@@ -133,28 +140,43 @@ def _tests(report: Report) -> dict[str, Any]:
     run = report.run
     if run is None:
         return {"run": 0, "passed": 0, "failed": 0, "errors": 0, "skipped": 0, "failed_ids": []}
+    failed = [t.node_id for t in run.tests if t.outcome in ("failed", "error")]
+    flaky = [t.node_id for t in run.tests if t.outcome == "flaky"]
+    listed = run.tests[:MAX_LISTED_TESTS]
     return {
         "run": len(run.tests),
         "passed": run.count("passed"),
         "failed": run.count("failed"),
         "errors": run.count("error"),
         "skipped": run.count("skipped"),
-        "failed_ids": [t.node_id for t in run.tests if t.outcome in ("failed", "error")],
+        "failed_ids": failed[:MAX_LISTED_TESTS],
         "flaky": run.count("flaky"),
-        "flaky_ids": [t.node_id for t in run.tests if t.outcome == "flaky"],
-        "outcomes": [{"node_id": t.node_id, "outcome": t.outcome, "attempts": t.attempts} for t in run.tests],
+        "flaky_ids": flaky[:MAX_LISTED_TESTS],
+        "outcomes": [{"node_id": t.node_id, "outcome": t.outcome, "attempts": t.attempts} for t in listed],
         "differential": _differential(run),
+        "differential_counts": _differential_counts(run),
+        **({"listed_left_out": len(run.tests) - len(listed)} if len(run.tests) > len(listed) else {}),
     }
 
 
 def _differential(run: RunResult) -> dict[str, list[str]] | None:
-    """Node ids by class (broken, fixed, still-failing, new, unchanged) when a differential run happened."""
+    """Node ids by class (broken, fixed, still-failing, new, unchanged) when a differential run happened,
+    at most bounds.MAX_LISTED_TESTS of each (``differential_counts`` has the exact numbers)."""
     if run.baseline is None:
         return None
     from verifier.testrun.differential import CLASSES, classify_run
 
     classes = classify_run(run.tests, run.baseline)
-    return {name: sorted(test for test, found in classes.items() if found == name) for name in CLASSES}
+    return {name: sorted(t for t, found in classes.items() if found == name)[:MAX_LISTED_TESTS] for name in CLASSES}
+
+
+def _differential_counts(run: RunResult) -> dict[str, int] | None:
+    if run.baseline is None:
+        return None
+    from verifier.testrun.differential import CLASSES, classify_run
+
+    classes = list(classify_run(run.tests, run.baseline).values())
+    return {name: classes.count(name) for name in CLASSES}
 
 
 def _selection(report: Report) -> dict[str, Any] | None:
@@ -204,8 +226,8 @@ def error_dict(message: str, exit_code: int) -> dict[str, Any]:
 
 
 def render(report: Report) -> str:
-    return json.dumps(as_dict(report), indent=2, ensure_ascii=False) + "\n"
+    return json.dumps(valid_text(as_dict(report)), indent=2, ensure_ascii=False) + "\n"
 
 
 def render_error(message: str, exit_code: int) -> str:
-    return json.dumps(error_dict(message, exit_code), indent=2, ensure_ascii=False) + "\n"
+    return json.dumps(valid_text(error_dict(message, exit_code)), indent=2, ensure_ascii=False) + "\n"

@@ -13,10 +13,12 @@ from __future__ import annotations
 import xml.etree.ElementTree as ET
 
 from verifier.models import Finding, Report, TestOutcome
+from verifier.report.bounds import LEFT_OUT_REPORT, shortened, valid_text
 
 SUFFIX = "junit.xml"  # a report of this format written into a folder is report.junit.xml
 FOR_MACHINES = True  # tools read it: alone on stdout
 VERDICT_SUITE = "verifier.verdict"
+MAX_SUMMARY_CHARS = 200  # characters of a failure's one-line summary (its message attribute)
 
 
 def render(report: Report) -> str:
@@ -26,7 +28,8 @@ def render(report: Report) -> str:
     _set_counts(suites, [case for suite in suites for case in suite.iter("testcase")])
     suites.set("time", f"{report.run.wall_seconds:.3f}" if report.run else "0")
     ET.indent(suites)
-    return '<?xml version="1.0" encoding="utf-8"?>\n' + ET.tostring(suites, encoding="unicode") + "\n"
+    # a name's bytes that are not UTF-8 (held as surrogate escapes) are written as the text \xNN
+    return '<?xml version="1.0" encoding="utf-8"?>\n' + str(valid_text(ET.tostring(suites, encoding="unicode"))) + "\n"
 
 
 def _tests_suite(report: Report) -> ET.Element:
@@ -108,7 +111,8 @@ def _case(test: TestOutcome) -> ET.Element:
     if test.outcome in ("failed", "error"):
         tag = "failure" if test.outcome == "failed" else "error"
         child = ET.SubElement(case, tag, message=_summary_line(test.message))
-        child.text = _xml_safe(test.message)
+        if test.message != LEFT_OUT_REPORT:  # the marker once, as the message, is enough
+            child.text = _xml_safe(test.message)
     elif test.outcome == "skipped":
         ET.SubElement(case, "skipped", message=_summary_line(test.message) or "skipped")
     return case
@@ -130,7 +134,7 @@ def _set_counts(element: ET.Element, cases: list[ET.Element]) -> None:
 def _summary_line(message: str) -> str:
     """The last non-blank line: where pytest's long report names the error."""
     lines = [line.strip() for line in message.strip().splitlines() if line.strip()]
-    return _xml_safe(lines[-1] if lines else "")
+    return _xml_safe(shortened(lines[-1], MAX_SUMMARY_CHARS) if lines else "")
 
 
 def _xml_safe(text: str) -> str:
@@ -147,4 +151,4 @@ def render_error(message: str, exit_code: int) -> str:
         _set_counts(element, list(suite))
         element.set("time", "0")
     ET.indent(suites)
-    return '<?xml version="1.0" encoding="utf-8"?>\n' + ET.tostring(suites, encoding="unicode") + "\n"
+    return '<?xml version="1.0" encoding="utf-8"?>\n' + str(valid_text(ET.tostring(suites, encoding="unicode"))) + "\n"

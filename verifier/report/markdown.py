@@ -8,6 +8,7 @@ from __future__ import annotations
 import re
 
 from verifier.models import Finding, Report
+from verifier.report.bounds import MAX_LISTED_TESTS, MAX_TEST_REPORTS, finding_count
 from verifier.report.text import line_spans, printable, waiver_of
 from verifier.words import counted
 
@@ -96,7 +97,7 @@ def _findings(report: Report) -> str:
     shown = [f for f in report.findings if f.rule != "coverage.new-lines" or f.line is None]
     if not report.findings:
         return "### Findings\n\nNone."
-    rows = [f"### Findings ({len(report.findings)})"]
+    rows = [f"### Findings ({finding_count(report)})"]
     rows += [_finding(f, report) for f in shown]
     uncovered = [f for f in report.findings if f.rule == "coverage.new-lines" and f.line is not None]
     if uncovered:
@@ -149,18 +150,21 @@ def _test_details(report: Report) -> str:
     parts = []
     if failing:
         body = "\n\n".join(
-            f"`{_inline(t.node_id)}` ({t.outcome})\n\n{_fence(t.message.strip() or 'no message')}" for t in failing
+            f"`{_inline(t.node_id)}` ({t.outcome})\n\n{_fence(t.message.strip() or 'no message')}"
+            for t in failing[:MAX_TEST_REPORTS]
         )
-        parts.append(_details(f"{counted(len(failing), 'failing test')}", body))
+        if len(failing) > MAX_TEST_REPORTS:
+            left = len(failing) - MAX_TEST_REPORTS
+            body += f"\n\n… and {counted(left, 'more failing test')}, their reports left out"
+        parts.append(_details(counted(len(failing), "failing test"), body))
     if run.collection_errors:
         parts.append(_details("collection errors", _fence("\n".join(run.collection_errors))))
     if run.tests:
-        listing = "\n".join(f"{t.outcome:<8} {t.node_id}" for t in run.tests)
-        parts.append(
-            _details(
-                f"{'all ' if len(run.tests) > 1 else ''}{counted(len(run.tests), 'test')} the gate ran", _fence(listing)
-            )
-        )
+        listing = "\n".join(f"{t.outcome:<8} {t.node_id}" for t in run.tests[:MAX_LISTED_TESTS])
+        if len(run.tests) > MAX_LISTED_TESTS:
+            listing += f"\n… and {len(run.tests) - MAX_LISTED_TESTS} more"
+        every = "all " if len(run.tests) > 1 else ""
+        parts.append(_details(f"{every}{counted(len(run.tests), 'test')} the gate ran", _fence(listing)))
     return "\n\n".join(parts)
 
 

@@ -28,8 +28,12 @@ A format-2 entry says what one check found about *this* commit:
     ``tests`` {run, failed} (of the whole checked change), ``sandbox``, ``mutants`` {killed, survived,
     accepted, not_run, error, score} (the mutation stage's counts, or null).
   - ``range``: {base, head, commits (how many the check covered), verdict (of the whole change), findings
-    (the whole-change facts)}.
-  Each list of findings keeps at most :data:`MAX_FINDINGS` (``findings_left_out`` counts the rest).
+    (the whole-change facts), finding_counts (the whole change's findings per rule, exact)}.
+  Each list of findings keeps at most :data:`MAX_FINDINGS`, the most severe first (``findings_left_out``
+  counts the rest), each message at most :data:`MAX_MESSAGE_CHARS`; ``range.finding_counts`` counts the
+  whole change's findings per rule, exactly. A note stays under :data:`MAX_NOTE_BYTES`: the oldest entries
+  are dropped (and counted in ``dropped``) until it fits. Control characters are JSON escapes; bytes of a
+  name that are not UTF-8 are written ``\\xNN`` (:func:`verifier.report.bounds.valid_text`).
 
 A ``--staged`` check has no commit yet: its entry waits under the git dir, keyed by the tree the index would
 commit, and the post-commit hook appends it to HEAD's note when HEAD's tree and parent match (see
@@ -52,12 +56,15 @@ from typing import Any
 from verifier.errors import GitError
 from verifier.gitio import Git
 from verifier.models import INDEX, Finding, Report
+from verifier.report.bounds import rule_counts, shortened, valid_text
 
 DEFAULT_REF = "refs/notes/verifier"
 NOTE_FORMAT = 2
 READABLE_FORMATS = (1, 2)
 MAX_CHECKS = 20  # entries kept per note: a commit checked more often keeps its newest twenty
-MAX_FINDINGS = 200  # findings kept per list of an entry
+MAX_FINDINGS = 25  # findings kept per list of an entry (notes are pushed: the report has the rest)
+MAX_MESSAGE_CHARS = 300  # characters of each finding's message in a note
+MAX_NOTE_BYTES = 64_000  # a note's size at most: older entries are dropped to stay under it
 HOW = ("commit-hook", "pre-push", "ci", "by-hand", "audit-recheck")
 PENDING_MAX_AGE = 3600.0  # seconds: an older staged verdict is stale (the commit it was for never happened)
 _FALLBACK_IDENTITY = ("-c", "user.name=verifier", "-c", "user.email=verifier@localhost")
@@ -137,6 +144,7 @@ def check_entry(report: Report, commit: str, how: str, checked_at: str | None = 
             "commits": len(change.commits),
             "verdict": report.verdict,
             "findings": [_finding(f) for f in kept_range],
+            "finding_counts": rule_counts(report),
         },
         "mutants": _mutant_counts(report),
     }
@@ -210,12 +218,17 @@ def _finding(finding: Finding) -> dict[str, Any]:
         "severity": finding.severity,
         "path": finding.path,
         "line": finding.line,
-        "message": finding.message,
+        "message": shortened(finding.message, MAX_MESSAGE_CHARS),
     }
 
 
+_WEIGHT = {"error": 0, "block": 1, "warn": 2, "info": 3}
+
+
 def _capped(findings: list[Finding]) -> tuple[list[Finding], int]:
-    return findings[:MAX_FINDINGS], max(0, len(findings) - MAX_FINDINGS)
+    """The first :data:`MAX_FINDINGS` of ``findings``, the most severe first, and how many are left out."""
+    ordered = sorted(findings, key=lambda finding: _WEIGHT.get(finding.severity, 0))
+    return ordered[:MAX_FINDINGS], max(0, len(findings) - MAX_FINDINGS)
 
 
 def _waivers_of(report: Report, findings: Iterable[Finding]) -> list[dict[str, Any]]:
@@ -273,12 +286,15 @@ def appended(previous: Mapping[str, Any] | None, commit: str, entry: Mapping[str
         dropped += len(checks) - MAX_CHECKS
         checks = checks[-MAX_CHECKS:]
     body: dict[str, Any] = {"format": NOTE_FORMAT, "tool": "verifier", "commit": commit, "checks": checks}
-    if dropped:
-        body["dropped"] = dropped
     if kept_text:
         body["unreadable_earlier_note"] = kept_text
     elif previous is not None and previous.get("unreadable_earlier_note"):
         body["unreadable_earlier_note"] = previous["unreadable_earlier_note"]
+    while len(body["checks"]) > 1 and len(_note_text({**body, "dropped": dropped + 1})) > MAX_NOTE_BYTES:
+        body["checks"] = body["checks"][1:]
+        dropped += 1
+    if dropped:
+        body["dropped"] = dropped
     return body
 
 
@@ -298,9 +314,13 @@ def _raw_checks(body: Mapping[str, Any]) -> list[Mapping[str, Any]]:
 def write_note(git: Git, commit: str, body: Mapping[str, Any], ref: str = DEFAULT_REF) -> None:
     """Attach ``body`` to ``commit`` under ``ref``, in place of the note there (use :func:`add_entries`
     to add a check: it keeps what the note held)."""
-    text = json.dumps(body, indent=2, sort_keys=True) + "\n"
+    text = _note_text(body)
     identity = () if git.ok(["var", "GIT_COMMITTER_IDENT"]) else _FALLBACK_IDENTITY
     git.run([*identity, "notes", f"--ref={ref}", "add", "--force", "--file=-", commit], input=text.encode())
+
+
+def _note_text(body: Mapping[str, Any]) -> str:
+    return json.dumps(valid_text(body), indent=2, sort_keys=True) + "\n"
 
 
 def add_entries(git: Git, entries: Mapping[str, Mapping[str, Any]], ref: str = DEFAULT_REF) -> None:

@@ -5,6 +5,7 @@ message and location (path relative to ``SRCROOT``, the repository's top folder,
 text when the report has it). What SARIF has no field for goes in property bags: the machine provenance
 (commits, agents, machine-written lines) and the test facts (counts, failing ids, coverage) on the run.
 The tests validate every log against the OASIS schema (tests/data/sarif-schema-2.1.0.json).
+A path's bytes that are not UTF-8 are percent-encoded in its URI (RFC 3986) and written ``\\xNN`` in text.
 """
 
 from __future__ import annotations
@@ -14,6 +15,7 @@ from typing import Any
 from urllib.parse import quote
 
 from verifier.models import Finding, Report, RunResult
+from verifier.report.bounds import MAX_LISTED_TESTS, rule_counts, valid_text
 
 SUFFIX = "sarif"  # a report of this format written into a folder is report.sarif
 FOR_MACHINES = True  # tools read it: alone on stdout
@@ -50,6 +52,7 @@ def as_dict(report: Report) -> dict[str, Any]:
             "provenance": _provenance(report),
             "tests": _tests(report.run),
             "coverage": _coverage(report),
+            "findingCounts": rule_counts(report),
             "notes": list(report.notes),
         },
     }
@@ -111,7 +114,9 @@ def _result(finding: Finding, index: dict[str, int], report: Report) -> dict[str
 
 
 def _location(finding: Finding, report: Report) -> dict[str, Any]:
-    physical: dict[str, Any] = {"artifactLocation": {"uri": quote(finding.path or ""), "uriBaseId": SRCROOT}}
+    physical: dict[str, Any] = {
+        "artifactLocation": {"uri": quote(finding.path or "", errors="surrogateescape"), "uriBaseId": SRCROOT}
+    }
     if finding.line:
         region: dict[str, Any] = {"startLine": finding.line}
         text = report.sources.get(finding.path or "", {}).get(finding.line)
@@ -147,7 +152,7 @@ def _tests(run: RunResult | None) -> dict[str, Any]:
         "failed": run.count("failed"),
         "errors": run.count("error"),
         "skipped": run.count("skipped"),
-        "failedIds": [t.node_id for t in run.tests if t.outcome in ("failed", "error")],
+        "failedIds": [t.node_id for t in run.tests if t.outcome in ("failed", "error")][:MAX_LISTED_TESTS],
         "collectionErrors": list(run.collection_errors),
         "wallSeconds": round(run.wall_seconds, 3),
     }
@@ -168,7 +173,7 @@ def _coverage(report: Report) -> dict[str, Any]:
 
 
 def render(report: Report) -> str:
-    return json.dumps(as_dict(report), indent=2, ensure_ascii=False) + "\n"
+    return json.dumps(valid_text(as_dict(report)), indent=2, ensure_ascii=False) + "\n"
 
 
 def render_error(message: str, exit_code: int) -> str:
@@ -188,4 +193,5 @@ def render_error(message: str, exit_code: int) -> str:
         "results": [],
         "properties": {"verdict": "error", "error": message},
     }
-    return json.dumps({"$schema": SCHEMA_URI, "version": SARIF_VERSION, "runs": [run]}, indent=2) + "\n"
+    log = {"$schema": SCHEMA_URI, "version": SARIF_VERSION, "runs": [run]}
+    return json.dumps(valid_text(log), indent=2) + "\n"

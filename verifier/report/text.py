@@ -20,6 +20,7 @@ from collections.abc import Callable, Mapping
 from typing import TextIO
 
 from verifier.models import Finding, MutantOutcome, Report, RunResult
+from verifier.report.bounds import finding_count, surrogate_escape
 from verifier.words import counted
 
 Paint = Callable[[str, str], str]  # (style key, text) -> the text, coloured or not
@@ -50,7 +51,7 @@ def render(report: Report, colour: bool = False, quiet: bool = False) -> str:
     out = [paint(report.verdict, _LABELS[report.verdict])]
     if quiet:
         out += _coverage(report, paint) if report.verdict != "pass" else []
-        out += _findings(report.findings, paint) if report.findings else []
+        out += _findings(report.findings, paint, finding_count(report)) if report.findings else []
     else:
         out.append(_header(report))
         out += _machine_lines(report)
@@ -58,7 +59,7 @@ def render(report: Report, colour: bool = False, quiet: bool = False) -> str:
             out += _tests(report)
             out += _coverage(report, paint)
             out += _mutants(report, paint)
-        out += _findings(report.findings, paint)
+        out += _findings(report.findings, paint, finding_count(report))
         out += _waivers(report)
         out += [f"note: {note}" for note in report.notes]
     return _finish("\n".join(out) + "\n", marker, colour)
@@ -83,15 +84,22 @@ def _finish(text: str, marker: str, colour: bool) -> str:
     return "".join(out)
 
 
-# C0 controls but newline and tab, DEL, C1 controls, and the bidirectional overrides and isolates that can
-# make code read differently from how it runs (CVE-2021-42574, "Trojan Source")
-_CONTROL = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f\u202a-\u202e\u2066-\u2069]")
+# C0 controls but newline and tab, DEL, C1 controls, the bidirectional overrides and isolates that can
+# make code read differently from how it runs (CVE-2021-42574, "Trojan Source"), and the surrogate escapes
+# that hold the bytes of a name that is not UTF-8 (PEP 383), with any other lone surrogate
+_CONTROL = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f\u202a-\u202e\u2066-\u2069\ud800-\udfff]")
 
 
 def printable(text: str) -> str:
     """``text`` with every control character written as an escape (``\\x1b``, ``\\u202e``): test output and
-    file names cannot move the cursor, recolour or rewrite what the terminal or a reader shows."""
-    return _CONTROL.sub(lambda match: ascii(match.group(0))[1:-1], text)
+    file names cannot move the cursor, recolour or rewrite what the terminal or a reader shows. A byte of a
+    name that is not UTF-8 is written ``\\xNN``, as :func:`verifier.report.bounds.valid_text` writes it."""
+    return _CONTROL.sub(_escape, text)
+
+
+def _escape(match: re.Match[str]) -> str:
+    char = match.group(0)
+    return surrogate_escape(char) if "\ud800" <= char <= "\udfff" else ascii(char)[1:-1]
 
 
 def _header(report: Report) -> str:
@@ -233,13 +241,13 @@ def _mutants(report: Report, paint: Paint) -> list[str]:
     return rows
 
 
-def _findings(findings: tuple[Finding, ...], paint: Paint) -> list[str]:
-    """Every finding counted (the same number as the other formats); the uncovered lines are listed once,
-    under coverage, and only counted here."""
+def _findings(findings: tuple[Finding, ...], paint: Paint, total: int) -> list[str]:
+    """Every finding counted (``total``, the same number as the other formats, whatever the report's
+    bounds left out of the detail); the uncovered lines are listed once, under coverage, and only counted here."""
     if not findings:
         return ["findings: none"]
     shown = [f for f in findings if not (f.rule == "coverage.new-lines" and f.line is not None)]
-    rows = [f"findings: {len(findings)}"]
+    rows = [f"findings: {total}"]
     for finding in shown:
         where = f" {finding.path}" + (f":{finding.line}" if finding.line else "") if finding.path else ""
         if finding.path and finding.message.startswith(f"{finding.path}::"):

@@ -20,7 +20,8 @@ def render(audit: Audit) -> str:
         f"- alive at the window's end: {w.machine_lines_alive} of {w.machine_lines_added} machine lines "
         f"({percent(w.survival)}); {w.machine_lines_churned} rewritten within {audit.churn_days} days; "
         f"{counted(len(audit.reverts), 'revert')} of machine commits",
-        f"- mutants: {_mutant_summary(w.mutants)}; {counted(w.mutation_no_data, 'machine commit')} without mutation data",
+        f"- mutants: {_mutant_summary(w.mutants)}; "
+        f"{counted(w.mutation_no_data, 'machine commit')} without mutation data",
         "",
     ]
     lines += [f"> {problem}" for problem in audit.problems] + ([""] if audit.problems else [])
