@@ -210,7 +210,7 @@ def test_an_old_note_without_counts_is_no_data_never_zero_survivors(checked):
     assert rows[c["weak"]]["mutants_survived"] not in ("", "0") and rows[c["weak"]]["mutants_counted"] == "yes"
     summary = (out / "audit.md").read_text()
     assert f"| 2024-03-04 | {ELDER} | 1 | 1 | n/a | n/a | n/a | n/a |" in summary
-    assert "1 machine commits without mutation data" in summary
+    assert "1 machine commit without mutation data" in summary
     page = (out / "audit.html").read_text()
     assert "<h2>Mutants by agent and week</h2>" in page and page.count('<figure class="chart" id="chart-mutation-') == 2
     table = _table_rows(page, "week from")  # read back with Python's HTML parser
