@@ -31,7 +31,7 @@ def test_tested_machine_commit_passes(repo: ScratchRepo) -> None:
     out = run_check(repo, sha)
     assert out.code == 0, out.stderr + out.stdout
     report = out.report
-    assert report["format"] == 2 and report["verdict"] == "pass"
+    assert report["format"] == 3 and report["verdict"] == "pass"
     assert report["head"] == sha
     assert report["machine_lines"]["parcelkit/volume.py"] == list(range(1, 9))
     assert report["tests"]["run"] == 3 and report["tests"]["passed"] == 3

@@ -181,18 +181,20 @@ def test_the_differential_run_blocks_only_what_the_change_breaks(repo):
     assert out.code == 1
 
 
-def test_shards_split_the_tests_and_their_merged_reports_give_the_verdict_of_one_run(repo, tmp_path):
+def test_parts_split_the_tests_and_their_joined_reports_give_the_verdict_of_one_run(repo, tmp_path):
     library(repo, policy="selection:\n  mode: all\n  reruns: 0\n")
     change_heavy_branch(repo, new="BASE + 3")  # breaks test_heavy: the verdict is block
     whole = run_check(repo, "HEAD")
-    shards = [run_check(repo, "HEAD", "--shard", f"{k}/2") for k in (1, 2)]
+    shards = [run_check(repo, "HEAD", "--part", f"{k}/2") for k in (1, 2)]
     parts = [ran(shard) for shard in shards]
+    # a part cannot judge coverage alone: it ends with its own outcome (exit 4), never a block
+    assert [(s.code, s.report["verdict"]) for s in shards] == [(4, "part"), (4, "part")]
     assert parts[0] and parts[1] and not parts[0] & parts[1]
     assert parts[0] | parts[1] == ran(whole) == {LIGHT, HEAVY, REMOTE, LABEL, UNRELATED}
 
     files = []
     for k, shard in enumerate(shards, start=1):
-        files.append(tmp_path / f"shard-{k}.json")
+        files.append(tmp_path / f"part-{k}.json")
         files[-1].write_text(json.dumps(shard.report))
     merged_file = tmp_path / "merged.json"
     done = subprocess.run(
@@ -202,7 +204,7 @@ def test_shards_split_the_tests_and_their_merged_reports_give_the_verdict_of_one
             "verifier",
             "-C",
             str(repo.path),
-            "merge-reports",
+            "join",
             *map(str, files),
             "--format",
             "json",
@@ -221,9 +223,9 @@ def test_shards_split_the_tests_and_their_merged_reports_give_the_verdict_of_one
     assert sorted((f["rule"], f["path"], f["message"]) for f in merged["findings"]) == key
 
     missing = subprocess.run(
-        [sys.executable, "-m", "verifier", "-C", str(repo.path), "merge-reports", str(files[0])],
+        [sys.executable, "-m", "verifier", "-C", str(repo.path), "join", str(files[0])],
         capture_output=True,
         text=True,
         env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"},
     )
-    assert missing.returncode == 2 and "shard 2/2 is missing" in missing.stderr
+    assert missing.returncode == 2 and "part 2/2 is missing" in missing.stderr

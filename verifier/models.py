@@ -17,7 +17,7 @@ INDEX = "index"  # the "head" of a --staged check: the index, which has no commi
 ChangeKind = Literal["range", "commit", "staged"]
 FileStatus = Literal["added", "modified", "deleted", "renamed", "copied", "type-changed"]
 Severity = Literal["block", "warn", "info", "error"]
-Verdict = Literal["pass", "warn", "block", "error"]
+Verdict = Literal["pass", "warn", "block", "error", "part"]  # part: check --part ran its share
 RuleSetting = Literal["block", "warn", "off"]
 
 

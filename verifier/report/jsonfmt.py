@@ -3,12 +3,14 @@
 FORMAT_VERSION history (one line per version):
   1: verdict, base, head, sandbox, machine_lines, tests, coverage, findings (plus commits, policy, notes);
      added since: waivers_used, coverage.separate (files a per-path override judges on their own);
-     selection (which tests ran and why), tests.flaky/flaky_ids/outcomes/differential, shard (a --shard
-     run's measurements, which verifier merge-reports joins); a tests.failing finding's details.pre_existing
+     selection (which tests ran and why), tests.flaky/flaky_ids/outcomes/differential, a --part run's
+     measurements (named "shard" up to version 2); a tests.failing finding's details.pre_existing
      and details.at_base (the test fails at base too).
   2: adds "mutants" (every mutant of the machine-written lines: path, line, status, original, mutated, tests,
      where original/mutated are the full text of the lines it changes), "mutation" (the counts and score) and
      "tests_at_base" (new or changed tests run with a changed file as it was at base: test, path, status).
+  3: the section of a ``check --part K/N`` run's measurements, which ``verifier join`` reads, is named "part"
+     (was "shard"), and so is selection.part (was selection.shard); a part's verdict is "part" (no verdict).
 """
 
 from __future__ import annotations
@@ -21,7 +23,7 @@ from verifier.models import Report, RunResult, to_plain
 SUFFIX = "json"  # a report of this format written into a folder is report.json
 FOR_MACHINES = True  # tools read it: alone on stdout
 
-FORMAT_VERSION = 2
+FORMAT_VERSION = 3
 
 
 def as_dict(report: Report) -> dict[str, Any]:
@@ -97,7 +99,7 @@ def as_dict(report: Report) -> dict[str, Any]:
             {"test": o.tests[0] if o.tests else None, "path": o.mutant.path, "status": o.status}
             for o in (report.mutation.at_base if report.mutation else ())
         ],
-        **({"shard": _shard(report)} if report.selection and report.selection.shard and run else {}),
+        **({"part": _part(report)} if report.selection and report.selection.shard and run else {}),
     }
 
 
@@ -167,13 +169,13 @@ def _selection(report: Report) -> dict[str, Any] | None:
         "map": selection.map_status,
         "known_tests": selection.known_tests,
         "left_out": selection.left_out,
-        "shard": list(selection.shard) if selection.shard else None,
+        "part": list(selection.shard) if selection.shard else None,
         "selected": {key: list(reasons) for key, reasons in sorted(selection.reasons.items())},
     }
 
 
-def _shard(report: Report) -> dict[str, Any]:
-    """What verifier merge-reports needs to judge the shards as one run: every test's full outcome and the
+def _part(report: Report) -> dict[str, Any]:
+    """What verifier join needs to judge the parts as one run: every test's full outcome and the
     coverage measurements of the machine-written files."""
     run = report.run
     assert run is not None and report.selection is not None

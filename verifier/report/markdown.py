@@ -18,6 +18,7 @@ _HEADLINES = {
     "warn": "WARN: verified, with warnings",
     "block": "BLOCK: the machine-written change does not meet the policy",
     "error": "ERROR: the change could not be verified (this is not a pass)",
+    "part": "PART: this part of the tests ran; `verifier join` of every part's report gives the verdict",
 }
 _SHORT_LIST = 12  # line lists longer than this are folded
 
