@@ -9,7 +9,7 @@ import sys
 
 import pytest
 
-from tests.conftest import ROOT, machine
+from tests.conftest import ROOT, machine, run_check, test_sandbox
 from verifier.demo.scratch import ScratchRepo
 from verifier.errors import ExitCode
 
@@ -57,3 +57,71 @@ def test_the_old_names_are_not_offered_in_the_help(shop: ScratchRepo) -> None:
     check = verifier(shop, "check", "--help").stdout
     assert "join" in top and "merge-reports" not in top
     assert "--part K/N" in check and "--shard" not in check
+
+
+# --- the policy file's keys and values ------------------------------------------------------------------
+
+OLD_POLICIES = [
+    ("extends: strict\n", "extends", "was renamed 'builds_on'; write builds_on: strict"),
+    ("overrides:\n  - paths: [legacy/**]\n", "overrides", "was renamed 'paths'; write paths: {"),
+    ("selection:\n  mode: smart\n", "selection.mode", "was renamed 'selection.run'"),
+    ("selection:\n  run: smart\n", "selection.run", "the value 'smart' was renamed 'observed'"),
+    ("rules:\n  patch.size: warn\n", "rules.patch.size", "the setting 'warn' was renamed 'advise'"),
+    ("rules:\n  patch.size: {severity: off}\n", "rules.patch.size.severity", "the setting 'off' was renamed 'ignore'"),
+]
+
+
+@pytest.mark.parametrize(("text", "key", "new"), OLD_POLICIES)
+def test_an_old_policy_key_or_value_stops_policy_check_naming_the_file_key_and_new_spelling(
+    shop: ScratchRepo, text: str, key: str, new: str
+) -> None:
+    candidate = shop.path / "candidate.yaml"
+    candidate.write_text(f"version: 1\n{text}")
+    done = verifier(shop, "policy", "check", str(candidate))
+    assert done.returncode == ExitCode.USAGE and "Traceback" not in done.stderr
+    assert f"{candidate}:" in done.stderr and f"key '{key}'" in done.stderr and new in done.stderr
+
+
+@pytest.mark.parametrize(("text", "key", "new"), OLD_POLICIES[:3])
+def test_an_old_policy_at_the_base_revision_stops_the_check(repo: ScratchRepo, text: str, key: str, new: str) -> None:
+    """The policy is read at the base: a repository still spelling the old keys gets exit 2, never a run
+    that quietly ignores what its policy asked for."""
+    repo.commit("Human: start", {"shop/__init__.py": "", "verifier.yaml": f"version: 1\n{text}"})
+    sha = repo.commit(machine("Add the cart total"), {"shop/cart.py": CODE, "tests/test_cart.py": TESTS})
+    done = verifier(repo, "check", sha, "--sandbox", test_sandbox())
+    assert done.returncode == ExitCode.USAGE, done.stderr
+    assert ":verifier.yaml:" in done.stderr and f"key '{key}'" in done.stderr and new in done.stderr
+
+
+NEW_POLICY = """version: 1
+builds_on: strict
+selection:
+  run: observed
+paths:
+  "legacy/**":
+    coverage: {threshold: 0}
+    rules:
+      patch.size: ignore
+rules:
+  deps.added: advise
+"""
+
+
+def test_the_new_names_are_read_and_applied(repo: ScratchRepo) -> None:
+    """builds_on strict (coverage 100%), a path glob's own threshold, advise and ignore: an untested legacy
+    file passes under its glob's threshold while the untested line outside it blocks under strict's 100%."""
+    repo.commit("Human: start", {"shop/__init__.py": "", "legacy/__init__.py": "", "verifier.yaml": NEW_POLICY})
+    shown = verifier(repo, "policy", "show")
+    assert shown.returncode == 0, shown.stderr
+    assert "shipped:strict.yaml" in shown.stdout and 'selection.run = "observed"' in shown.stdout
+    assert 'paths.legacy/**.rules.patch.size.severity = "ignore"' in shown.stdout
+    assert 'rules.deps.added.severity = "advise"' in shown.stdout
+    legacy = "def old(rate):\n    return rate * 2\n"
+    sha = repo.commit(
+        machine("Add the cart total"),
+        {"legacy/old.py": legacy, "shop/cart.py": CODE + legacy, "tests/test_cart.py": TESTS},
+    )
+    out = run_check(repo, sha)
+    assert out.report is not None, out.stderr
+    uncovered = {f["path"] for f in out.report["findings"] if f["rule"] == "coverage.new-lines" and f["path"]}
+    assert uncovered == {"shop/cart.py"} and out.code == ExitCode.BLOCK, [f["rule"] for f in out.report["findings"]]

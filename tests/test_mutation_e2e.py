@@ -166,7 +166,7 @@ def test_guard():
 def test_endless_loops_time_out_and_interpreter_exits_crash_both_count_as_killed(repo: ScratchRepo) -> None:
     # the code ends the interpreter on purpose (that is what its crash mutant needs), which tamper.means would
     # rightly flag: a human switched that rule off for this repository
-    start(repo, {"verifier.yaml": "version: 1\nrules:\n  tamper.means: off\n"})
+    start(repo, {"verifier.yaml": "version: 1\nrules:\n  tamper.means: ignore\n"})
     repo.commit(machine("Add loops"), {"shop/loops.py": LOOPS, "tests/test_loops.py": LOOP_TESTS})
     out = run_check(repo, "HEAD")
     report = report_of(out)

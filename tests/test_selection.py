@@ -47,10 +47,10 @@ LIGHT, HEAVY, REMOTE = (f"tests/test_rates.py::test_{name}" for name in ("light"
 LABEL, UNRELATED = "tests/test_labels.py::test_label", "tests/test_misc.py::test_unrelated"
 
 
-SMART = "selection:\n  mode: smart\n"
+OBSERVED = "selection:\n  run: observed\n"
 
 
-def library(repo: ScratchRepo, policy: str = SMART, extra: dict[str, str] | None = None) -> None:
+def library(repo: ScratchRepo, policy: str = OBSERVED, extra: dict[str, str] | None = None) -> None:
     repo.commit("parcelkit rates and labels", {**LIBRARY, **(extra or {}), "verifier.yaml": policy})
 
 
@@ -106,7 +106,7 @@ def test_a_conftest_change_runs_the_whole_suite(repo):
 
 
 def test_without_a_map_the_import_graph_chooses(repo):
-    library(repo, policy=SMART + "  map_build: never\n  without_map: imports\n")
+    library(repo, policy=OBSERVED + "  map_build: never\n  without_map: imports\n")
     repo.commit(
         machine("Remote zones cost one more"),
         {
@@ -145,7 +145,7 @@ def test_always_fails():
 
 def test_a_test_that_passes_on_a_rerun_is_reported_flaky_and_a_real_failure_still_blocks(repo):
     # test_always_fails fails at base too: a pre-existing failure warns unless the policy blocks those as well
-    policy = "selection:\n  mode: all\n  reruns: 2\nrules:\n  tests.failing:\n    block_pre_existing: true\n"
+    policy = "selection:\n  run: all\n  reruns: 2\nrules:\n  tests.failing:\n    block_pre_existing: true\n"
     library(repo, policy=policy, extra={"tests/test_flaky.py": FLAKY})
     change_heavy_branch(repo)
     out = run_check(repo, "HEAD")
@@ -166,7 +166,7 @@ def test_a_test_that_passes_on_a_rerun_is_reported_flaky_and_a_real_failure_stil
 
 def test_the_differential_run_blocks_only_what_the_change_breaks(repo):
     known_bug = {"tests/test_known.py": "def test_known_bug():\n    assert round(2.5) == 3  # banker's rounding\n"}
-    library(repo, policy=SMART + '  differential: true\nrules:\n  tests.failing: "off"\n', extra=known_bug)
+    library(repo, policy=OBSERVED + '  differential: true\nrules:\n  tests.failing: "ignore"\n', extra=known_bug)
     change_heavy_branch(repo, new="BASE + 3")
     out = run_check(repo, "HEAD")
     classes = out.report["tests"]["differential"]
@@ -182,7 +182,7 @@ def test_the_differential_run_blocks_only_what_the_change_breaks(repo):
 
 
 def test_parts_split_the_tests_and_their_joined_reports_give_the_verdict_of_one_run(repo, tmp_path):
-    library(repo, policy="selection:\n  mode: all\n  reruns: 0\n")
+    library(repo, policy="selection:\n  run: all\n  reruns: 0\n")
     change_heavy_branch(repo, new="BASE + 3")  # breaks test_heavy: the verdict is block
     whole = run_check(repo, "HEAD")
     shards = [run_check(repo, "HEAD", "--part", f"{k}/2") for k in (1, 2)]

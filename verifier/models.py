@@ -18,7 +18,7 @@ ChangeKind = Literal["range", "commit", "staged"]
 FileStatus = Literal["added", "modified", "deleted", "renamed", "copied", "type-changed"]
 Severity = Literal["block", "warn", "info", "error"]
 Verdict = Literal["pass", "warn", "block", "error", "part"]  # part: check --part ran its share
-RuleSetting = Literal["block", "warn", "off"]
+RuleSetting = Literal["block", "advise", "ignore"]  # advise: findings warn; ignore: the rule is off
 
 
 @dataclass(frozen=True)
@@ -146,7 +146,7 @@ class Policy:
     ] = ()  # in order; a later one wins (see verifier.verdict.settings.settings_for_path)
     waivers: tuple[Waiver, ...] = ()
     agent_identities: tuple[str, ...] = ()  # emails of assistants whose unmarked commits the audit counts
-    files: tuple[str, ...] = ()  # the repository's files (at base) this policy is built from: verifier.yaml, extends
+    files: tuple[str, ...] = ()  # the repository's files (at base) this policy is built from: verifier.yaml, builds_on
     selection: SelectionSettings = field(default_factory=lambda: SelectionSettings())
 
     def setting(self, rule_id: str, default: RuleSetting) -> RuleSetting:
@@ -172,7 +172,7 @@ class Selection:
 class SelectionSettings:
     """The policy's ``selection:`` section: how tests are chosen, re-run and spread over cores."""
 
-    mode: Literal["smart", "all"] = "all"
+    run: Literal["observed", "all"] = "all"  # observed: the tests that can observe the change
     differential: bool = False  # also run the selected tests at base and classify each one
     reruns: int = 2  # a failing test is run again up to this many times; passing on one makes it flaky
     map_build: Literal["always", "if-cached", "never"] = "always"

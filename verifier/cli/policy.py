@@ -45,7 +45,7 @@ def check_file(args: argparse.Namespace) -> int:
     policy = build_policy(file_layers(target, root, args.org_policy))
     print(
         f"{target}: valid (coverage threshold {policy.coverage_threshold:g}%, "
-        f"wall limit {policy.limits.wall_seconds:g}s, {len(policy.overrides)} override(s), "
+        f"wall limit {policy.limits.wall_seconds:g}s, {len(policy.overrides)} path setting(s), "
         f"{len(policy.waivers)} waiver(s))"
     )
     return ExitCode.PASS

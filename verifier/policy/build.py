@@ -1,5 +1,5 @@
 """Building the typed :class:`~verifier.models.Policy` from validated layers: merged key by key, later
-layers winning, ``overrides`` and ``waivers`` joined; an expired waiver is a :class:`PolicyError`."""
+layers winning, ``paths`` and ``waivers`` joined; an expired waiver is a :class:`PolicyError`."""
 
 from __future__ import annotations
 
@@ -10,11 +10,11 @@ from typing import Any
 from verifier.models import Limits, PathOverride, Policy, RuleSetting, SelectionSettings, Waiver
 from verifier.policy.parse import Layer, error_at
 
-JOINED_KEYS = ("overrides", "waivers")  # lists that later layers extend instead of replacing
+JOINED_KEYS = ("paths", "waivers")  # lists that later layers extend instead of replacing
 
 
 def merge_layers(layers: Iterable[Mapping[str, Any]], top: bool = True) -> dict[str, Any]:
-    """Deep-merge validated layers, later ones winning key by key; ``overrides`` and ``waivers`` join."""
+    """Deep-merge validated layers, later ones winning key by key; ``paths`` and ``waivers`` join."""
     merged: dict[str, Any] = {}
     for layer in layers:
         for key, value in layer.items():
@@ -64,7 +64,7 @@ def build_policy(layers: list[Layer], today: date | None = None) -> Policy:
         allow_process_sandbox=bool(get("sandbox", "allow_process")),
         rules=rules,
         rule_options=options,
-        overrides=tuple(_override(entry) for entry in merged.get("overrides", [])),
+        overrides=tuple(_override(entry) for entry in merged.get("paths", [])),
         waivers=waivers,
         selection=_selection(merged.get("selection", {})),
         files=tuple(layer.repo_path for layer in layers if layer.repo_path is not None),
