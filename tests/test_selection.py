@@ -189,6 +189,7 @@ def test_parts_split_the_tests_and_their_joined_reports_give_the_verdict_of_one_
     parts = [ran(shard) for shard in shards]
     # a part cannot judge coverage alone: it ends with its own outcome (exit 4), never a block
     assert [(s.code, s.report["verdict"]) for s in shards] == [(4, "part"), (4, "part")]
+    assert all((s.stdout + s.stderr).startswith("PART ") and "'verifier join'" in s.stdout + s.stderr for s in shards)
     assert parts[0] and parts[1] and not parts[0] & parts[1]
     assert parts[0] | parts[1] == ran(whole) == {LIGHT, HEAVY, REMOTE, LABEL, UNRELATED}
 
