@@ -3,6 +3,7 @@ real repository through the real command line; the new names work."""
 
 from __future__ import annotations
 
+import json
 import os
 import subprocess
 import sys
@@ -125,3 +126,12 @@ def test_the_new_names_are_read_and_applied(repo: ScratchRepo) -> None:
     assert out.report is not None, out.stderr
     uncovered = {f["path"] for f in out.report["findings"] if f["rule"] == "coverage.new-lines" and f["path"]}
     assert uncovered == {"shop/cart.py"} and out.code == ExitCode.BLOCK, [f["rule"] for f in out.report["findings"]]
+
+
+def test_join_refuses_a_report_written_with_the_old_option_naming_the_new_one(shop: ScratchRepo) -> None:
+    """A report of format 2 kept its part under "shard": join says to write it again with --part."""
+    old = shop.path.parent / "old-part.json"
+    old.write_text(json.dumps({"format": 2, "verdict": "block", "shard": {"index": 1, "total": 2}}))
+    done = verifier(shop, "join", str(old))
+    assert done.returncode == ExitCode.USAGE and "Traceback" not in done.stderr
+    assert "renamed --part" in done.stderr and "verifier check --part K/N" in done.stderr
