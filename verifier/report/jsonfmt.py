@@ -10,7 +10,7 @@ FORMAT_VERSION history (one line per version):
      where original/mutated are the full text of the lines it changes), "mutation" (the counts and score) and
      "tests_at_base" (new or changed tests run with a changed file as it was at base: test, path, status).
   3: the section of a ``check --part K/N`` run's measurements, which ``verifier join`` reads, is named "part"
-     (was "shard"), and so is selection.part (was selection.shard); a part's verdict is "part" (no verdict).
+     (was "shard"), and so is selection.part (was selection.shard); such a run's "verdict" is "part" (exit 4).
 """
 
 from __future__ import annotations
