@@ -47,7 +47,7 @@ AFTER = """\
     scaled = float(nbytes) / size
     return f"{scaled:.{ndigits}f}{symbol}"
 """
-POLICY_WITHOUT = "version: 1\nrules:\n  tests.mutant-survived: off\n"
+POLICY_WITHOUT = "version: 1\nrules:\n  tests.mutant-survived: ignore\n"
 
 
 def make_repo(project: Path, folder: Path, policy: str | None) -> ScratchRepo:

@@ -4,7 +4,7 @@ For each library (a real open-source project installed from PyPI as an sdist, te
 sdist becomes the base commit, with a policy that turns selection on. Then, one at a time on top of
 that base, model-style changes with an injected fault: a small edit inside a function (a comparison
 flipped, an off-by-one, a boolean swapped) or at module level, committed with the Model-Written
-trailer. For each one the script runs ``verifier check`` (smart selection; the base map is built once
+trailer. For each one the script runs ``verifier check`` (observed selection; the base map is built once
 and then cached) and, as the reference, plain ``pytest`` over the whole suite of the same tree, and
 compares the failing tests. It prints, per fault and in total, the failures the gate missed (the bar:
 zero) and the fraction of the suite the gate ran.
@@ -30,7 +30,7 @@ from bench_gate_overhead import fetch_sdist
 from verifier.demo.scratch import ScratchRepo
 
 LIBRARIES = ("toolz==1.0.0", "more-itertools==10.5.0")
-POLICY = "selection:\n  mode: smart\ncoverage:\n  threshold: 0\n"
+POLICY = "selection:\n  run: observed\ncoverage:\n  threshold: 0\n"
 AGENT = "quill-assist/2.3"
 # (text in a line, replacement): the kinds of slip a model makes in a plausible-looking edit
 MUTATIONS = (

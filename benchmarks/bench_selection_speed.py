@@ -29,7 +29,7 @@ from bench_gate_overhead import fetch_sdist
 from verifier.demo.scratch import ScratchRepo
 
 DEFAULT = ("more-itertools==10.5.0", "more_itertools/more.py", "def chunked(")
-POLICY = 'selection:\n  mode: smart\ncoverage:\n  threshold: 0\ntests:\n  python_path: [".", "src"]\n'
+POLICY = 'selection:\n  run: observed\ncoverage:\n  threshold: 0\ntests:\n  python_path: [".", "src"]\n'
 
 
 def one_function_change(repo: ScratchRepo, path: str, anchor: str) -> None:

@@ -393,7 +393,7 @@ def _git(cwd: Path, *args: str, env: dict | None = None, message: str | None = N
 
     from verifier.demo.scratch import IDENTITY
 
-    clean = {k: v for k, v in os.environ.items() if k not in ("PYTHONPATH", "VERIFIER_SKIP")}
+    clean = {k: v for k, v in os.environ.items() if k not in ("PYTHONPATH", "VERIFIER_SKIP", "VERIFIER_BYPASS")}
     return subprocess.run(
         ["git", *args], cwd=cwd, capture_output=True, text=True, input=message, env={**clean, **IDENTITY, **(env or {})}
     )
@@ -447,7 +447,7 @@ def test_the_record_through_real_hooks_and_a_push_then_the_audit(tmp_path: Path)
     repo.git("checkout", "-q", "-b", "feature")
     skipped = _commit_all(
         repo, {"parcelkit/labels.py": LABELS, "tests/test_labels.py": TEST_LABELS}, machine("Labels, in a hurry"),
-        env={"VERIFIER_SKIP": "1"},
+        env={"VERIFIER_BYPASS": "the label printer demo starts now"},
     )  # fmt: skip
     person = _commit_all(repo, {"README.md": "# parcelkit\n"}, "Readme")
     first_push = _git(repo.path, "push", "-q", "origin", "feature")
@@ -462,7 +462,13 @@ def test_the_record_through_real_hooks_and_a_push_then_the_audit(tmp_path: Path)
     def note(sha: str) -> dict:  # the note as git itself shows it
         return json.loads(repo.git("notes", f"--ref={NOTES}", "show", sha))
 
-    assert [c["how"] for c in note(skipped)["checks"]] == ["pre-push"]
+    bypass = note(skipped)["checks"][0]  # the commit hook was bypassed: its entry keeps the reason
+    assert (bypass["how"], bypass["skipped"], bypass["reason"]) == (
+        "commit-hook",
+        True,
+        "bypassed by VERIFIER_BYPASS: the label printer demo starts now",
+    )
+    assert [c["how"] for c in note(skipped)["checks"]] == ["commit-hook", "pre-push"]
     assert [(c["how"], c["verdict"]) for c in note(clean)["checks"]] == [("commit-hook", "pass"), ("pre-push", "pass")]
     assert note(clean)["checks"][-1]["range"]["verdict"] == "block"  # the range blocked, its clean commit did not
     assert note(risky)["checks"][-1]["verdict"] == "block"
@@ -473,7 +479,7 @@ def test_the_record_through_real_hooks_and_a_push_then_the_audit(tmp_path: Path)
     marked = repo.git("log", "--format=%H", "-E", "--grep=^Model-Written:", "feature").split()  # git's own grep
     assert set(rows) == set(marked) == {skipped, clean, risky}
     assert audit.window.commits == int(repo.git("rev-list", "--count", "feature").strip())
-    assert (rows[skipped].status, rows[skipped].at_commit, rows[skipped].checks) == ("pass", "skipped", 1)
+    assert (rows[skipped].status, rows[skipped].at_commit, rows[skipped].checks) == ("pass", "skipped", 2)
     assert (rows[clean].status, rows[clean].at_commit, rows[clean].checks) == ("pass", "checked", 2)
     assert (rows[risky].status, rows[risky].at_commit) == ("blocked-merged", "skipped")
     w = audit.window
@@ -494,7 +500,7 @@ def test_every_format_says_checked_and_passed_apart(tmp_path: Path):
     repo.git("checkout", "-q", "-b", "feature")
     skipped = _commit_all(
         repo, {"parcelkit/labels.py": LABELS, "tests/test_labels.py": TEST_LABELS}, machine("Labels, in a hurry"),
-        env={"VERIFIER_SKIP": "1"},
+        env={"VERIFIER_BYPASS": "the label printer demo starts now"},
     )  # fmt: skip
     assert _git(repo.path, "push", "-q", "origin", "feature").returncode == 0  # the pre-push check passes it
     risky = _commit_all(repo, {"parcelkit/launch.py": LAUNCH}, machine("Print labels"), "--no-verify")
@@ -558,7 +564,7 @@ def test_a_range_fact_and_a_waiver_count_once_and_the_newest_check_decides(tmp_p
         first: [_entry("pass", "commit-hook", head=first), _entry("block", "pre-push", **ranged)],
         second: [_entry("block", "pre-push", own=[own], **ranged)],
         third: [_entry("block", "commit-hook", head=third), _entry("pass", "ci", checked_at="2024-03-07T00:00:00Z")],
-        fourth: [_entry("pass", "commit-hook", head=fourth), notes.skipped_entry("pre-push", "VERIFIER_SKIP was set")],
+        fourth: [_entry("pass", "commit-hook", head=fourth), notes.skipped_entry("pre-push", "bypassed: hotfix")],
     }
     for sha, entries in bodies.items():
         body = None

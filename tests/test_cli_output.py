@@ -94,7 +94,7 @@ def test_an_error_replaces_a_stale_report_with_an_error_report(changes: dict, tm
     assert sarif["runs"][0]["invocations"][0]["executionSuccessful"] is False
     junit = ET.parse(folder / "report.junit.xml").getroot()
     assert junit.get("errors") == "1" and junit.get("failures") == "0"
-    assert (folder / "report.md").read_text().startswith("## verifier: ERROR")
+    assert (folder / "report.md").read_text().startswith("## ERROR · verifier · ")
     assert (folder / "report.txt").read_text().startswith("ERROR")
     assert not [p.name for p in folder.iterdir() if p.name.startswith(".")]  # no temporary file left behind
 

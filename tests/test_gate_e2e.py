@@ -24,14 +24,14 @@ def start(repo: ScratchRepo, extra: dict[str, str] | None = None) -> str:
 
 
 def test_tested_machine_commit_passes(repo: ScratchRepo) -> None:
-    start(repo, {"verifier.yaml": "version: 1\nselection:\n  mode: all\n"})  # counts every test of the suite
+    start(repo, {"verifier.yaml": "version: 1\nselection:\n  run: all\n"})  # counts every test of the suite
     sha = repo.commit(
         machine("Add volumetric weight"), {"parcelkit/volume.py": demo.VOLUME, "tests/test_volume.py": demo.TEST_VOLUME}
     )
     out = run_check(repo, sha)
     assert out.code == 0, out.stderr + out.stdout
     report = out.report
-    assert report["format"] == 2 and report["verdict"] == "pass"
+    assert report["format"] == 3 and report["verdict"] == "pass"
     assert report["head"] == sha
     assert report["machine_lines"]["parcelkit/volume.py"] == list(range(1, 9))
     assert report["tests"]["run"] == 3 and report["tests"]["passed"] == 3
@@ -182,7 +182,7 @@ def test_policy_comes_from_the_base_not_the_change(repo: ScratchRepo) -> None:
     # 6 of 9 = 66.7% fails the base's 70%; the 0% the change itself brings plays no part
     blocking = {f["rule"] for f in out.report["findings"] if f["severity"] == "block"}
     assert out.code == 1 and blocking == {"coverage.new-lines"}
-    strict = repo.commit("Human: strict", {"verifier.yaml": "version: 1\nextends: strict\n"})
+    strict = repo.commit("Human: strict", {"verifier.yaml": "version: 1\nbuilds_on: strict\n"})
     sha = repo.commit(machine("More zones"), {"parcelkit/zones.py": demo.ZONES + "\n\ndef z():\n    return 1\n"})
     out = run_check(repo, f"{strict}..{sha}")
     assert out.report["coverage"]["threshold"] == 100.0 and out.code == 1

@@ -114,13 +114,35 @@ def test_commit_all_verifies_the_index_git_is_about_to_commit(hrepo: ScratchRepo
     assert hrepo.git("log", "--format=%s").splitlines() == ["Start parcelkit"]
 
 
-def test_unmarked_and_skipped_commits_are_fast_and_get_no_note(hrepo: ScratchRepo) -> None:
+def test_unmarked_commits_are_fast_and_get_no_note(hrepo: ScratchRepo) -> None:
     assert commit(hrepo.path, "Human tweak", "--allow-empty").returncode == 0
+    assert notes_of(hrepo.path) == {}
+
+
+def test_a_bypass_needs_its_reason_which_is_printed_and_kept_in_the_note(hrepo: ScratchRepo) -> None:
     hrepo.write({"parcelkit/zones.py": demo.ZONES})
     hrepo.git("add", "-A")
-    skipped = commit(hrepo.path, machine("Zones, in a hurry"), env={"VERIFIER_SKIP": "1"})
-    assert skipped.returncode == 0
-    assert "unverified" in skipped.stderr
+    for empty in ("", "   "):
+        refused = commit(hrepo.path, machine("Zones, in a hurry"), env={"VERIFIER_BYPASS": empty})
+        assert refused.returncode != 0 and "VERIFIER_BYPASS is empty" in refused.stderr
+    assert hrepo.git("log", "--format=%s").splitlines() == ["Start parcelkit"]
+    reason = "release train leaves at noon; ticket OPS-12"
+    bypassed = commit(hrepo.path, machine("Zones, in a hurry"), env={"VERIFIER_BYPASS": reason})
+    assert bypassed.returncode == 0, bypassed.stderr
+    assert f"bypassed by VERIFIER_BYPASS: {reason}" in bypassed.stderr and "unverified" in bypassed.stderr
+    head = hrepo.head()
+    entry = notes_of(hrepo.path)[head]
+    assert (entry["how"], entry["skipped"], entry["verdict"]) == ("commit-hook", True, None)
+    assert entry["reason"] == f"bypassed by VERIFIER_BYPASS: {reason}"
+
+
+def test_the_old_skip_variable_is_refused_naming_the_new_one(hrepo: ScratchRepo) -> None:
+    hrepo.write({"parcelkit/zones.py": demo.ZONES})
+    hrepo.git("add", "-A")
+    refused = commit(hrepo.path, machine("Zones, in a hurry"), env={"VERIFIER_SKIP": "1"})
+    assert refused.returncode != 0
+    assert "VERIFIER_SKIP was renamed VERIFIER_BYPASS" in refused.stderr and "Traceback" not in refused.stderr
+    assert hrepo.git("log", "--format=%s").splitlines() == ["Start parcelkit"]  # nothing was committed
     assert notes_of(hrepo.path) == {}
 
 
@@ -243,6 +265,11 @@ def test_push_is_refused_when_a_pushed_machine_commit_fails_and_accepted_when_fi
     refused = git(hrepo.path, "push", "-q", "origin", "feature")  # a new branch: all commits not on a remote
     assert refused.returncode != 0
     assert "tests.failing" in refused.stderr and "push is refused" in refused.stderr
+    assert remote_head(remote, "feature") == ""
+    old = git(hrepo.path, "push", "-q", "origin", "feature", env={"VERIFIER_SKIP": "1"})
+    assert old.returncode != 0 and "VERIFIER_SKIP was renamed VERIFIER_BYPASS" in old.stderr
+    empty = git(hrepo.path, "push", "-q", "origin", "feature", env={"VERIFIER_BYPASS": ""})
+    assert empty.returncode != 0 and "needs its reason" in empty.stderr
     assert remote_head(remote, "feature") == ""
 
     hrepo.write(

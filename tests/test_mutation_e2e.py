@@ -94,7 +94,7 @@ def test_assertion_free_tests_block_with_findings_on_the_surviving_lines(repo: S
     out = run_check(repo, "HEAD")
     assert out.code == 1, out.stderr + out.stdout
     report = report_of(out)
-    assert report["format"] == 2 and report["verdict"] == "block"
+    assert report["format"] == 3 and report["verdict"] == "block"
     assert report["coverage"]["percent"] == 100.0  # coverage alone would have passed it
     mutants = report["mutants"]
     assert mutants and {m["path"] for m in mutants} == {"shop/price.py"}  # test code is not mutated
@@ -166,7 +166,7 @@ def test_guard():
 def test_endless_loops_time_out_and_interpreter_exits_crash_both_count_as_killed(repo: ScratchRepo) -> None:
     # the code ends the interpreter on purpose (that is what its crash mutant needs), which tamper.means would
     # rightly flag: a human switched that rule off for this repository
-    start(repo, {"verifier.yaml": "version: 1\nrules:\n  tamper.means: off\n"})
+    start(repo, {"verifier.yaml": "version: 1\nrules:\n  tamper.means: ignore\n"})
     repo.commit(machine("Add loops"), {"shop/loops.py": LOOPS, "tests/test_loops.py": LOOP_TESTS})
     out = run_check(repo, "HEAD")
     report = report_of(out)
@@ -198,7 +198,7 @@ def test_a_waiver_on_a_line_accepts_its_survivor_and_the_policy_caps_mutants_per
     assert out.code == 1  # the other survivors still block
 
 
-def test_shards_split_the_mutants_and_their_merged_reports_give_the_outcome_of_one_run(
+def test_parts_split_the_mutants_and_their_joined_reports_give_the_outcome_of_one_run(
     repo: ScratchRepo, tmp_path: Path
 ) -> None:
     start(repo, {"verifier.yaml": "version: 1\nselection:\n  reruns: 0\n"})
@@ -209,11 +209,12 @@ def test_shards_split_the_mutants_and_their_merged_reports_give_the_outcome_of_o
     whole = run_check(repo, "HEAD")
     files = []
     for k in (1, 2):
-        shard = run_check(repo, "HEAD", "--shard", f"{k}/2")
-        files.append(tmp_path / f"shard-{k}.json")
+        shard = run_check(repo, "HEAD", "--part", f"{k}/2")
+        assert shard.code == 4  # a part has no verdict of its own
+        files.append(tmp_path / f"part-{k}.json")
         files[-1].write_text(json.dumps(report_of(shard)))
     merged_file = tmp_path / "merged.json"
-    merge = [sys.executable, "-m", "verifier", "-C", str(repo.path), "merge-reports", *map(str, files)]
+    merge = [sys.executable, "-m", "verifier", "-C", str(repo.path), "join", *map(str, files)]
     done = subprocess.run(
         [*merge, "--format", "json", "--output", str(merged_file)],
         capture_output=True,

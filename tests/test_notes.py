@@ -231,7 +231,7 @@ def test_a_format_1_note_is_read_and_kept_as_the_first_entry() -> None:
     assert record is not None and record.newest is not None and record.problem is None
     assert (record.newest.how, record.newest.verdict, record.newest.coverage_percent) == ("unknown", "warn", 80.0)
     assert record.newest.findings == () and len(record.newest.range_findings) == 1  # copied onto every commit
-    body = notes.appended(old, "c0ffee", notes.skipped_entry("pre-push", "VERIFIER_SKIP was set"))
+    body = notes.appended(old, "c0ffee", notes.skipped_entry("pre-push", "bypassed by VERIFIER_BYPASS: a hotfix"))
     assert body["format"] == 2 and [e["how"] for e in body["checks"]] == ["unknown", "pre-push"]
     newer = notes.read_record(body)
     assert newer is not None and newer.newest is not None and newer.newest.skipped and newer.newest.verdict is None
@@ -242,7 +242,7 @@ def test_an_unreadable_note_is_kept_when_a_check_is_added(repo: ScratchRepo) -> 
     repo.commit("Start parcelkit", BASE_FILES)
     sha = repo.commit("Human tweak", {"README.md": "x\n"})
     repo.git("notes", f"--ref={notes.DEFAULT_REF}", "add", "-m", "hand-written, not JSON", sha)
-    notes.record_skipped(Git(repo.path), [sha], "commit-hook", "VERIFIER_SKIP was set")
+    notes.record_skipped(Git(repo.path), [sha], "commit-hook", "bypassed by VERIFIER_BYPASS: a hotfix")
     body = shown(repo, sha)
     assert body["unreadable_earlier_note"].startswith("hand-written") and body["checks"][0]["skipped"] is True
 

@@ -49,7 +49,7 @@ def sample_rule(monkeypatch: pytest.MonkeyPatch) -> Rule:
     """A rule with one option of each kind, registered for one test (stage 'none' never runs)."""
     load_all()
     options = {"limit": 400, "ratio": 0.5, "strict": False, "label": "x", "globs": ["a/**"], "entries": []}
-    sample = Rule("sample.options", "warn", "a sample", "explains", "none", lambda _c: [], False, options)
+    sample = Rule("sample.options", "advise", "a sample", "explains", "none", lambda _c: [], False, options)
     monkeypatch.setitem(REGISTRY, sample.id, sample)
     return sample
 
@@ -68,19 +68,19 @@ def test_unknown_key_names_file_line_column_and_key() -> None:
     [
         ("coverage: {threshold: 80, treshold: 70}\n", "treshold", "coverage.treshold"),
         (
-            "overrides:\n  - paths: [legacy/**]\n    coverage: {thresold: 5}\n",
+            'paths:\n  "legacy/**":\n    coverage: {thresold: 5}\n',
             "thresold",
-            "overrides[0].coverage.thresold",
+            "paths.legacy/**.coverage.thresold",
         ),
-        ("overrides:\n  - paths: [a]\n  - paths: [b]\n    ruels: {}\n", "ruels", "overrides[1].ruels"),
+        ("paths:\n  a: {}\n  b:\n    ruels: {}\n", "ruels", "paths.b.ruels"),
         (
             "waivers:\n  - rule: code.syntax\n    path: a\n    reason: r\n    owner: o\n    expires: 2999-01-01\n"
             "    ticket: 12\n",
             "ticket",
             "waivers[0].ticket",
         ),
-        ("rules:\n  code.syntax: {severity: warn, level: 3}\n", "level", "rules.code.syntax.level"),
-        ("rules:\n  code.sintax: warn\n", "code.sintax", "rules.code.sintax"),
+        ("rules:\n  code.syntax: {severity: advise, level: 3}\n", "level", "rules.code.syntax.level"),
+        ("rules:\n  code.sintax: advise\n", "code.sintax", "rules.code.sintax"),
         ("sandbox:\n  allow_process: false\n  network: true\n", "network", "sandbox.network"),
     ],
 )
@@ -99,13 +99,13 @@ def test_unknown_keys_anywhere_are_located(text: str, needle: str, key: str) -> 
         ("version: 2\n", 1, "version"),
         ("sandbox:\n  allow_process: maybe\n", 2, "sandbox.allow_process"),
         ("rules:\n  tests.failing: loud\n", 2, "rules.tests.failing"),
-        ("rules:\n  no.such-rule: warn\n", 2, "rules.no.such-rule"),
-        ("rules:\n  run.incomplete: warn\n", 2, "rules.run.incomplete"),  # a fixed rule always blocks
-        ("extends: lenient\n", 1, "extends"),
+        ("rules:\n  no.such-rule: advise\n", 2, "rules.no.such-rule"),
+        ("rules:\n  run.incomplete: advise\n", 2, "rules.run.incomplete"),  # a fixed rule always blocks
+        ("builds_on: lenient\n", 1, "builds_on"),
         ("limits: 5\n", 1, "limits"),
-        ("overrides: {paths: [a]}\n", 1, "overrides"),
-        ("overrides:\n  - coverage: {threshold: 5}\n", 2, "overrides[0]"),  # paths is required
-        ("overrides:\n  - paths: []\n", 2, "overrides[0].paths"),
+        ("paths:\n  - legacy/**\n", 2, "paths"),  # a mapping of glob to settings, not a list
+        ("paths:\n  legacy/**: 50\n", 2, "paths.legacy/**"),
+        ('paths:\n  "": {}\n', 2, "paths."),
         ("waivers:\n  - {rule: code.syntax, path: a}\n", 2, "waivers[0]"),  # reason, owner, expires missing
         (
             "waivers:\n  - {rule: code.syntax, path: a, reason: r, owner: o, expires: 2999-02-30}\n",
@@ -142,10 +142,13 @@ def test_broken_yaml_gives_its_line_and_column() -> None:
     assert error.column is not None
 
 
-def test_bare_off_is_a_setting_not_false() -> None:
+def test_bare_off_is_read_as_the_word_and_points_at_its_new_name() -> None:
     # YAML 1.1 reads a bare `off` as the boolean false (https://yaml.org/type/bool.html); a policy means the word.
-    layer = parse_layer("rules:\n  code.syntax: off\n", "v.yaml")
-    assert layer["rules"]["code.syntax"]["severity"].value == "off"
+    error = error_of("rules:\n  code.syntax: off\n")
+    assert (error.key, error.line) == ("rules.code.syntax", 2)
+    assert "the setting 'off' was renamed 'ignore'" in error.problem
+    layer = parse_layer("rules:\n  code.syntax: ignore\n", "v.yaml")
+    assert layer["rules"]["code.syntax"]["severity"].value == "ignore"
 
 
 def test_rule_options_are_typed_by_their_defaults(sample_rule: Rule) -> None:
@@ -226,7 +229,7 @@ def test_missing_policy_file_is_a_policy_error(tmp_path: Path) -> None:
 
 def test_layers_read_from_the_base_revision(tmp_path: Path) -> None:
     repo = ScratchRepo(tmp_path / "r")
-    base = repo.commit("policy", {"verifier.yaml": "version: 1\nextends: strict\nlimits:\n  memory_mb: 512\n"})
+    base = repo.commit("policy", {"verifier.yaml": "version: 1\nbuilds_on: strict\nlimits:\n  memory_mb: 512\n"})
     repo.commit("change the policy", {"verifier.yaml": "version: 1\ncoverage:\n  threshold: 1\n"})
     policy = load_policy(Git(repo.path), base)
     assert policy.coverage_threshold == 100.0  # from strict
@@ -250,21 +253,21 @@ LEGACY = PathOverride(
     paths=("legacy/**",),
     source="v.yaml:3",
     coverage_threshold=50.0,
-    rules={"code.syntax": "warn"},
+    rules={"code.syntax": "advise"},
     rule_options={"sample.options": {"limit": 5}},
 )
-TOOLS = PathOverride(paths=("legacy/tools/**",), source="v.yaml:9", rules={"code.syntax": "off"})
+TOOLS = PathOverride(paths=("legacy/tools/**",), source="v.yaml:9", rules={"code.syntax": "ignore"})
 
 
 def test_policy_for_path_applies_matching_overrides_in_order() -> None:
     policy = Policy(source="x", coverage_threshold=90.0, rules={"code.syntax": "block"}, overrides=(LEGACY, TOOLS))
     assert settings_for_path(policy, "parcelkit/rates.py").coverage_threshold == 90.0
     legacy = settings_for_path(policy, "legacy/old.py")
-    assert (legacy.coverage_threshold, legacy.setting("code.syntax", "block")) == (50.0, "warn")
+    assert (legacy.coverage_threshold, legacy.setting("code.syntax", "block")) == (50.0, "advise")
     assert legacy.option("sample.options", "limit", 400) == 5 and legacy.overrides == ("v.yaml:3",)
     tools = settings_for_path(policy, "legacy/tools/gen.py")
-    assert tools.setting("code.syntax", "block") == "off" and tools.coverage_threshold == 50.0
-    assert settings_for_path(policy, None).setting("code.syntax", "warn") == "block"  # change-wide: no override
+    assert tools.setting("code.syntax", "block") == "ignore" and tools.coverage_threshold == 50.0
+    assert settings_for_path(policy, None).setting("code.syntax", "advise") == "block"  # change-wide: no override
 
 
 def test_findings_take_the_severity_of_their_path() -> None:

@@ -1,5 +1,5 @@
-"""The policy engine on real repositories: layers and their provenance, the organisation policy, extends by
-name and by path, per-path overrides and waivers in real gate runs, and the ``policy`` commands."""
+"""The policy engine on real repositories: layers and their provenance, the organisation policy, builds_on by
+name and by path, per-path settings and waivers in real gate runs, and the ``policy`` commands."""
 
 from __future__ import annotations
 
@@ -26,8 +26,8 @@ BASE_FILES = {
     "parcelkit/rates.py": demo.RATES,
     "tests/test_rates.py": demo.TEST_RATES,
 }
-TEAM = "version: 1\nextends: strict\ncoverage:\n  threshold: 85\nlimits:\n  wall_seconds: 120\n"
-REPO = "version: 1\nextends: ci/team-policy.yaml\nlimits:\n  memory_mb: 512\n"
+TEAM = "version: 1\nbuilds_on: strict\ncoverage:\n  threshold: 85\nlimits:\n  wall_seconds: 120\n"
+REPO = "version: 1\nbuilds_on: ci/team-policy.yaml\nlimits:\n  memory_mb: 512\n"
 ORG = "version: 1\ncoverage:\n  threshold: 95\nlimits:\n  processes: 64\n  cpu_seconds: 400\n"
 BROKEN = "def oops(:\n    pass\n"
 WAIVER = (
@@ -62,7 +62,7 @@ def shown(repo: ScratchRepo, *extra: str, env: dict[str, str] | None = None) -> 
 @pytest.fixture
 def layered(repo: ScratchRepo, tmp_path: Path) -> tuple[ScratchRepo, Path, str]:
     base = repo.commit(
-        "Policy: team file, extends by path", {**BASE_FILES, "ci/team-policy.yaml": TEAM, "verifier.yaml": REPO}
+        "Policy: team file, builds on it by path", {**BASE_FILES, "ci/team-policy.yaml": TEAM, "verifier.yaml": REPO}
     )
     org = tmp_path / "quillfeather-org.yaml"
     org.write_text(ORG)
@@ -103,7 +103,7 @@ def test_org_policy_from_the_environment(layered: tuple[ScratchRepo, Path, str])
     assert missing.returncode == 2 and "cannot be read" in missing.stderr and "Traceback" not in missing.stderr
 
 
-def test_extends_by_path_is_read_from_the_base_revision(layered: tuple[ScratchRepo, Path, str]) -> None:
+def test_builds_on_by_path_is_read_from_the_base_revision(layered: tuple[ScratchRepo, Path, str]) -> None:
     repo, org, base = layered
     repo.commit(machine("Relax the team policy"), {"ci/team-policy.yaml": TEAM.replace("85", "0")})
     policy = load_policy(Git(repo.path), base, org)
@@ -114,23 +114,23 @@ def test_extends_by_path_is_read_from_the_base_revision(layered: tuple[ScratchRe
 @pytest.mark.parametrize(
     ("files", "problem"),
     [
-        ({"verifier.yaml": "extends: ../outside.yaml\n"}, "must be a path inside the repository"),
-        ({"verifier.yaml": "extends: ci/none.yaml\n"}, "no file 'ci/none.yaml' at the base revision"),
+        ({"verifier.yaml": "builds_on: ../outside.yaml\n"}, "must be a path inside the repository"),
+        ({"verifier.yaml": "builds_on: ci/none.yaml\n"}, "no file 'ci/none.yaml' at the base revision"),
         (
             {
-                "verifier.yaml": "extends: ci/a.yaml\n",
-                "ci/a.yaml": "extends: ci/b.yaml\n",
-                "ci/b.yaml": "extends: ci/a.yaml\n",
+                "verifier.yaml": "builds_on: ci/a.yaml\n",
+                "ci/a.yaml": "builds_on: ci/b.yaml\n",
+                "ci/b.yaml": "builds_on: ci/a.yaml\n",
             },
-            "extend one another",
+            "build on one another",
         ),
     ],
 )
-def test_bad_extends_points_at_the_line(repo: ScratchRepo, files: dict[str, str], problem: str) -> None:
+def test_bad_builds_on_points_at_the_line(repo: ScratchRepo, files: dict[str, str], problem: str) -> None:
     base = repo.commit("policy", files)
     with pytest.raises(PolicyError) as caught:
         load_policy(Git(repo.path), base)
-    assert problem in str(caught.value) and caught.value.key == "extends" and caught.value.line == 1
+    assert problem in str(caught.value) and caught.value.key == "builds_on" and caught.value.line == 1
 
 
 def test_policy_check_through_the_cli(repo: ScratchRepo, tmp_path: Path) -> None:
@@ -138,12 +138,12 @@ def test_policy_check_through_the_cli(repo: ScratchRepo, tmp_path: Path) -> None
     ok = verifier("-C", str(repo.path), "policy", "check")
     assert ok.returncode == 0 and "valid (coverage threshold 85%" in ok.stdout, ok.stderr
     bad = tmp_path / "candidate.yaml"
-    text = "version: 1\noverrides:\n  - paths: [legacy/**]\n    rules: {code.syntax: {severity: warn, depth: 2}}\n"
+    text = 'version: 1\npaths:\n  "legacy/**":\n    rules: {code.syntax: {severity: advise, depth: 2}}\n'
     bad.write_text(text)
     done = verifier("-C", str(repo.path), "policy", "check", str(bad))
     column = text.split("\n")[3].index("depth") + 1  # counted in the text itself
     assert done.returncode == 2 and "Traceback" not in done.stderr
-    assert f"{bad}:4: key 'overrides[0].rules.code.syntax.depth': unknown option" in done.stderr
+    assert f"{bad}:4: key 'paths.legacy/**.rules.code.syntax.depth': unknown option" in done.stderr
     assert done.stderr.strip().endswith(f"(column {column})")
 
 
@@ -163,10 +163,10 @@ def test_policy_explain_and_the_rule_listing_through_the_cli() -> None:
 # --- real gate runs ---------------------------------------------------------------------------------------
 
 
-def test_overrides_judge_their_paths_by_their_own_settings(repo: ScratchRepo) -> None:
+def test_path_settings_judge_their_paths_by_their_own_settings(repo: ScratchRepo) -> None:
     policy = (
-        "version: 1\noverrides:\n  - paths: [parcelkit/zones.py]\n    coverage: {threshold: 50}\n"
-        "  - paths: [legacy/**]\n    rules:\n      code.syntax: warn\n"
+        "version: 1\npaths:\n  parcelkit/zones.py:\n    coverage: {threshold: 50}\n"
+        '  "legacy/**":\n    rules:\n      code.syntax: advise\n'
     )
     repo.commit("Start parcelkit", {**BASE_FILES, "verifier.yaml": policy})
     sha = repo.commit(

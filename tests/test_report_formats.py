@@ -106,17 +106,25 @@ def test_sarif_carries_rules_results_and_facts(outputs: dict[str, Path]) -> None
     assert run["invocations"][0]["exitCode"] == 1
 
 
-def test_markdown_puts_the_verdict_first_then_files_and_findings(outputs: dict[str, Path]) -> None:
+def test_markdown_puts_the_verdict_and_counts_first_then_a_table_per_file_then_details(
+    outputs: dict[str, Path],
+) -> None:
     text = load(outputs["block"], "report.md")
     report = json.loads(load(outputs["block"], "report.json"))
-    assert text.startswith("## verifier: BLOCK")
+    heading = text.splitlines()[0]
+    blocking = sum(1 for f in report["findings"] if f["severity"] in ("block", "error"))
+    assert heading.startswith("## BLOCK · verifier · ") and f"{len(report['findings'])} findings" in heading
+    assert f"{blocking} blocking" in heading
+    rows = {row.split(" | ")[0]: row for row in text.splitlines() if row.startswith("| `")}
     for path, lines in report["machine_lines"].items():
-        assert f"| `{path}` | {len(lines)} |" in text
+        assert f" | {len(lines)} | " in rows[f"| `{path}`"]
     uncovered = report["coverage"]["uncovered"]["parcelkit/zones.py"]
-    assert f"| {len(uncovered)}: " in text
+    assert f"| {len(uncovered)}: " in rows["| `parcelkit/zones.py`"]
+    assert text.index("| File |") < text.index("### Findings") < text.index("<details")
     assert "`tests.failing`" in text and "extra = 7.5" in text  # a finding's code excerpt
-    assert text.count("<details>") == text.count("</details>") >= 2
-    assert load(outputs["pass"], "report.md").startswith("## verifier: PASS")
+    assert text.count("<details") == text.count("</details>") >= 2
+    assert "<details open><summary>parcelkit/zones.py: " in text  # a file with a blocking finding is unfolded
+    assert load(outputs["pass"], "report.md").startswith("## PASS · verifier · ")
 
 
 def test_junit_counts_match_the_report_and_pytest_itself(outputs: dict[str, Path], tmp_path: Path) -> None:

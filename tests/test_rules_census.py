@@ -8,7 +8,7 @@ from conftest import machine, run_check
 from verifier.demo.scratch import ScratchRepo
 
 # the honest change adds a constant no test reads: the mutation stage, not the subject here, is switched off
-POLICY = "version: 1\nselection:\n  mode: all\n  differential: true\nrules:\n  tests.mutant-survived: off\n"
+POLICY = "version: 1\nselection:\n  run: all\n  differential: true\nrules:\n  tests.mutant-survived: ignore\n"
 SPEEDUPS = "NATIVE = True\n\n\ndef speed():\n    return 3\n"
 # a human test that skips itself when the speedups are off (pytest documentation, skipif)
 TEST_SPEEDUPS = (

@@ -47,10 +47,10 @@ LIGHT, HEAVY, REMOTE = (f"tests/test_rates.py::test_{name}" for name in ("light"
 LABEL, UNRELATED = "tests/test_labels.py::test_label", "tests/test_misc.py::test_unrelated"
 
 
-SMART = "selection:\n  mode: smart\n"
+OBSERVED = "selection:\n  run: observed\n"
 
 
-def library(repo: ScratchRepo, policy: str = SMART, extra: dict[str, str] | None = None) -> None:
+def library(repo: ScratchRepo, policy: str = OBSERVED, extra: dict[str, str] | None = None) -> None:
     repo.commit("parcelkit rates and labels", {**LIBRARY, **(extra or {}), "verifier.yaml": policy})
 
 
@@ -106,7 +106,7 @@ def test_a_conftest_change_runs_the_whole_suite(repo):
 
 
 def test_without_a_map_the_import_graph_chooses(repo):
-    library(repo, policy=SMART + "  map_build: never\n  without_map: imports\n")
+    library(repo, policy=OBSERVED + "  map_build: never\n  without_map: imports\n")
     repo.commit(
         machine("Remote zones cost one more"),
         {
@@ -145,7 +145,7 @@ def test_always_fails():
 
 def test_a_test_that_passes_on_a_rerun_is_reported_flaky_and_a_real_failure_still_blocks(repo):
     # test_always_fails fails at base too: a pre-existing failure warns unless the policy blocks those as well
-    policy = "selection:\n  mode: all\n  reruns: 2\nrules:\n  tests.failing:\n    block_pre_existing: true\n"
+    policy = "selection:\n  run: all\n  reruns: 2\nrules:\n  tests.failing:\n    block_pre_existing: true\n"
     library(repo, policy=policy, extra={"tests/test_flaky.py": FLAKY})
     change_heavy_branch(repo)
     out = run_check(repo, "HEAD")
@@ -166,7 +166,7 @@ def test_a_test_that_passes_on_a_rerun_is_reported_flaky_and_a_real_failure_stil
 
 def test_the_differential_run_blocks_only_what_the_change_breaks(repo):
     known_bug = {"tests/test_known.py": "def test_known_bug():\n    assert round(2.5) == 3  # banker's rounding\n"}
-    library(repo, policy=SMART + '  differential: true\nrules:\n  tests.failing: "off"\n', extra=known_bug)
+    library(repo, policy=OBSERVED + '  differential: true\nrules:\n  tests.failing: "ignore"\n', extra=known_bug)
     change_heavy_branch(repo, new="BASE + 3")
     out = run_check(repo, "HEAD")
     classes = out.report["tests"]["differential"]
@@ -181,18 +181,21 @@ def test_the_differential_run_blocks_only_what_the_change_breaks(repo):
     assert out.code == 1
 
 
-def test_shards_split_the_tests_and_their_merged_reports_give_the_verdict_of_one_run(repo, tmp_path):
-    library(repo, policy="selection:\n  mode: all\n  reruns: 0\n")
+def test_parts_split_the_tests_and_their_joined_reports_give_the_verdict_of_one_run(repo, tmp_path):
+    library(repo, policy="selection:\n  run: all\n  reruns: 0\n")
     change_heavy_branch(repo, new="BASE + 3")  # breaks test_heavy: the verdict is block
     whole = run_check(repo, "HEAD")
-    shards = [run_check(repo, "HEAD", "--shard", f"{k}/2") for k in (1, 2)]
+    shards = [run_check(repo, "HEAD", "--part", f"{k}/2") for k in (1, 2)]
     parts = [ran(shard) for shard in shards]
+    # a part cannot judge coverage alone: it ends with its own outcome (exit 4), never a block
+    assert [(s.code, s.report["verdict"]) for s in shards] == [(4, "part"), (4, "part")]
+    assert all((s.stdout + s.stderr).startswith("PART ") and "'verifier join'" in s.stdout + s.stderr for s in shards)
     assert parts[0] and parts[1] and not parts[0] & parts[1]
     assert parts[0] | parts[1] == ran(whole) == {LIGHT, HEAVY, REMOTE, LABEL, UNRELATED}
 
     files = []
     for k, shard in enumerate(shards, start=1):
-        files.append(tmp_path / f"shard-{k}.json")
+        files.append(tmp_path / f"part-{k}.json")
         files[-1].write_text(json.dumps(shard.report))
     merged_file = tmp_path / "merged.json"
     done = subprocess.run(
@@ -202,7 +205,7 @@ def test_shards_split_the_tests_and_their_merged_reports_give_the_verdict_of_one
             "verifier",
             "-C",
             str(repo.path),
-            "merge-reports",
+            "join",
             *map(str, files),
             "--format",
             "json",
@@ -221,9 +224,9 @@ def test_shards_split_the_tests_and_their_merged_reports_give_the_verdict_of_one
     assert sorted((f["rule"], f["path"], f["message"]) for f in merged["findings"]) == key
 
     missing = subprocess.run(
-        [sys.executable, "-m", "verifier", "-C", str(repo.path), "merge-reports", str(files[0])],
+        [sys.executable, "-m", "verifier", "-C", str(repo.path), "join", str(files[0])],
         capture_output=True,
         text=True,
         env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"},
     )
-    assert missing.returncode == 2 and "shard 2/2 is missing" in missing.stderr
+    assert missing.returncode == 2 and "part 2/2 is missing" in missing.stderr

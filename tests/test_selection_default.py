@@ -206,8 +206,8 @@ def test_all_tests_and_the_policy_still_ask_for_every_test(repo):
     repo.commit(machine("Zones as a tuple"), {"src/parcelkit/rates.py": honest})
     out = run_check(repo, "HEAD", "--all-tests")
     assert out.code == 0 and report(out)["selection"]["whole_suite"] is True and ran(out) == EVERY_TEST
-    repo.commit("Every test on every check", {"verifier.yaml": "selection:\n  mode: all\n"})
+    repo.commit("Every test on every check", {"verifier.yaml": "selection:\n  run: all\n"})
     repo.commit(machine("Zones as a list"), {"src/parcelkit/rates.py": honest.replace('("remote",)', '["remote"]')})
     out = run_check(repo, "HEAD")
-    assert out.code == 0 and "selection.mode is 'all'" in report(out)["selection"]["reason"]
+    assert out.code == 0 and "selection.run is 'all'" in report(out)["selection"]["reason"]
     assert ran(out) == EVERY_TEST

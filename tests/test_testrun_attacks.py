@@ -21,8 +21,8 @@ from verifier.demo.scratch import ScratchRepo
 # must be caught by the sealed harness alone, and each honest twin must get through it.
 # (every test runs, too: the honest twins count the tests the harness recorded)
 HARNESS_ONLY = (
-    "version: 1\nselection:\n  mode: all\nrules:\n  tamper.means: off\n  tests.cannot-fail: off\n"
-    "  tests.mutant-survived: off\n"
+    "version: 1\nselection:\n  run: all\nrules:\n  tamper.means: ignore\n  tests.cannot-fail: ignore\n"
+    "  tests.mutant-survived: ignore\n"
 )
 BASE = {
     "parcelkit/__init__.py": "",
@@ -295,7 +295,7 @@ def test_flaky_on_machine_code_blocks(repo: ScratchRepo) -> None:
 
 
 def test_flaky_on_machine_code_with_the_policy_allowing_it(repo: ScratchRepo) -> None:
-    start(repo, {"verifier.yaml": HARNESS_ONLY.replace("  mode: all\n", "  mode: all\n  allow_flaky: true\n")})
+    start(repo, {"verifier.yaml": HARNESS_ONLY.replace("  run: all\n", "  run: all\n  allow_flaky: true\n")})
     code, report = gate(repo, change(FLAKY))
     assert code == 0 and report["verdict"] == "warn", report["findings"]
     assert "tests.flaky-machine" not in rules(report)

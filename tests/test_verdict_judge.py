@@ -13,8 +13,8 @@ from verifier.verdict.settings import enabled_anywhere, settings_for_path
 WAIVER = Waiver("code.syntax", "legacy/**", "generated", "ada.okafor", "2999-12-31", "v.yaml:9")
 POLICY = Policy(
     source="v.yaml",
-    rules={"patch.size": "warn"},
-    overrides=(PathOverride(("legacy/**",), "v.yaml:3", rules={"patch.size": "off", "deps.added": "block"}),),
+    rules={"patch.size": "advise"},
+    overrides=(PathOverride(("legacy/**",), "v.yaml:3", rules={"patch.size": "ignore", "deps.added": "block"}),),
     waivers=(WAIVER,),
 )
 
@@ -31,8 +31,8 @@ def test_the_policy_sets_the_severity_a_rule_reported() -> None:
 def test_an_override_switches_a_rule_off_for_its_paths_only() -> None:
     judged = judge(POLICY, [finding("patch.size", "legacy/old.py"), finding("patch.size", "src/a.py")])
     assert [(f.path, f.severity) for f in judged] == [("src/a.py", "warn")]
-    assert enabled_anywhere(POLICY, "patch.size", "warn")
-    assert not enabled_anywhere(Policy(source="x", rules={"patch.size": "off"}), "patch.size", "warn")
+    assert enabled_anywhere(POLICY, "patch.size", "advise")
+    assert not enabled_anywhere(Policy(source="x", rules={"patch.size": "ignore"}), "patch.size", "advise")
     assert settings_for_path(POLICY, "legacy/x.py").overrides == ("v.yaml:3",)
 
 

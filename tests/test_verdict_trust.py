@@ -18,7 +18,7 @@ BASE_FILES = {"parcelkit/__init__.py": "", "parcelkit/rates.py": demo.RATES, "te
 VOLUME = {"parcelkit/volume.py": demo.VOLUME, "tests/test_volume.py": demo.TEST_VOLUME}
 ALLOW_PROCESS = "version: 1\nsandbox:\n  allow_process: true\n"
 TEAM_POLICY = "version: 1\ncoverage:\n  threshold: 95\n"
-EXTENDS_TEAM = "version: 1\nextends: config/gate-team.yaml\n"
+EXTENDS_TEAM = "version: 1\nbuilds_on: config/gate-team.yaml\n"
 
 
 def test_the_command_line_cannot_choose_a_sandbox_the_policy_forbids(repo: ScratchRepo) -> None:

@@ -12,6 +12,7 @@ class ExitCode(IntEnum):
     BLOCK = 1  # a blocking finding
     USAGE = 2  # a bad command line or a broken policy
     UNVERIFIED = 3  # the gate could not verify (never a pass)
+    PART_DONE = 4  # check --part K/N ran its share; no verdict of its own: verifier join gives it
     INTERRUPTED = 130  # stopped by Ctrl-C or SIGINT (128 + the signal number, as shells report it)
 
 

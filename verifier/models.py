@@ -17,8 +17,8 @@ INDEX = "index"  # the "head" of a --staged check: the index, which has no commi
 ChangeKind = Literal["range", "commit", "staged"]
 FileStatus = Literal["added", "modified", "deleted", "renamed", "copied", "type-changed"]
 Severity = Literal["block", "warn", "info", "error"]
-Verdict = Literal["pass", "warn", "block", "error"]
-RuleSetting = Literal["block", "warn", "off"]
+Verdict = Literal["pass", "warn", "block", "error", "part"]  # part: check --part ran its share
+RuleSetting = Literal["block", "advise", "ignore"]  # advise: findings warn; ignore: the rule is off
 
 
 @dataclass(frozen=True)
@@ -148,7 +148,7 @@ class Policy:
     expired_waivers: tuple[Waiver, ...] = ()  # past their date: they waive nothing, their findings count again
     expiring_waivers: tuple[Waiver, ...] = ()  # of ``waivers``, those expiring soon (a warning ahead of time)
     agent_identities: tuple[str, ...] = ()  # emails of assistants whose unmarked commits the audit counts
-    files: tuple[str, ...] = ()  # the repository's files (at base) this policy is built from: verifier.yaml, extends
+    files: tuple[str, ...] = ()  # the repository's files (at base) this policy is built from: verifier.yaml, builds_on
     selection: SelectionSettings = field(default_factory=lambda: SelectionSettings())
 
     def setting(self, rule_id: str, default: RuleSetting) -> RuleSetting:
@@ -174,7 +174,7 @@ class Selection:
 class SelectionSettings:
     """The policy's ``selection:`` section: how tests are chosen, re-run and spread over cores."""
 
-    mode: Literal["smart", "all"] = "all"
+    run: Literal["observed", "all"] = "all"  # observed: the tests that can observe the change
     differential: bool = False  # also run the selected tests at base and classify each one
     reruns: int = 2  # a failing test is run again up to this many times; passing on one makes it flaky
     map_build: Literal["always", "if-cached", "never"] = "always"

@@ -35,7 +35,7 @@ from verifier.models import (
 )
 from verifier.policy.loader import load_policy
 from verifier.provenance.attribution import attribute, has_mark_text
-from verifier.verdict.decision import decide
+from verifier.verdict.decision import decide, decide_part
 from verifier.verdict.settings import enabled_anywhere, settings_for_path
 from verifier.verdict.waivers import waived_by, waiver_notes, waivers_used
 from verifier.words import counted
@@ -308,6 +308,14 @@ def _sandbox_notes(run: RunResult) -> tuple[str, ...]:
     return ()
 
 
+def _part_note(part: tuple[int, int] | None) -> str:
+    index, total = part or (1, 1)
+    return (
+        f"part {index}/{total}: the findings above judge this part's tests alone (exit 4, no verdict); "
+        f"join the JSON reports of all {total} parts with 'verifier join' for the verdict"
+    )
+
+
 def _report(
     check: CheckContext,
     findings: list[Finding],
@@ -319,9 +327,10 @@ def _report(
 ) -> Report:
     from verifier.report.bounds import bounded
 
+    whole = check.options.shard is None or run is None  # a part's run is judged by joining every part
     return bounded(
         Report(
-            verdict=decide(findings),
+            verdict=decide(findings) if whole else decide_part(findings),
             change=check.change,
             provenance=check.provenance,
             policy_source=check.policy.source,
@@ -329,7 +338,11 @@ def _report(
             coverage=coverage,
             findings=tuple(findings),
             sources=_shown_sources(check, findings),
-            notes=(*notes, *waiver_notes(check.policy, datetime.now(timezone.utc).date())),
+            notes=(
+                *notes,
+                *waiver_notes(check.policy, datetime.now(timezone.utc).date()),
+                *(() if whole else (_part_note(check.options.shard),)),
+            ),
             waivers_used=waivers_used(check.policy, findings),
             selection=selection,
             mutation=mutation,

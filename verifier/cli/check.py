@@ -15,6 +15,7 @@ from typing import TYPE_CHECKING
 
 from verifier.cli.choices import SANDBOXES
 from verifier.cli.output import add_output_options, plan_output, record_notes
+from verifier.cli.renamed import renamed_option
 from verifier.errors import ExitCode, UsageError
 
 if TYPE_CHECKING:
@@ -40,12 +41,13 @@ def add_command(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -
         "--all-tests", action="store_true", help="run every test, not only those that can observe the change"
     )
     check.add_argument(
-        "--shard",
-        type=_shard,
+        "--part",
+        type=_part,
         metavar="K/N",
-        help="run shard K of N of the selected tests (one "
-        "CI machine each); join the JSON reports with 'verifier merge-reports'",
+        help="run part K of N of the selected tests (one CI machine each; a part exits 4, having no verdict "
+        "of its own); join the parts' JSON reports with 'verifier join' for the verdict",
     )
+    renamed_option(check, "--shard", "--part", example="--part 1/2")
     add_org_policy_option(check)
     check.set_defaults(run=run)
 
@@ -103,12 +105,12 @@ def _verify(args: argparse.Namespace) -> Report:
             org_policy=args.org_policy,
             index_file=index_file,
             all_tests=args.all_tests,
-            shard=args.shard,
+            shard=args.part,
         )
         return verify(args.repo, spec, options)
 
 
-def _shard(text: str) -> tuple[int, int]:
+def _part(text: str) -> tuple[int, int]:
     """``K/N`` -> (K, N), with 1 <= K <= N."""
     index, _, total = text.partition("/")
     if not (index.isdigit() and total.isdigit()) or not 1 <= int(index) <= int(total):

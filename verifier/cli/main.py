@@ -3,8 +3,9 @@
 Each subcommand is one module of this package that owns its options (``add_command``) and its work
 (the ``run`` it sets as the parser's default); :data:`COMMANDS` lists them. Errors are mapped to messages
 and exit codes here, in one place (:class:`~verifier.errors.ExitCode`: 0 pass or warn, 1 block, 2 usage or
-policy error, 3 could not verify). Imports are lazy: ``check --staged`` on a message without the
-``Model-Written`` trailer (the commit hook's common case) returns before anything heavy is imported.
+policy error or a renamed name, 3 could not verify, 4 a part's share done: ``join`` gives the verdict).
+Imports are lazy: ``check --staged`` on a message without the ``Model-Written`` trailer (the commit hook's
+common case) returns before anything heavy is imported.
 """
 
 from __future__ import annotations
@@ -19,6 +20,7 @@ from types import FrameType
 
 from verifier import __version__
 from verifier.cli import audit, check, demo, hooks, join, policy, rules, sandbox
+from verifier.cli.renamed import refuse_renamed_command
 from verifier.errors import ExitCode, VerifierError
 
 COMMANDS = (check, join, rules, policy, hooks, demo, sandbox, audit)
@@ -49,9 +51,10 @@ def _handle_termination() -> None:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    args = build_parser().parse_args(argv)
-    _handle_termination()
     try:
+        refuse_renamed_command(sys.argv[1:] if argv is None else argv)
+        args = build_parser().parse_args(argv)
+        _handle_termination()
         return int(args.run(args))
     except VerifierError as error:
         print(f"verifier: {error}", file=sys.stderr)

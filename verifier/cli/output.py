@@ -1,4 +1,4 @@
-"""Where a check's reports go, shared by ``check`` and ``merge-reports``: the options, the plan, the writes.
+"""Where a check's reports go, shared by ``check`` and ``join``: the options, the plan, the writes.
 
 - Without ``--output`` (or with ``--output -``) a machine format goes alone to stdout and the text view
   goes to stderr; only the text view alone goes to stdout. Two machine formats need a folder.
@@ -162,7 +162,7 @@ def _umask() -> int:
 
 def record_notes(report: Any, args: argparse.Namespace) -> None:
     """One git note per checked commit (a --staged check has none yet: its post-commit hook writes it)."""
-    if args.no_notes or getattr(args, "staged", False) or getattr(args, "shard", None):  # a shard's verdict is partial
+    if args.no_notes or getattr(args, "staged", False) or getattr(args, "part", None):  # a part has no verdict
         return
     from verifier.gitio import Git
     from verifier.report import notes

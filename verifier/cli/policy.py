@@ -53,7 +53,7 @@ def check_file(args: argparse.Namespace) -> int:
     policy = build_policy(layers)
     print(
         f"{target}: valid (coverage threshold {policy.coverage_threshold:g}%, "
-        f"wall limit {policy.limits.wall_seconds:g}s, {counted(len(policy.overrides), 'override')}, "
+        f"wall limit {policy.limits.wall_seconds:g}s, {counted(len(policy.overrides), 'path setting')}, "
         f"{counted(len(policy.waivers), 'waiver')})"
     )
     print(_notices(layers, policy), end="")

@@ -30,7 +30,12 @@ if TYPE_CHECKING:
 HOOK_NAMES = ("commit-msg", "pre-push", "post-commit")
 MARKER = "# verifier-managed hook"
 CHAINED_SUFFIX = ".verifier-chained"
-SKIP_HINT = "skip in an emergency with VERIFIER_SKIP=1 (or --no-verify); the audit lists such commits as unverified"
+BYPASS_ENV = "VERIFIER_BYPASS"  # its value is the reason, required, printed and kept in the commit's note
+BYPASS_HINT = (
+    'bypass once in an emergency with VERIFIER_BYPASS="the reason" (or --no-verify); the audit lists such '
+    "commits as unverified"
+)
+MAX_REASON_CHARS = 300
 
 
 # -- locating ----------------------------------------------------------------------------------------
@@ -227,7 +232,7 @@ def _refuse_commit(git: Git, message_file: Path, why: str) -> None:
     saved = save_message(git, message_file)
     _say(why)
     _say(f"your message is saved; once fixed, commit with: git commit -F {saved}")
-    _say(SKIP_HINT)
+    _say(BYPASS_HINT)
 
 
 def save_message(git: Git, message_file: Path) -> Path:
@@ -252,6 +257,9 @@ def post_commit(repo: str) -> int:
     from verifier.report import notes
 
     git = Git(Git(repo).toplevel())
+    reason = bypass_reason()
+    if reason is not None:
+        return _record_bypass(git, reason)
     try:
         written = notes.note_pending(git, notes.configured_ref(git))
     except VerifierError as error:
@@ -259,6 +267,32 @@ def post_commit(repo: str) -> int:
         return EXIT_PASS
     if written:
         _say(f"verdict recorded as a git note on {written[:12]}")
+    return EXIT_PASS
+
+
+def bypass_reason() -> str | None:
+    """The reason given in ``$VERIFIER_BYPASS``, printable and cut short; None when no bypass is asked for."""
+    from verifier.report.text import printable
+
+    given = " ".join(os.environ.get(BYPASS_ENV, "").split())
+    return printable(given[:MAX_REASON_CHARS]) if given else None
+
+
+def _record_bypass(git: Git, reason: str) -> int:
+    """The commit just made bypassed the gate: a machine-written one gets a skipped entry with the reason."""
+    from verifier.provenance.trailers import machine_mark
+    from verifier.report import notes
+
+    head = git.text(["rev-parse", "HEAD"])
+    if machine_mark(git.text(["log", "-1", "--format=%B", head])) is None or not notes.notes_enabled(git):
+        return EXIT_PASS
+    try:
+        ref = notes.configured_ref(git)
+        notes.record_skipped(git, [head], "commit-hook", f"bypassed by {BYPASS_ENV}: {reason}", ref)
+    except VerifierError as error:
+        _say(f"could not record the bypass in the note of the new commit: {error}")
+        return EXIT_PASS
+    _say(f"bypassed by {BYPASS_ENV}: {reason} (recorded as a git note on {head[:12]})")
     return EXIT_PASS
 
 
@@ -298,7 +332,7 @@ def pre_push(repo: str, lines: Sequence[str], args: Sequence[str] = ()) -> int:
         worst = max(worst, _exit_code(report))
     if worst != EXIT_PASS:
         _say("the push is refused: a pushed machine-written commit does not pass the gate")
-        _say(SKIP_HINT)
+        _say(BYPASS_HINT)
     return worst
 
 

@@ -1,4 +1,4 @@
-"""Joining the mutants of ``verifier check --shard K/N`` reports into the outcome one run would have given.
+"""Joining the mutants of ``verifier check --part K/N`` reports into the outcome one run would have given.
 
 Every shard plans the same mutants (the choice is deterministic) and runs each one against its own share
 of the tests that executed the mutant's line; so the shards split the mutation work the way they split

@@ -1,5 +1,5 @@
 """Building the typed :class:`~verifier.models.Policy` from validated layers: merged key by key, later
-layers winning, ``overrides`` and ``waivers`` joined. A waiver past its date is set apart (it waives
+layers winning, ``paths`` and ``waivers`` joined. A waiver past its date is set apart (it waives
 nothing, and the findings it covered count again); one expiring within :data:`WAIVER_NOTICE_DAYS` is
 listed too, so the check and ``verifier policy check`` can warn about it ahead of time."""
 
@@ -12,12 +12,12 @@ from typing import Any
 from verifier.models import Limits, PathOverride, Policy, RuleSetting, SelectionSettings, Waiver
 from verifier.policy.parse import Layer
 
-JOINED_KEYS = ("overrides", "waivers")  # lists that later layers extend instead of replacing
+JOINED_KEYS = ("paths", "waivers")  # lists that later layers extend instead of replacing
 WAIVER_NOTICE_DAYS = 14  # a waiver expiring within this many days is warned about
 
 
 def merge_layers(layers: Iterable[Mapping[str, Any]], top: bool = True) -> dict[str, Any]:
-    """Deep-merge validated layers, later ones winning key by key; ``overrides`` and ``waivers`` join."""
+    """Deep-merge validated layers, later ones winning key by key; ``paths`` and ``waivers`` join."""
     merged: dict[str, Any] = {}
     for layer in layers:
         for key, value in layer.items():
@@ -69,7 +69,7 @@ def build_policy(layers: list[Layer], today: date | None = None) -> Policy:
         allow_process_sandbox=bool(get("sandbox", "allow_process")),
         rules=rules,
         rule_options=options,
-        overrides=tuple(_override(entry) for entry in merged.get("overrides", [])),
+        overrides=tuple(_override(entry) for entry in merged.get("paths", [])),
         waivers=waivers,
         expired_waivers=tuple(w for w in every_waiver if _expired(w, day)),
         expiring_waivers=tuple(w for w in waivers if _expires_within(w, day, WAIVER_NOTICE_DAYS)),

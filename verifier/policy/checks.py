@@ -16,7 +16,8 @@ from typing import Any
 
 Check = Callable[[Any], str | None]  # returns the problem, or None when the value is fine
 
-RULE_SETTINGS = ("block", "warn", "off")
+RULE_SETTINGS = ("block", "advise", "ignore")
+RENAMED_SETTINGS = {"warn": "advise", "off": "ignore"}  # an older policy's spelling -> ours
 MAX_SHOWN = 80  # characters of a value a message quotes
 # the largest whole number a rule option may hold: past it no count, size or limit makes sense
 MAX_WHOLE_NUMBER = 10**12
@@ -95,6 +96,8 @@ def boolean(value: Any) -> str | None:
 
 
 def rule_setting(value: Any) -> str | None:
+    if value in RENAMED_SETTINGS:
+        return f"the setting '{value}' was renamed '{RENAMED_SETTINGS[value]}'; write {RENAMED_SETTINGS[value]}"
     return None if value in RULE_SETTINGS else f"expected one of {', '.join(RULE_SETTINGS)}, got {shown(value)}"
 
 

@@ -6,9 +6,9 @@ typed :class:`~verifier.models.Policy`. How a finding is judged by it is the ver
 
 Layers, later ones overriding earlier ones key by key: the shipped ``policies/default.yaml``; an optional
 organisation policy (``--org-policy PATH`` or ``$VERIFIER_ORG_POLICY``); then the repository's
-``verifier.yaml`` as it is at the **base** revision. A layer may ``extends:`` a shipped policy by name or
-another file by path; the extended file sits just below the layer that names it. ``overrides`` and
-``waivers`` lists are joined across layers, in order. The change under review never gets a say in how it
+``verifier.yaml`` as it is at the **base** revision. A layer's ``builds_on:`` names a shipped policy by name or
+another file by path; that file sits just below the layer that names it. ``paths`` (per-path settings) and
+``waivers`` are joined across layers, in order. The change under review never gets a say in how it
 is judged: its own ``verifier.yaml`` (waivers included) is not read.
 
 Every key is validated against :data:`~verifier.policy.schema.SCHEMA`; a broken file, an unknown key or a
@@ -101,7 +101,7 @@ def check_policy_at(git: Git, revision: str | None, org_policy: str | os.PathLik
 
 
 def _repository_layers(git: Git, revision: str | None) -> list[Layer]:
-    """``verifier.yaml`` at ``revision`` (None: the index) and the files it extends, if it is there."""
+    """``verifier.yaml`` at ``revision`` (None: the index) and the files it builds on, if it is there."""
     text = git.show_file(revision, POLICY_FILE)
     if text is None:
         return []
@@ -130,7 +130,7 @@ def _refuse_org_policy_inside(git: Git, path: Path | None) -> None:
 
 
 def file_layers(path: Path, root: Path, org_policy: str | os.PathLike[str] | None = None) -> list[Layer]:
-    """The layers for a policy file on disk (``verifier policy check``); its ``extends:`` paths are
+    """The layers for a policy file on disk (``verifier policy check``); its ``builds_on:`` paths are
     relative to ``root`` (the repository's folder), as they would be at a base revision."""
     return _first_of_each(
         [shipped_layer("default"), *_org_layers(org_policy), *_with_extends(read_file_layer(path), _disk_reader(root))]
@@ -159,11 +159,11 @@ def read_file_layer(path: Path) -> Layer:
     return Layer(str(path), parse_layer(text, str(path)))
 
 
-Reader = Callable[[str, Located], Layer]  # (relative path, the extends value) -> the layer it names
+Reader = Callable[[str, Located], Layer]  # (relative path, the builds_on value) -> the layer it names
 
 
 def _revision_reader(git: Git, base: str | None) -> Reader:
-    """Read the files a policy extends at ``base`` (None: from the index)."""
+    """Read the files a policy builds on at ``base`` (None: from the index)."""
     prefix = "index" if base is None else base[:12]
     where_read = "in the index" if base is None else f"at the base revision {prefix}"
 
@@ -172,7 +172,7 @@ def _revision_reader(git: Git, base: str | None) -> Reader:
         label = f"{prefix}:{clean}"
         text = git.show_file(base, clean)
         if text is None:
-            raise error_at(where, "extends", f"no file '{clean}' {where_read}")
+            raise error_at(where, "builds_on", f"no file '{clean}' {where_read}")
         return Layer(label, parse_layer(text.decode("utf-8", "replace"), label), repo_path=clean)
 
     return read
@@ -182,7 +182,7 @@ def _disk_reader(root: Path) -> Reader:
     def read(path: str, where: Located) -> Layer:
         target = root / _relative(path, where)
         if not target.is_file():
-            raise error_at(where, "extends", f"no file '{target}'")
+            raise error_at(where, "builds_on", f"no file '{target}'")
         return read_file_layer(target)
 
     return read
@@ -191,20 +191,20 @@ def _disk_reader(root: Path) -> Reader:
 def _relative(path: str, where: Located) -> str:
     clean = posixpath.normpath(path)
     if clean.startswith(("/", "../")) or clean == "..":
-        raise error_at(where, "extends", f"'{path}' must be a path inside the repository")
+        raise error_at(where, "builds_on", f"'{path}' must be a path inside the repository")
     return clean
 
 
 def _with_extends(layer: Layer, read: Reader, depth: int = 0) -> list[Layer]:
-    """``layer`` preceded by the chain of files it extends (each below the one that names it)."""
-    extends = layer.data.get("extends")
+    """``layer`` preceded by the chain of files it builds on (each below the one that names it)."""
+    extends = layer.data.get("builds_on")
     if extends is None or extends.value == "default":
         return [layer]
     if depth >= MAX_EXTENDS_DEPTH:
-        raise error_at(extends, "extends", f"more than {MAX_EXTENDS_DEPTH} policies extend one another (a cycle?)")
+        raise error_at(extends, "builds_on", f"more than {MAX_EXTENDS_DEPTH} policies build on one another (a cycle?)")
     parent = read(extends.value, extends) if is_path(extends.value) else shipped_layer(extends.value)
     if parent.label == layer.label:
-        raise error_at(extends, "extends", "a policy cannot extend itself")
+        raise error_at(extends, "builds_on", "a policy cannot build on itself")
     return [*_with_extends(parent, read, depth + 1), layer]
 
 

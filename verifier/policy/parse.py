@@ -2,8 +2,9 @@
 
 Values come back wrapped in :class:`Located` (file, line, column), so that every later message, and
 ``verifier policy show``, can say where a value was written. Rule ids, settings and options are checked
-against the rule registry. A file whose aliases expand past :data:`MAX_EXPANDED_NODES` values is refused
-before any value is built.
+against the rule registry. A key or value an older policy spelled otherwise (``extends``, ``overrides``,
+``selection.mode``, ``warn``, ``off``) is refused with the new spelling. A file whose aliases expand past
+:data:`MAX_EXPANDED_NODES` values is refused before any value is built.
 """
 
 from __future__ import annotations
@@ -17,7 +18,7 @@ import yaml
 
 from verifier.errors import PolicyError
 from verifier.policy.checks import option_check, rule_setting, shown
-from verifier.policy.schema import SCHEMA, Items, _RuleSection
+from verifier.policy.schema import RENAMED_KEYS, RENAMED_VALUES, SCHEMA, Items, PathMap, _RuleSection
 from verifier.rules import Rule
 from verifier.rules.catalog import load_all
 
@@ -124,6 +125,9 @@ def _mapping(node: yaml.MappingNode, schema: Mapping[str, Any], source: str, pre
         key = _key(key_node, source, prefix)
         dotted = f"{prefix}{key}"
         expected = schema.get(key)
+        if expected is None and dotted in RENAMED_KEYS:
+            new, example = RENAMED_KEYS[dotted]
+            raise _node_error(source, key_node, dotted, f"was renamed '{new}'; write {example}")
         if expected is None:
             raise _node_error(source, key_node, dotted, _unknown(key, schema))
         if key in result:
@@ -158,7 +162,13 @@ def _value(node: yaml.Node, expected: Any, source: str, dotted: str) -> Any:
         return _rules(node, source, dotted)
     if isinstance(expected, Items):
         return _items(node, expected, source, dotted)
+    if isinstance(expected, PathMap):
+        return _path_map(node, expected, source, dotted)
     value = _construct(node, source, dotted)
+    renamed = RENAMED_VALUES.get(dotted, {})
+    if isinstance(value, str) and value in renamed:
+        new = renamed[value]
+        raise _node_error(source, node, dotted, f"the value '{value}' was renamed '{new}'; write {new}")
     problem = expected(value)
     if problem:
         raise _node_error(source, node, dotted, problem)
@@ -192,6 +202,31 @@ def _items(node: yaml.Node, items: Items, source: str, dotted: str) -> list[dict
     return result
 
 
+def _path_map(node: yaml.Node, paths: PathMap, source: str, dotted: str) -> list[dict[str, Any]]:
+    """``paths:``: glob -> settings, in the order written; each entry as ``{"paths": [glob], ...settings}``."""
+    if not isinstance(node, yaml.MappingNode):
+        raise _node_error(
+            source, node, dotted, 'expected a mapping of path glob to settings, e.g. "legacy/**": {coverage: ...}'
+        )
+    result: list[dict[str, Any]] = []
+    seen: set[str] = set()
+    for key_node, value_node in node.value:
+        glob = _key(key_node, source, f"{dotted}.")
+        where = f"{dotted}.{glob}"
+        if not glob.strip():
+            raise _node_error(source, key_node, where, "expected a path glob, got an empty key")
+        if glob in seen:
+            raise _node_error(source, key_node, where, "given twice")
+        seen.add(glob)
+        if not isinstance(value_node, yaml.MappingNode):
+            raise _node_error(source, value_node, where, "expected a mapping of settings (coverage, rules)")
+        entry = _mapping(value_node, paths.schema, source, prefix=f"{where}.")
+        entry["paths"] = _locate([glob], key_node, source)
+        entry["_at"] = _locate(len(result), key_node, source)
+        result.append(entry)
+    return result
+
+
 def _check_waiver_rule(entry: Mapping[str, Any], key: str) -> None:
     rule_id = entry["rule"]
     registered = load_all().get(rule_id.value)
@@ -203,7 +238,7 @@ def _check_waiver_rule(entry: Mapping[str, Any], key: str) -> None:
 
 def _rules(node: yaml.Node, source: str, dotted: str) -> dict[str, Any]:
     if not isinstance(node, yaml.MappingNode):
-        raise _node_error(source, node, dotted, "expected a mapping of rule id to block, warn or off")
+        raise _node_error(source, node, dotted, "expected a mapping of rule id to block, advise or ignore")
     registry = load_all()
     settings: dict[str, Any] = {}
     for key_node, value_node in node.value:

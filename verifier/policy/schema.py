@@ -1,9 +1,11 @@
 """The policy format: every key a policy file may hold and the check of its value.
 
 A leaf is a :data:`~verifier.policy.checks.Check`; a dict is a section of keys; :class:`Items` is a list
-of mappings (overrides, waivers); :data:`RULES` marks a mapping of rule id to its setting and options,
-which the rule registry validates. Limits have upper bounds as well as lower ones: a policy asking for a
-year of wall time or a petabyte of memory is a typo, not a setting.
+of mappings (waivers); :class:`PathMap` a mapping of path glob to settings (``paths:``); :data:`RULES` marks
+a mapping of rule id to its setting and options, which the rule registry validates. :data:`RENAMED_KEYS`
+and :data:`RENAMED_VALUES` are the spellings an older policy used: each is refused naming the new one.
+Limits have upper bounds as well as lower ones: a policy asking for a year of wall time or a petabyte of
+memory is a typo, not a setting.
 """
 
 from __future__ import annotations
@@ -33,16 +35,16 @@ def shipped_policies() -> tuple[str, ...]:
 
 def may_change_policy(paths: Iterable[str]) -> bool:
     """True when a change of ``paths`` can change the repository's policy: verifier.yaml, or a YAML file it
-    may build on (``extends:``). A cheap test on names (no YAML is read), for the commit hook's fast path."""
+    may build on (``builds_on:``). A cheap test on names (no YAML is read), for the commit hook's fast path."""
     return any(path == POLICY_FILE or path.endswith((".yaml", ".yml")) for path in paths)
 
 
 def is_path(value: str) -> bool:
-    """An ``extends:`` value naming a file (rather than a shipped policy)."""
+    """A ``builds_on:`` value naming a file (rather than a shipped policy)."""
     return "/" in value or value.endswith((".yaml", ".yml"))
 
 
-def _extends(value: Any) -> str | None:
+def _builds_on(value: Any) -> str | None:
     if not isinstance(value, str) or not value.strip():
         return f"expected a shipped policy name or a path, got {checks.shown(value)}"
     if is_path(value) or value in shipped_policies():
@@ -59,6 +61,13 @@ class Items:
     required: tuple[str, ...] = ()
 
 
+@dataclass(frozen=True)
+class PathMap:
+    """A mapping of path glob to settings, each validated against ``schema`` (``paths: {"legacy/**": ...}``)."""
+
+    schema: Mapping[str, Any]
+
+
 class _RuleSection:
     """Marker: a mapping of rule id to a setting, or to ``{severity: ..., <option>: ...}``."""
 
@@ -66,7 +75,7 @@ class _RuleSection:
 RULES = _RuleSection()
 
 _PERCENT = checks.number(0, 100)
-OVERRIDE_SCHEMA: dict[str, Any] = {"paths": checks.glob_list, "coverage": {"threshold": _PERCENT}, "rules": RULES}
+PATH_SCHEMA: dict[str, Any] = {"coverage": {"threshold": _PERCENT}, "rules": RULES}
 WAIVER_SCHEMA: dict[str, Any] = {
     "rule": checks.string,
     "path": checks.text,
@@ -77,7 +86,7 @@ WAIVER_SCHEMA: dict[str, Any] = {
 
 SCHEMA: dict[str, Any] = {
     "version": checks.version,
-    "extends": _extends,
+    "builds_on": _builds_on,
     "coverage": {"threshold": _PERCENT, "exclude": checks.string_list},
     "tests": {"paths": checks.string_list, "args": checks.string_list, "python_path": checks.string_list},
     "limits": {
@@ -92,7 +101,7 @@ SCHEMA: dict[str, Any] = {
     },
     "sandbox": {"allow_process": checks.boolean},
     "selection": {
-        "mode": checks.one_of("smart", "all"),
+        "run": checks.one_of("observed", "all"),
         "differential": checks.boolean,
         "reruns": checks.number(0, 10),
         "allow_flaky": checks.boolean,
@@ -104,6 +113,15 @@ SCHEMA: dict[str, Any] = {
     },
     "audit": {"agent_identities": checks.string_list},
     "rules": RULES,
-    "overrides": Items(OVERRIDE_SCHEMA, required=("paths",)),
+    "paths": PathMap(PATH_SCHEMA),
     "waivers": Items(WAIVER_SCHEMA, required=tuple(WAIVER_SCHEMA)),
 }
+
+# dotted key an older policy used -> (the new key, how to write it)
+RENAMED_KEYS: dict[str, tuple[str, str]] = {
+    "extends": ("builds_on", "builds_on: strict"),
+    "overrides": ("paths", 'paths: {"legacy/**": {coverage: {threshold: 50}}} (one glob per key)'),
+    "selection.mode": ("selection.run", "selection: {run: observed} (or run: all)"),
+}
+# dotted key -> {old value: new value}
+RENAMED_VALUES: dict[str, dict[str, str]] = {"selection.run": {"smart": "observed"}}

@@ -34,8 +34,8 @@ def effective_values(layers: list[Layer]) -> list[Shown]:
         if section in merged:
             rows += _flatten(section, merged[section])
     rows += _rule_rows("rules", merged.get("rules", {}), with_defaults=True)
-    for index, entry in enumerate(merged.get("overrides", [])):
-        rows += _entry_rows(f"overrides[{index}]", entry)
+    for entry in merged.get("paths", []):
+        rows += _entry_rows(f"paths.{entry['paths'].value[0]}", {k: v for k, v in entry.items() if k != "paths"})
     for index, entry in enumerate(merged.get("waivers", [])):
         rows += _entry_rows(f"waivers[{index}]", entry)
     return rows

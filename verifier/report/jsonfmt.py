@@ -3,8 +3,8 @@
 FORMAT_VERSION history (one line per version):
   1: verdict, base, head, sandbox, machine_lines, tests, coverage, findings (plus commits, policy, notes);
      added since: waivers_used, coverage.separate (files a per-path override judges on their own);
-     selection (which tests ran and why), tests.flaky/flaky_ids/outcomes/differential, shard (a --shard
-     run's measurements, which verifier merge-reports joins); a tests.failing finding's details.pre_existing
+     selection (which tests ran and why), tests.flaky/flaky_ids/outcomes/differential, a --part run's
+     measurements (named "shard" up to version 2); a tests.failing finding's details.pre_existing
      and details.at_base (the test fails at base too).
   2: adds "mutants" (every mutant of the machine-written lines: path, line, status, original, mutated, tests,
      where original/mutated are the full text of the lines it changes), "mutation" (the counts and score) and
@@ -12,8 +12,10 @@ FORMAT_VERSION history (one line per version):
      added since: "finding_counts" (findings per rule, exact), the ``report.left-out`` finding (what the
      caps of verifier.report.bounds left out of the detail); tests.failed_ids, flaky_ids, outcomes and
      each class of tests.differential list at most bounds.MAX_LISTED_TESTS tests, tests.listed_left_out
-     and tests.differential_counts give the exact numbers (a --shard report's "shard" section keeps every
-     test: merge-reports needs them). Bytes of a name that are not UTF-8 are written as the text ``\\xNN``.
+     and tests.differential_counts give the exact numbers (a --part report's "part" section keeps every
+     test: join needs them). Bytes of a name that are not UTF-8 are written as the text ``\\xNN``.
+  3: the section of a ``check --part K/N`` run's measurements, which ``verifier join`` reads, is named "part"
+     (was "shard"), and so is selection.part (was selection.shard); such a run's "verdict" is "part" (exit 4).
 """
 
 from __future__ import annotations
@@ -27,7 +29,7 @@ from verifier.report.bounds import MAX_LISTED_TESTS, rule_counts, valid_text
 SUFFIX = "json"  # a report of this format written into a folder is report.json
 FOR_MACHINES = True  # tools read it: alone on stdout
 
-FORMAT_VERSION = 2
+FORMAT_VERSION = 3
 
 
 def as_dict(report: Report) -> dict[str, Any]:
@@ -104,7 +106,7 @@ def as_dict(report: Report) -> dict[str, Any]:
             {"test": o.tests[0] if o.tests else None, "path": o.mutant.path, "status": o.status}
             for o in (report.mutation.at_base if report.mutation else ())
         ],
-        **({"shard": _shard(report)} if report.selection and report.selection.shard and run else {}),
+        **({"part": _part(report)} if report.selection and report.selection.shard and run else {}),
     }
 
 
@@ -189,13 +191,13 @@ def _selection(report: Report) -> dict[str, Any] | None:
         "map": selection.map_status,
         "known_tests": selection.known_tests,
         "left_out": selection.left_out,
-        "shard": list(selection.shard) if selection.shard else None,
+        "part": list(selection.shard) if selection.shard else None,
         "selected": {key: list(reasons) for key, reasons in sorted(selection.reasons.items())},
     }
 
 
-def _shard(report: Report) -> dict[str, Any]:
-    """What verifier merge-reports needs to judge the shards as one run: every test's full outcome and the
+def _part(report: Report) -> dict[str, Any]:
+    """What verifier join needs to judge the parts as one run: every test's full outcome and the
     coverage measurements of the machine-written files."""
     run = report.run
     assert run is not None and report.selection is not None

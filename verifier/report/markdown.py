@@ -1,11 +1,13 @@
-"""The Markdown summary to post on a pull request: the verdict first, then a table of the machine-written
-files, then the findings with the code they point at; long parts (test output, long line lists, the
-commits) are folded into ``<details>`` blocks, which GitHub and GitLab both render collapsed.
+"""The Markdown summary to post on a pull request, in a layout of our own: a heading with the verdict word
+and the finding counts, one sentence on the change, a table of the findings per file, then each file's
+findings (with the code they point at) folded into a ``<details>`` block, open when it holds a blocking
+one; test output and the commits are folded too (GitHub and GitLab render ``<details>`` collapsed).
 """
 
 from __future__ import annotations
 
 import re
+from collections.abc import Sequence
 
 from verifier.models import Finding, Report
 from verifier.report.bounds import MAX_LISTED_TESTS, MAX_TEST_REPORTS, finding_count
@@ -16,20 +18,43 @@ SUFFIX = "md"  # a report of this format written into a folder is report.md
 FOR_MACHINES = True  # tools read it: alone on stdout
 
 _HEADLINES = {
-    "pass": "PASS: the machine-written change is verified",
-    "warn": "WARN: verified, with warnings",
-    "block": "BLOCK: the machine-written change does not meet the policy",
-    "error": "ERROR: the change could not be verified (this is not a pass)",
+    "pass": "the machine-written change is verified",
+    "warn": "verified, with advice to read",
+    "block": "the machine-written change does not meet the policy",
+    "error": "the change could not be verified (this is not a pass)",
+    "part": "this part of the tests ran; `verifier join` of every part's report gives the verdict",
 }
 _SHORT_LIST = 12  # line lists longer than this are folded
+_WHOLE_CHANGE = "(whole change)"
 
 
 def render(report: Report) -> str:
-    parts = [f"## verifier: {_HEADLINES[report.verdict]}", _summary(report)]
-    parts += [_file_table(report), _findings(report), _test_details(report), _commits(report)]
+    parts = [_heading(report), _summary(report), _file_table(report), _findings(report)]
+    parts += [_test_details(report), _commits(report)]
     parts += [f"> note: {_inline(note)}" for note in report.notes]
     # test output, code and file names reach a reader's terminal or editor too: no control character passes
     return printable("\n\n".join(part for part in parts if part) + "\n")
+
+
+def _heading(report: Report) -> str:
+    total = finding_count(report)
+    named = _tally(report.findings)
+    tally = counted(total, "finding") + (f": {named}" if named else "") if total else "no findings"
+    return f"## {report.verdict.upper()} · verifier · {tally}"
+
+
+def _tally(findings: Sequence[Finding]) -> str:
+    """``2 blocking, 1 waived``: the non-zero counts."""
+    counts = zip(("blocking", "advisory", "waived"), _counts(findings), strict=True)
+    return ", ".join(f"{n} {word}" for word, n in counts if n)
+
+
+def _counts(findings: Sequence[Finding]) -> tuple[int, int, int]:
+    """(blocking, advisory, waived) among ``findings``; errors count as blocking, plain info as neither."""
+    waived = sum(1 for f in findings if waiver_of(f))
+    blocking = sum(1 for f in findings if f.severity in ("block", "error"))
+    advisory = sum(1 for f in findings if f.severity == "warn")
+    return blocking, advisory, waived
 
 
 def _summary(report: Report) -> str:
@@ -37,24 +62,24 @@ def _summary(report: Report) -> str:
     base = change.base[:12] if change.base else "the empty tree"
     head = change.head[:12] if change.head != "index" else "the index"
     agents = ", ".join(f"`{agent}`" for agent in report.provenance.agents) or "none"
+    lines = report.provenance.machine_line_count
     rows = [
-        f"Change `{_inline(change.spec)}` ({base} → {head}): {counted(len(change.commits), 'commit')}, "
-        f"agents {agents}, "
-        f"{counted(report.provenance.machine_line_count, 'machine-written line')}."
+        f"**{_HEADLINES[report.verdict].capitalize()}.** Change `{_inline(change.spec)}` ({base} → {head}), "
+        f"{counted(len(change.commits), 'commit')} by {agents}, "
+        f"{counted(lines, 'machine-written line')}; policy {_inline(report.policy_source)}."
     ]
     if run is not None:
         rows.append(
-            f"Tests in the `{run.backend}` sandbox: {len(run.tests)} run, {run.count('passed')} passed, "
+            f"Tests (`{run.backend}` sandbox, {run.status}, {run.wall_seconds:.1f}s): {run.count('passed')} passed, "
             f"{run.count('failed')} failed, {counted(run.count('error'), 'error')}, {run.count('skipped')} skipped "
-            f"({run.status}, {run.wall_seconds:.1f}s)."
+            f"of {len(run.tests)}."
         )
     if cov is not None and cov.percent is not None:
         rows.append(
-            f"Coverage of the executable machine-written lines: {cov.covered}/{cov.executable} = "
-            f"{cov.percent:.1f}% (the policy asks for {cov.threshold:g}%)."
+            f"The tests ran {cov.covered} of the {cov.executable} executable machine-written lines "
+            f"({cov.percent:.1f}%; the policy wants {cov.threshold:g}% or more)."
         )
     rows += _mutation_summary(report)
-    rows.append(f"Policy: {_inline(report.policy_source)}.")
     return "\n".join(rows)
 
 
@@ -72,18 +97,38 @@ def _mutation_summary(report: Report) -> list[str]:
 
 
 def _file_table(report: Report) -> str:
+    """One row per machine-written file (and per other file with a finding): its findings and its lines."""
     machine = report.provenance.machine_lines
-    if not machine:
+    if not machine and not report.findings:
         return "No machine-written lines in this change: nothing to verify."
     uncovered = report.coverage.uncovered if report.coverage else {}
-    measured = report.run.coverage if report.run else {}
-    rows = ["| File | Machine-written lines | Executed by the tests | Uncovered (counted) |", "|---|---:|---:|---|"]
-    for path, lines in machine.items():
-        executed = measured.get(path)
-        ran = str(len(set(lines) & executed.executed)) if executed is not None else "–"
-        missing = uncovered.get(path, ())
-        rows.append(f"| `{_cell(path)}` | {len(lines)} | {ran} | {_line_list(missing) if missing else '0'} |")
+    by_file = _by_file(report.findings)
+    rows = [
+        "| File | Blocking | Advisory | Waived | Machine-written lines | Not run by any test |",
+        "|---|---:|---:|---:|---:|---|",
+    ]
+    for path in _file_order(report, by_file):
+        blocking, advisory, waived = _counts(by_file.get(path, []))
+        missing = uncovered.get(path, ()) if path != _WHOLE_CHANGE else ()
+        lines = str(len(machine[path])) if path in machine else "–"
+        name = path if path == _WHOLE_CHANGE else f"`{_cell(path)}`"
+        rows.append(
+            f"| {name} | {blocking} | {advisory} | {waived} | {lines} | {_line_list(missing) if missing else '–'} |"
+        )
     return "\n".join(rows)
+
+
+def _file_order(report: Report, by_file: dict[str, list[Finding]]) -> list[str]:
+    """The whole change's findings first, then the files with the most blocking findings, then by name."""
+    paths = {*report.provenance.machine_lines, *by_file}
+    return sorted(paths, key=lambda path: (path != _WHOLE_CHANGE, -_counts(by_file.get(path, []))[0], path))
+
+
+def _by_file(findings: Sequence[Finding]) -> dict[str, list[Finding]]:
+    grouped: dict[str, list[Finding]] = {}
+    for finding in findings:
+        grouped.setdefault(finding.path or _WHOLE_CHANGE, []).append(finding)
+    return grouped
 
 
 def _line_list(lines: tuple[int, ...]) -> str:
@@ -94,26 +139,24 @@ def _line_list(lines: tuple[int, ...]) -> str:
 
 
 def _findings(report: Report) -> str:
-    shown = [f for f in report.findings if f.rule != "coverage.new-lines" or f.line is None]
     if not report.findings:
-        return "### Findings\n\nNone."
+        return ""
     rows = [f"### Findings ({finding_count(report)})"]
-    rows += [_finding(f, report) for f in shown]
-    uncovered = [f for f in report.findings if f.rule == "coverage.new-lines" and f.line is not None]
-    if uncovered:
-        rows.append(
-            _details(
-                f"{counted(len(uncovered), 'uncovered machine-written line')}, with their code",
-                "\n\n".join(_finding(f, report) for f in uncovered),
-            )
-        )
+    by_file = _by_file(report.findings)
+    for path in _file_order(report, by_file):
+        findings = by_file.get(path)
+        if not findings:
+            continue
+        summary = f"{path}: {_tally(findings) or f'{len(findings)} to read'}"
+        body = "\n\n".join(_finding(f, report) for f in findings)
+        rows.append(_details(summary, body, open_=_counts(findings)[0] > 0))
     return "\n\n".join(rows)
 
 
 def _finding(finding: Finding, report: Report) -> str:
-    where = f" `{_inline(finding.path)}" + (f":{finding.line}" if finding.line else "") + "`" if finding.path else ""
+    where = f" line {finding.line}" if finding.path and finding.line else ""
     waiver = waiver_of(finding)
-    label = "WAIVED" if waiver else finding.severity.upper()
+    label = "WAIVED" if waiver else {"warn": "ADVISE"}.get(finding.severity, finding.severity.upper())
     text = f"- **{label}** `{finding.rule}`{where}: {_inline(finding.message)}"
     if waiver:
         was = finding.details.get("waived_severity", "block")
@@ -184,8 +227,9 @@ def _commits(report: Report) -> str:
 # -- Markdown helpers -----------------------------------------------------------------------------
 
 
-def _details(summary: str, body: str) -> str:
-    return f"<details><summary>{_html(summary)}</summary>\n\n{body}\n\n</details>"
+def _details(summary: str, body: str, open_: bool = False) -> str:
+    opening = "<details open>" if open_ else "<details>"
+    return f"{opening}<summary>{_html(summary)}</summary>\n\n{body}\n\n</details>"
 
 
 def _fence(text: str) -> str:
@@ -212,4 +256,4 @@ def _html(text: str) -> str:
 
 
 def render_error(message: str, exit_code: int) -> str:
-    return printable(f"## verifier: {_HEADLINES['error']}\n\n{_inline(message)} (exit code {exit_code})\n")
+    return printable(f"## ERROR · verifier · {_HEADLINES['error']}\n\n{_inline(message)} (exit code {exit_code})\n")

@@ -154,7 +154,7 @@ def check_entry(report: Report, commit: str, how: str, checked_at: str | None = 
 
 
 def skipped_entry(how: str, reason: str, checked_at: str | None = None) -> dict[str, Any]:
-    """The entry of a check that was asked for and did not run (``VERIFIER_SKIP``, ``--no-verify``)."""
+    """The entry of a check that was asked for and did not run (``VERIFIER_BYPASS``, ``--no-verify``)."""
     from verifier import __version__
 
     return {

@@ -25,7 +25,7 @@ SARIF_VERSION = "2.1.0"
 SRCROOT = "SRCROOT"
 
 # Our severities and settings as SARIF levels (SARIF 2.1.0, section 3.27.10: none, note, warning, error).
-LEVELS = {"block": "error", "error": "error", "warn": "warning", "info": "note", "off": "none"}
+LEVELS = {"block": "error", "error": "error", "warn": "warning", "advise": "warning", "info": "note", "ignore": "none"}
 
 
 def as_dict(report: Report) -> dict[str, Any]:
@@ -83,7 +83,7 @@ def _rule(rule: Any) -> dict[str, Any]:
         "shortDescription": {"text": rule.summary},
         "fullDescription": {"text": rule.explanation or rule.summary},
         "help": {"text": help_text, "markdown": help_markdown or rule.summary},
-        "defaultConfiguration": {"level": LEVELS[rule.default], "enabled": rule.default != "off"},
+        "defaultConfiguration": {"level": LEVELS[rule.default], "enabled": rule.default != "ignore"},
         "properties": {
             "stage": rule.stage,
             "fixed": rule.fixed,

@@ -1,11 +1,11 @@
-"""Joining the reports of ``verifier check --shard K/N`` into the verdict of one run.
+"""Joining the reports of ``verifier check --part K/N`` into the verdict of one run.
 
-Each shard's JSON report carries what it ran (every test's outcome, the coverage measurements of the
-machine-written files, the base outcomes of a differential run) in its ``shard`` section. The merge
-checks that the reports belong together (same change, same selection, each shard of N exactly once),
-joins the runs (tests side by side; a line is executed when any shard executed it) and judges the
+Each part's JSON report carries what it ran (every test's outcome, the coverage measurements of the
+machine-written files, the base outcomes of a differential run) in its ``part`` section. The join
+checks that the reports belong together (same change, same selection, each part of N exactly once),
+joins the runs (tests side by side; a line is executed when any part executed it) and judges the
 joined run with the gate's own stages, re-read from the repository: the verdict is the one a single run
-of all the selected tests would have given. A shard that did not complete makes the joined run
+of all the selected tests would have given. A part that did not complete makes the joined run
 incomplete, as it would have been.
 """
 
@@ -23,8 +23,8 @@ from verifier.words import counted
 _STATUS_ORDER = ("timeout", "crashed", "collection-error", "harness-error", "no-tests", "completed")
 
 
-def merge_reports(repo: str | Path, paths: Sequence[Path], sandbox: str = "auto") -> Report:
-    """The report of the change the shard reports at ``paths`` checked, judged as one run."""
+def join_reports(repo: str | Path, paths: Sequence[Path], sandbox: str = "auto") -> Report:
+    """The report of the change the part reports at ``paths`` checked, judged as one run."""
     from verifier.change.stage import RevisionSpec
     from verifier.mutation.join import joined_mutation
     from verifier.pipeline import Options, verify
@@ -32,10 +32,10 @@ def merge_reports(repo: str | Path, paths: Sequence[Path], sandbox: str = "auto"
     reports = [_read(path) for path in paths]
     first = _check_together(reports, paths)
     if not first.get("base"):
-        raise UsageError("the shards checked a change without a base revision", hint="run that check unsharded")
+        raise UsageError("the parts checked a change without a base revision", hint="run that check without --part")
     selection, run = joined_run(reports)
     spec = RevisionSpec(text=f"{first['base']}..{first['head']}")
-    mutation = joined_mutation(reports)  # each shard ran the mutants against its share of the tests
+    mutation = joined_mutation(reports)  # each part ran the mutants against its share of the tests
     return verify(repo, spec, Options(sandbox=sandbox, premade=(selection, run), premade_mutation=mutation))
 
 
@@ -46,63 +46,68 @@ def _read(path: Path) -> dict[str, Any]:
         raise UsageError(f"cannot read the report {path}: {error.strerror}") from error
     except ValueError as error:
         raise UsageError(f"{path} is not a JSON report: {error}") from error
-    if not isinstance(data, dict) or not isinstance(data.get("shard"), dict):
+    if isinstance(data, dict) and isinstance(data.get("shard"), dict):
         raise UsageError(
-            f"{path} is not the JSON report of a sharded check",
-            hint="write each shard's report with: verifier check --shard K/N --format json --output F",
+            f"{path} was written with the old option --shard, which was renamed --part",
+            hint="write each part's report again with: verifier check --part K/N --format json --output F",
+        )
+    if not isinstance(data, dict) or not isinstance(data.get("part"), dict):
+        raise UsageError(
+            f"{path} is not the JSON report of a check with --part",
+            hint="write each part's report with: verifier check --part K/N --format json --output F",
         )
     return data
 
 
 def _check_together(reports: list[dict[str, Any]], paths: Sequence[Path]) -> dict[str, Any]:
     first = reports[0]
-    total = first["shard"]["total"]
+    total = first["part"]["total"]
     seen: dict[int, Path] = {}
     for report, path in zip(reports, paths, strict=True):
         for key in ("base", "head"):
             if report.get(key) != first.get(key):
                 raise UsageError(f"{path} checked another change ({key} {report.get(key)} vs {first.get(key)})")
-        if report["shard"]["total"] != total or report["shard"]["selection"] != first["shard"]["selection"]:
+        if report["part"]["total"] != total or report["part"]["selection"] != first["part"]["selection"]:
             raise UsageError(
                 f"{path} comes from another split of the tests than {paths[0]}",
-                hint="all shards must run with the same policy, cache state and --shard N",
+                hint="all parts must run with the same policy, cache state and --part N",
             )
-        index = report["shard"]["index"]
+        index = report["part"]["index"]
         if index in seen:
-            raise UsageError(f"shard {index}/{total} is given twice ({seen[index]} and {path})")
+            raise UsageError(f"part {index}/{total} is given twice ({seen[index]} and {path})")
         seen[index] = path
     for index in range(1, total + 1):
         if index not in seen:
-            raise UsageError(f"shard {index}/{total} is missing", hint=f"pass the reports of all {total} shards")
+            raise UsageError(f"part {index}/{total} is missing", hint=f"pass the reports of all {total} parts")
     return first
 
 
 def joined_run(reports: list[dict[str, Any]]) -> tuple[Selection, RunResult]:
-    """The selection the shards shared and the run they made together."""
-    shards = [report["shard"] for report in reports]
-    tests = tuple(_outcome(test) for shard in shards for test in shard["tests"])
-    baselines = [shard.get("baseline") for shard in shards]
+    """The selection the parts shared and the run they made together."""
+    parts = [report["part"] for report in reports]
+    tests = tuple(_outcome(test) for part in parts for test in part["tests"])
+    baselines = [part.get("baseline") for part in parts]
     baseline = None if any(b is None for b in baselines) else {k: v for b in baselines for k, v in b.items()}
-    status: RunStatus = min((shard["status"] for shard in shards), key=_STATUS_ORDER.index)
+    status: RunStatus = min((part["status"] for part in parts), key=_STATUS_ORDER.index)
     if status == "no-tests" and tests:
-        status = "completed"  # an empty shard; the others ran the tests
+        status = "completed"  # an empty part; the others ran the tests
     run = RunResult(
         status=status,
         backend=reports[0].get("sandbox") or "unknown",
         isolation=reports[0].get("isolation") or "",
         pytest_exit=None,
         tests=tests,
-        coverage=_joined_coverage([shard["coverage"] for shard in shards]),
-        collection_errors=tuple(e for shard in shards for e in shard.get("collection_errors", [])),
+        coverage=_joined_coverage([part["coverage"] for part in parts]),
+        collection_errors=tuple(e for part in parts for e in part.get("collection_errors", [])),
         wall_seconds=max((report.get("run") or {}).get("wall_seconds", 0.0) for report in reports),
         baseline=baseline,
     )
-    chosen = shards[0]["selection"]
+    chosen = parts[0]["selection"]
     selection = Selection(
         whole_suite=chosen["whole_suite"],
         node_ids=tuple(chosen["node_ids"]),
         files=tuple(chosen["files"]),
-        reason=f"{chosen['reason']} (joined from {counted(len(shards), 'shard')})",
+        reason=f"{chosen['reason']} (joined from {counted(len(parts), 'part')})",
         reasons=reports[0].get("selection", {}).get("selected", {}),
         map_status=reports[0].get("selection", {}).get("map", "not used"),
     )
@@ -121,7 +126,7 @@ def _outcome(data: Mapping[str, Any]) -> TestOutcome:
 
 
 def _joined_coverage(parts: list[Mapping[str, Mapping[str, list[int]]]]) -> dict[str, FileCoverage]:
-    """A statement is executed when any shard executed it; missing when every shard that measured it missed it."""
+    """A statement is executed when any part executed it; missing when every part that measured it missed it."""
     joined: dict[str, FileCoverage] = {}
     for path in sorted({path for part in parts for path in part}):
         measured = [part[path] for part in parts if path in part]

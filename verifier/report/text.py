@@ -28,12 +28,13 @@ Paint = Callable[[str, str], str]  # (style key, text) -> the text, coloured or 
 SUFFIX = "txt"  # a report of this format written into a folder is report.txt
 FOR_MACHINES = False  # the view for people: on stderr when a machine format takes stdout
 
-_COLOURS = {"pass": "32", "warn": "33", "block": "31", "error": "35", "info": "36"}
+_COLOURS = {"pass": "32", "warn": "33", "block": "31", "error": "35", "info": "36", "part": "36"}
 _LABELS = {
     "pass": "PASS  the machine-written change is verified",
     "warn": "WARN  verified, with warnings",
     "block": "BLOCK the machine-written change does not meet the policy",
     "error": "ERROR the change could not be verified (this is not a pass)",
+    "part": "PART  this part of the tests ran; no verdict yet: 'verifier join' of every part's JSON report gives it",
 }
 
 
@@ -137,13 +138,13 @@ def _selection(report: Report) -> list[str]:
     selection = report.selection
     if selection is None:
         return []
-    shard = f", shard {selection.shard[0]}/{selection.shard[1]}" if selection.shard else ""
+    part = f", part {selection.shard[0]}/{selection.shard[1]}" if selection.shard else ""
     if selection.whole_suite:
-        return [f"selection: every test ({selection.reason}; map: {selection.map_status}{shard})"]
+        return [f"selection: every test ({selection.reason}; map: {selection.map_status}{part})"]
     rows = [
         f"selection: {selection.reason}; "
         f"{selection.left_out} of {counted(selection.known_tests, 'known test')} left out "
-        f"(map: {selection.map_status}{shard})"
+        f"(map: {selection.map_status}{part})"
     ]
     groups = _reason_groups(selection.reasons)
     for (reason, is_file), count in groups[:MAX_REASON_GROUPS]:

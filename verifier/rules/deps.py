@@ -83,7 +83,7 @@ def _line_of(text: str, name: str) -> int | None:
 
 @rule(
     RULE_ID,
-    default="warn",
+    default="advise",
     summary="new dependencies declared by machine-written lines",
     stage="static",
     options={"requirement_files": list(DEFAULT_REQUIREMENT_FILES)},

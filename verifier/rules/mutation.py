@@ -116,7 +116,7 @@ AT_BASE_ID = "tests.passes-at-base"
 
 @rule(
     AT_BASE_ID,
-    default="warn",
+    default="advise",
     summary="a new or changed machine-written test passes with the code as it was at base",
     stage="mutation",
     options={"inform_only": True},

@@ -69,7 +69,7 @@ DEFAULT_PROTECTED: tuple[str, ...] = (
 )
 def protected_paths(context: RuleContext) -> Iterator[Finding]:
     """Some files decide how every other change is built, checked, deployed or migrated: CI
-    configuration, this gate's policy (verifier.yaml, every file it extends, policies/), git hooks,
+    configuration, this gate's policy (verifier.yaml, every file it builds on, policies/), git hooks,
     deployment files (Dockerfile, deploy/, k8s/, Terraform), lock files and database migrations. A model
     must not change them: any machine-written line added or removed there, or a machine commit adding,
     deleting or renaming such a file, is reported. Have a human make (or re-make) the change in a commit

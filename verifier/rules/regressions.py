@@ -18,14 +18,14 @@ def broken_tests(context: RuleContext) -> Iterator[Finding]:
     ``selection.differential: true``, the selected tests also run at the base revision, and this rule
     blocks only the failures the change is answerable for, a test that passed at base and fails at head
     (broken) or a new test that fails; a test that already failed at base (still failing) is not held
-    against the change. Set ``tests.failing: off`` to block regressions only. Without a differential run
+    against the change. Set ``tests.failing: ignore`` to block regressions only. Without a differential run
     this rule stays silent while ``tests.failing`` is on, and otherwise counts every failure (no failure
     can be shown to be old)."""
     run = context.run
     if run is None:
         return
     differential = run.baseline is not None and context.policy.selection.differential
-    if not differential and context.policy.setting("tests.failing", "block") != "off":
+    if not differential and context.policy.setting("tests.failing", "block") != "ignore":
         return  # tests.failing reports the failures (with the base outcomes of a failing run, when known)
     for test in regressions(run.tests, run.baseline):
         kind = classify(run.baseline.get(test.node_id), test.outcome) if run.baseline is not None else "unknown"
@@ -43,7 +43,7 @@ def broken_tests(context: RuleContext) -> Iterator[Finding]:
         )
 
 
-@rule("tests.flaky", default="warn", summary="a test failed, then passed when run again", stage="dynamic")
+@rule("tests.flaky", default="advise", summary="a test failed, then passed when run again", stage="dynamic")
 def flaky_tests(context: RuleContext) -> Iterator[Finding]:
     """A failing test runs again up to ``selection.reruns`` times before it counts as failing. One that
     passes on a re-run is flaky: it does not block as a failure, and it is not hidden either; this rule

@@ -14,7 +14,7 @@ RULE_ID = "patch.size"
 
 @rule(
     RULE_ID,
-    default="warn",
+    default="advise",
     summary="more machine-written lines in one change than the policy allows",
     stage="static",
     options={"max_lines": 1000, "exclude": []},

@@ -104,8 +104,8 @@ def select_tests(
     settings = policy.selection
     if all_tests:
         return whole_suite("--all-tests asks for every test", shard), None
-    if settings.mode == "all":
-        return whole_suite("the policy's selection.mode is 'all'", shard), None
+    if settings.run == "all":
+        return whole_suite("the policy's selection.run is 'all'", shard), None
     if change.base is None:
         return whole_suite("the change has no base revision to map", shard), None
     trigger = whole_suite_trigger(change, policy)

@@ -1,7 +1,8 @@
 """The decision: judged findings become pass, warn, block or error, and the verdict an exit code.
 
 A block finding blocks. Otherwise an error (the gate could not verify) makes the verdict ``error``,
-which never counts as a pass. Warnings make ``warn``; anything else passes.
+which never counts as a pass. Warnings make ``warn``; anything else passes. One part of a split run
+ends with ``part`` (:func:`decide_part`).
 """
 
 from __future__ import annotations
@@ -16,6 +17,7 @@ EXIT_CODES: dict[Verdict, ExitCode] = {
     "warn": ExitCode.PASS,
     "block": ExitCode.BLOCK,
     "error": ExitCode.UNVERIFIED,
+    "part": ExitCode.PART_DONE,
 }
 _BY_WEIGHT: tuple[tuple[str, Verdict], ...] = (("block", "block"), ("error", "error"), ("warn", "warn"))
 
@@ -26,6 +28,14 @@ def decide(findings: Iterable[Finding]) -> Verdict:
         if severity in severities:
             return verdict
     return "pass"
+
+
+def decide_part(findings: Iterable[Finding]) -> Verdict:
+    """The outcome of one part of a split run (``check --part K/N``): coverage, mutants and the other
+    findings of the run are judged over every part's tests, so a part has no verdict of its own (``part``)
+    unless it could not run its share (``error``): ``verifier join`` of all the parts gives the verdict."""
+    verdict = decide(findings)
+    return "error" if verdict == "error" else "part"
 
 
 def exit_code(verdict: Verdict) -> ExitCode:

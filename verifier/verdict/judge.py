@@ -13,7 +13,7 @@ from __future__ import annotations
 from collections.abc import Iterable
 from dataclasses import replace
 
-from verifier.models import Finding, Policy, RuleSetting
+from verifier.models import Finding, Policy, RuleSetting, Severity
 from verifier.rules import Rule, RuleContext
 from verifier.rules.catalog import load_all, run_rules
 from verifier.verdict.settings import enabled_anywhere, settings_for_path
@@ -54,12 +54,13 @@ def judge_finding(policy: Policy, rule_id: str, default: RuleSetting, fixed: boo
     if finding.severity in ("error", "info"):
         return finding
     setting = "block" if fixed else settings_for_path(policy, finding.path).setting(rule_id, default)
-    if setting == "off":
+    if setting == "ignore":
         return None
+    severity: Severity = "block" if setting == "block" else "warn"  # advise: the finding warns
     waiver = None if fixed else waiver_for(policy, finding)
     if waiver is None:
-        return _lapsed(policy, replace(finding, severity=setting))
-    details = {**finding.details, "waived_by": waiver_record(waiver), "waived_severity": setting}
+        return _lapsed(policy, replace(finding, severity=severity))
+    details = {**finding.details, "waived_by": waiver_record(waiver), "waived_severity": severity}
     return replace(finding, severity="info", details=details)
 
 

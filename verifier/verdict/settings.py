@@ -46,4 +46,4 @@ def settings_for_path(policy: Policy, path: str | None) -> PathSettings:
 def enabled_anywhere(policy: Policy, rule_id: str, default: RuleSetting) -> bool:
     """False only when the rule is off for the policy and for every override (so it need not run)."""
     settings = [policy.setting(rule_id, default), *(o.rules[rule_id] for o in policy.overrides if rule_id in o.rules)]
-    return any(setting != "off" for setting in settings)
+    return any(setting != "ignore" for setting in settings)
