@@ -39,9 +39,7 @@ from verifier.verdict.waivers import waived_by, waivers_used
 
 if TYPE_CHECKING:
     from verifier.sandbox import Backend
-
-if TYPE_CHECKING:
-    from verifier.sandbox import Backend
+    from verifier.selection.impactmap import ImpactMap
 
 Progress = Callable[[str], None]
 
@@ -221,7 +219,21 @@ def _select_and_run(check: CheckContext) -> tuple[Selection, RunResult]:
         from verifier.testrun.differential import with_baseline
 
         run = with_baseline(check.git, check.change, check.policy, selection, run, backend, impact, check.say)
-    return selection, run
+    return selection, _census(check, selection, run, backend, impact)
+
+
+def _census(
+    check: CheckContext, selection: Selection, run: RunResult, backend: Backend, impact: ImpactMap | None
+) -> RunResult:
+    """The test census (the base tests the head run should have run again), unless its rule is off or the
+    run is one shard of the selection (the other shards run the rest)."""
+    from verifier.rules.census import RULE_ID
+
+    if selection.shard is not None or not enabled_anywhere(check.policy, RULE_ID, "block"):
+        return run
+    from verifier.testrun.census import with_census
+
+    return with_census(check.git, check.change, selection, run, check.policy, backend, impact, check.say)
 
 
 def _fails(run: RunResult) -> bool:
