@@ -127,3 +127,99 @@ def _defined(source: str | None, rest: str) -> bool | str:
     if not same_name or not same_name[0].uncollected:
         return False  # deleted, or moved to a test that is still collected (its new id runs at head)
     return f"now {same_name[0].qualname}, {same_name[0].uncollected}"
+
+
+REWRITTEN_ID = "tests.rewritten"
+
+
+@rule(
+    REWRITTEN_ID,
+    default="block",
+    summary="a test's base version fails against the head code: its expectation was rewritten",
+    stage="dynamic",
+)
+def rewritten_tests(context: RuleContext) -> Iterator[Finding]:
+    """The base version of every existing test file a machine-written commit modifies is run against the
+    head code. A test that passed at base and whose base version fails at head had its expectation
+    rewritten to fit the change (a flipped assertion, an expected value changed, in whatever syntax): the
+    old test says the behaviour changed. The finding names the test, the failure and the statements of the
+    test that changed. Restore the expectation and fix the code; or, when the behaviour change is wanted, a
+    human approves it with a waiver of this rule on the test file, with a reason."""
+    run = context.run
+    old = None if run is None else run.old_tests
+    if run is None or old is None:
+        return
+    if old.status not in ("completed", "collection-error"):
+        why = "; ".join(old.problems[:3]) or old.status
+        yield Finding(REWRITTEN_ID, "error", f"cannot verify that the base tests still pass at head: {why}")
+        return
+    back = {f.path: f.old_path or f.path for f in context.change.files}
+    census = run.census or {}
+    for test in old.tests:
+        if test.outcome in ("failed", "error"):
+            yield from _rewritten(context, back, census, test.node_id, _gist(test.message))
+    for error in old.collection_errors:
+        path, _, message = error.partition(": ")
+        base_path = back.get(path, path)
+        hidden = [n for n, o in sorted(census.items()) if n.split("::", 1)[0] == base_path and o in PASSING]
+        for base_id in hidden or [path]:
+            yield from _rewritten(context, back, census, f"{path}::{base_id.partition('::')[2]}", message)
+
+
+PASSING = ("passed", "flaky")
+
+
+def _rewritten(
+    context: RuleContext, back: Mapping[str, str], census: Mapping[str, str], node_id: str, failure: str
+) -> Iterator[Finding]:
+    path, _, rest = node_id.partition("::")
+    base_path = back.get(path, path)
+    at_base = census.get(f"{base_path}::{rest}") if rest else None
+    if at_base is not None and at_base not in PASSING:
+        return  # it failed (or skipped) at base too: not this change's doing
+    changed = _changed_statements(context.base_sources.get(base_path), context.head_sources.get(path), rest)
+    shown = f"; the test changed: {changed[0]} -> {changed[1]}" if changed else ""
+    yield Finding(
+        REWRITTEN_ID,
+        "block",
+        f"{node_id or path}: its base version fails against the head code ({failure}){shown}",
+        path=path,
+        line=None,
+        details={"test": node_id, "failure": failure, **({"base": changed[0], "head": changed[1]} if changed else {})},
+    )
+
+
+def _changed_statements(base: str | None, head: str | None, rest: str) -> tuple[str, str] | None:
+    """The first statement of the test's base version that its head version no longer has, and what the
+    head version has instead (``(deleted)`` when the test is gone); assertions first."""
+    before = _statements(base, rest)
+    if before is None:
+        return None
+    now = _statements(head, rest) or []
+    gone = [s for s in before if s not in now]
+    fresh = [s for s in now if s not in before]
+    if not gone:
+        return None
+    first_gone = next((s for s in gone if s.startswith(("assert", "self.assert"))), gone[0])
+    first_fresh = next((s for s in fresh if s.startswith(("assert", "self.assert"))), fresh[0] if fresh else "")
+    return f"`{first_gone}`", f"`{first_fresh}`" if first_fresh else "(removed)"
+
+
+def _statements(source: str | None, rest: str) -> list[str] | None:
+    """The simple statements of one test function, as source text; None when it is not there."""
+    if source is None or not rest:
+        return None
+    try:
+        tree = ast.parse(source)
+    except (SyntaxError, ValueError):
+        return None
+    function = read_module(tree).functions.get(".".join(rest.split("[", 1)[0].split("::")))
+    if function is None:
+        return None
+    compound = (ast.If, ast.For, ast.While, ast.With, ast.Try, ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef)
+    return [
+        ast.unparse(node)
+        for statement in function.node.body
+        for node in ast.walk(statement)
+        if isinstance(node, ast.stmt) and not isinstance(node, compound)
+    ]
