@@ -31,6 +31,11 @@ TEST_NATIVE = (
     "def test_speed():\n    assert native.speed() == 3\n"
 )
 
+TEST_ZONES = (
+    "import pytest\n\nfrom parcelkit.zones import ZONES\n\n\n"
+    "@pytest.mark.parametrize('zone', ZONES)\ndef test_zone_is_named(zone):\n    assert zone.isalpha()\n"
+)
+
 
 def start(repo: ScratchRepo, mode: str = "all") -> None:
     repo.commit(
@@ -42,6 +47,8 @@ def start(repo: ScratchRepo, mode: str = "all") -> None:
             "parcelkit/native.py": NATIVE,
             "tests/test_rates.py": TEST_RATES,
             "tests/test_native.py": TEST_NATIVE,
+            "parcelkit/zones.py": "ZONES = ('north', 'south')\n",
+            "tests/test_zones.py": TEST_ZONES,
         },
     )
 
@@ -89,6 +96,44 @@ ATTACKS = {
         ("tests/test_rates.py",),
         ["tests/test_rates.py::TestRates::test_zero", "tests/test_rates.py::test_rate_doubles"],
         "renamed to tests/rates_checks.py",
+    ),
+    "skip raised from the test body": (
+        {
+            "tests/test_rates.py": TEST_RATES.replace(
+                "    assert rate(2) == 4\n", "    pytest.skip('slow')\n    assert rate(2) == 4\n"
+            ).replace("from parcelkit", "import pytest\n\nfrom parcelkit")
+        },
+        (),
+        ["tests/test_rates.py::test_rate_doubles"],
+        "skipped at head: ",
+    ),
+    "autouse fixture that skips": (
+        {
+            "tests/conftest.py": "import pytest\n\n\n@pytest.fixture(autouse=True)\ndef quiet():\n"
+            "    pytest.skip('quiet hours')\n"
+        },
+        (),
+        [
+            "tests/test_native.py::test_speed",
+            "tests/test_rates.py::TestRates::test_zero",
+            "tests/test_rates.py::test_rate_doubles",
+            "tests/test_zones.py::test_zone_is_named[north]",
+            "tests/test_zones.py::test_zone_is_named[south]",
+        ],
+        "skipped at head: ",
+    ),
+    "class renamed away from Test*": (
+        {"tests/test_rates.py": TEST_RATES.replace("class TestRates:", "class RateChecks:")},
+        (),
+        ["tests/test_rates.py::TestRates::test_zero"],
+        "now RateChecks.test_zero, class RateChecks does not start with 'Test'",
+    ),
+    # a change to code only: the untouched human test's parametrize list, read from the code, loses a case
+    "code change shrinks a parametrize list": (
+        {"parcelkit/zones.py": "ZONES = ('north',)\n"},
+        (),
+        ["tests/test_zones.py::test_zone_is_named[south]"],
+        "not collected at head",
     ),
     # a change to code only: the untouched human test file's module-level importorskip now skips it
     "code change trips a module-level importorskip": (
