@@ -201,3 +201,15 @@ def test_a_pure_rename_outside_the_collection_pattern_blocks(repo: ScratchRepo) 
     assert out.report is not None, out.stderr
     assert any("renamed" in f["message"] for f in out.report["findings"] if f["rule"] == "tests.weakened")
     assert out.code == 1
+
+
+def test_a_census_that_cannot_be_taken_fails_closed(repo: ScratchRepo) -> None:
+    # the base's package ends the interpreter on import: no base outcome can be read, so the gate cannot
+    # show that no test was lost (exit 3), though the head run is clean
+    start(repo)
+    repo.commit("Stop the suite", {"parcelkit/__init__.py": "import os\n\nos._exit(0)\n"})
+    sha = repo.commit(machine("Let the suite run"), {"parcelkit/__init__.py": "STOP = False\n"})
+    out = run_check(repo, sha)
+    messages = lost(out)
+    assert messages and messages[0].startswith("cannot verify that no test was lost: the base tests"), messages
+    assert out.code == 3

@@ -35,13 +35,17 @@ USABLE_AT_BASE = ("completed", "collection-error")
 
 
 def touched_test_files(change: Change) -> tuple[str, ...]:
-    """The base paths of the test files the change modifies, renames or deletes."""
+    """The base paths of the test files the change modifies, renames or deletes (a ``conftest.py`` holds
+    fixtures and hooks, no tests: ``config.harness`` judges its changes)."""
     is_test = glob_matcher(tuple(DEFAULT_TEST_GLOBS))
     return tuple(
         sorted(
             f.old_path
             for f in change.files
-            if f.old_path and f.old_path.endswith(".py") and (pytest_collects_file(f.old_path) or is_test(f.old_path))
+            if f.old_path
+            and f.old_path.endswith(".py")
+            and f.old_path.rsplit("/", 1)[-1] != "conftest.py"
+            and (pytest_collects_file(f.old_path) or is_test(f.old_path))
         )
     )
 
