@@ -113,3 +113,17 @@ def test_a_rerun_counts_only_when_trustworthy() -> None:
     assert read_reruns([good]).passed == {"t::a"}
     assert read_reruns([forged]).passed == frozenset()
     assert read_reruns([forged]).attempts == {"t::a": 2}
+
+
+def test_a_module_level_skip_is_read_as_the_skipped_file_and_its_reason() -> None:
+    # pytest reports a module-level skip as a skipped collection report of the file (pytest docs, skipping);
+    # exit code 5: no tests collected (pytest docs, "Exit codes")
+    skip = {"kind": "collect-skip", "nodeid": "tests/test_native.py", "message": "could not import 'native'"}
+    reading = read_session(session([skip, collected(0)], 5))
+    assert reading.problems == ()
+    assert dict(reading.skipped_modules) == {"tests/test_native.py": "could not import 'native'"}
+
+
+def test_a_skip_record_without_a_file_names_nothing() -> None:
+    reading = read_session(session([{"kind": "collect-skip", "nodeid": 7}, collected(0)], 5))
+    assert dict(reading.skipped_modules) == {}

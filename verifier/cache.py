@@ -26,7 +26,7 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:
     from verifier.gitio import Git
 
-KINDS = ("impact", "baseline", "audit")
+KINDS = ("impact", "baseline", "census", "audit")
 _CHECKSUM = 20  # bytes of the sha-1 written before a marshal body
 
 

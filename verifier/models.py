@@ -258,6 +258,17 @@ RUN_STATUS_TEXT: dict[str, str] = {
 
 
 @dataclass(frozen=True)
+class OldTestsRun:
+    """The base versions of the changed test files run against the head code: did the old tests hold?"""
+
+    status: str  # the run's RunStatus
+    files: tuple[str, ...]  # the head paths that got their base text back
+    tests: tuple[TestOutcome, ...] = ()
+    collection_errors: tuple[str, ...] = ()  # "file: message": every base test of the file fails
+    problems: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
 class RunResult:
     """The test run, read from the files the harness wrote (never scraped from the console)."""
 
@@ -273,6 +284,14 @@ class RunResult:
     limit_hit: str | None = None
     baseline: Mapping[str, str] | None = None  # node id -> outcome at base (a differential run), else None
     problems: tuple[str, ...] = ()  # why the run's results cannot be trusted (status harness-error)
+    skipped_modules: Mapping[str, str] = field(default_factory=dict)  # file -> reason its module skipped itself
+    # the census (verifier.testrun.census): base node id -> outcome at base, of every base test this run
+    # should have run again; None: not taken (a shard, a premade run) or the base could not run
+    census: Mapping[str, str] | None = None
+    census_problem: str = ""  # why the census could not be taken, when it could not
+    # the base versions of the test files the change modifies, run against the head code
+    # (verifier.testrun.oldtests); None: no such file
+    old_tests: OldTestsRun | None = None
 
     def count(self, outcome: str) -> int:
         return sum(1 for t in self.tests if t.outcome == outcome)

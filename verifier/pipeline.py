@@ -42,9 +42,7 @@ from verifier.words import counted
 
 if TYPE_CHECKING:
     from verifier.sandbox import Backend
-
-if TYPE_CHECKING:
-    from verifier.sandbox import Backend
+    from verifier.selection.impactmap import ImpactMap
 
 Progress = Callable[[str], None]
 
@@ -234,13 +232,34 @@ def _select_and_run(check: CheckContext) -> tuple[Selection, RunResult]:
         on_test=check.options.test_progress,
     )
     check.say(f"tests: {selection.reason} (map: {selection.map_status})")
-    run = _run_tests(check, selection, backend)
+    run = _census(check, selection, _run_tests(check, selection, backend), backend, impact)
     if check.policy.selection.differential or _fails(run):
         # a failure is judged knowing whether it fails at base too (a pre-existing failure does not block)
         from verifier.testrun.differential import with_baseline
 
         run = with_baseline(check.git, check.change, check.policy, selection, run, backend, impact, check.say)
     return selection, run
+
+
+def _census(
+    check: CheckContext, selection: Selection, run: RunResult, backend: Backend, impact: ImpactMap | None
+) -> RunResult:
+    """The test census (the base tests the head run should have run again) and the run of the changed test
+    files' base versions at head, each unless its rule is off; neither on one shard of the selection (the
+    census would miss the other shards' tests, and every shard would repeat the base versions' run)."""
+    from verifier.rules.census import REWRITTEN_ID, RULE_ID
+
+    if selection.shard is not None:
+        return run
+    if enabled_anywhere(check.policy, RULE_ID, "block"):
+        from verifier.testrun.census import with_census
+
+        run = with_census(check.git, check.change, selection, run, check.policy, backend, impact, check.say)
+    if enabled_anywhere(check.policy, REWRITTEN_ID, "block"):
+        from verifier.testrun.oldtests import with_old_tests
+
+        run = with_old_tests(check.git, check.change, check.provenance, check.policy, run, backend, check.say)
+    return run
 
 
 def _fails(run: RunResult) -> bool:

@@ -5,9 +5,11 @@ now), ``broken`` (passed at base, fails now), ``still-failing`` (fails at both),
 or ``unchanged``. Flaky outcomes count as passing on their side: they did pass on a re-run.
 
 The base outcomes come from the who-tests-what map when one was used (it is a whole-suite run at base),
-else from a run of the same tests at base, cached (:mod:`verifier.cache`, kind ``baseline``) by base tree,
-environment and the tests asked for. A base run that cannot be read leaves the baseline unknown (``None``): then no
-failure can be shown to be old, and the regression rule counts every failure.
+else from the test census when one was taken (:mod:`verifier.testrun.census`: the base outcomes of every
+test the head run was asked for), else from a run of the same tests at base, cached (:mod:`verifier.cache`,
+kind ``baseline``) by base tree, environment and the tests asked for. A base run that cannot be read leaves
+the baseline unknown (``None``): then no failure can be shown to be old, and the regression rule counts
+every failure.
 """
 
 from __future__ import annotations
@@ -77,6 +79,9 @@ def with_baseline(
     tree = impactmap.tree_of(git, change.base)
     if impact is not None and impact.tree == tree:
         return replace(run, baseline={test: impact.outcomes[test] for test in wanted if test in impact.outcomes})
+    if run.census is not None:
+        # the census ran at base every test this run was asked for: a test it does not list is new
+        return replace(run, baseline={test: run.census[test] for test in wanted if test in run.census})
     environment = impactmap.environment_key(policy, backend)
     target = _cache_file(git, tree, environment, wanted)
     cached = _load(target)

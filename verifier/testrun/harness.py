@@ -310,6 +310,7 @@ def read_run(run: HarnessRun) -> RunResult:
         coverage=coverage,
         collection_errors=reading.collection_errors,
         problems=tuple(problems),
+        skipped_modules=dict(reading.skipped_modules),
         **common,
     )
 
@@ -320,17 +321,23 @@ def _status(reading: integrity.SessionReading) -> RunStatus:
     if reading.collection_errors or reading.exit_code == 2:
         return "collection-error" if reading.collection_errors else "crashed"
     if reading.exit_code == integrity.NO_TESTS:
-        return "completed" if _empty_shard(reading) else "no-tests"
+        return "completed" if _empty_shard(reading) or _all_skipped(reading) else "no-tests"
     if reading.exit_code not in integrity.RAN:
         return "harness-error"
     if not reading.tests:
-        return "completed" if _empty_shard(reading) else "no-tests"
+        return "completed" if _empty_shard(reading) or _all_skipped(reading) else "no-tests"
     return "completed"
 
 
 def _empty_shard(reading: integrity.SessionReading) -> bool:
     """This shard's share of the selection is empty; the other shards run the tests."""
     return bool(reading.shard) and reading.collected == 0 and not reading.problems
+
+
+def _all_skipped(reading: integrity.SessionReading) -> bool:
+    """Every file the session collected skipped itself at module level: the run is complete, and the test
+    census (``tests.lost``) judges the tests those skips hide."""
+    return bool(reading.skipped_modules) and reading.collected == 0 and not reading.problems
 
 
 def _with_reruns(tests: tuple[TestOutcome, ...], reruns: integrity.Reruns) -> tuple[TestOutcome, ...]:

@@ -41,6 +41,7 @@ class SessionReading:
     collected: int | None = None
     shard: Any = None
     problems: tuple[str, ...] = ()
+    skipped_modules: Mapping[str, str] = field(default_factory=dict)  # collected file -> its module-level skip
 
     @property
     def trustworthy(self) -> bool:
@@ -99,7 +100,18 @@ def read_session(part: Any, asked: Sequence[str] | None = None) -> SessionReadin
         _check_phases(phases, problems)
         _check_counts(len(phases), collected, asked, phases, problems)
         _check_exit(exit_code, tests, errors, problems)
-    return SessionReading(exit_code, tests, tuple(errors), collected, shard, tuple(problems))
+    skips = _module_skips(part["records"])
+    return SessionReading(exit_code, tests, tuple(errors), collected, shard, tuple(problems), skips)
+
+
+def _module_skips(records: list[Any]) -> dict[str, str]:
+    """The files whose collection skipped (``pytest.skip(allow_module_level=True)``, a module-level
+    ``pytest.importorskip``): file -> the skip's reason."""
+    return {
+        _text(record.get("nodeid")): _last_line(_text(record.get("message")))
+        for record in records
+        if isinstance(record, dict) and record.get("kind") == "collect-skip" and _text(record.get("nodeid"))
+    }
 
 
 def _walk(
@@ -134,7 +146,7 @@ def _walk(
             end = _int(record.get("exit"))
             if end is None:
                 problems.append("the session's end record has no exit code")
-        elif kind not in ("coverage", "start"):  # a test's start feeds only the progress display
+        elif kind not in ("coverage", "start", "collect-skip"):  # a test's start feeds only the progress display
             problems.append(f"an unknown record kind on the results channel: {str(kind)[:40]!r}")
     return phases, errors, collected, shard, finish, end
 

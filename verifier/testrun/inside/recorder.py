@@ -34,6 +34,14 @@ def message_of(report: Any) -> str:
         return ""
 
 
+def skip_reason(report: Any) -> str:
+    """A skip's reason: a skipped report's ``longrepr`` is a (path, line, reason) tuple (pytest's reports)."""
+    longrepr = report.longrepr
+    if isinstance(longrepr, tuple) and len(longrepr) == 3:
+        return str(longrepr[2]).removeprefix("Skipped: ")[-MESSAGE_CAP:]
+    return message_of(report)
+
+
 def relative_path(path: str, root: str) -> str:
     return os.path.relpath(path, root).replace(os.sep, "/")
 
@@ -147,6 +155,8 @@ class Recorder:
     def pytest_collectreport(self, report: Any) -> None:
         if self.send is not None and report.failed:
             self.send({"kind": "collect-error", "nodeid": str(report.nodeid), "message": message_of(report)})
+        elif self.send is not None and report.skipped:  # a module-level skip: its tests are never collected
+            self.send({"kind": "collect-skip", "nodeid": str(report.nodeid), "message": skip_reason(report)})
 
     def pytest_runtest_logstart(self, nodeid: str, location: Any) -> None:
         if self.send is not None:  # for the progress display only; the judged records are the phases
