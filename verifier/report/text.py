@@ -31,11 +31,14 @@ FOR_MACHINES = False  # the view for people: on stderr when a machine format tak
 _COLOURS = {"pass": "32", "warn": "33", "block": "31", "error": "35", "info": "36", "part": "36"}
 _LABELS = {
     "pass": "PASS  the machine-written change is verified",
-    "warn": "WARN  verified, with warnings",
+    "warn": "PASS  verified, with advisory findings",
     "block": "BLOCK the machine-written change does not meet the policy",
     "error": "ERROR the change could not be verified (this is not a pass)",
     "part": "PART  this part of the tests ran; no verdict yet: 'verifier join' of every part's JSON report gives it",
 }
+
+# a finding's label: the policy's words (a rule set to advise gives a finding of severity warn)
+_SEVERITY_LABELS = {"block": "BLOCK", "warn": "ADVISE", "error": "ERROR", "info": "INFO"}
 
 
 def wants_colour(stream: TextIO) -> bool:
@@ -253,7 +256,7 @@ def _findings(findings: tuple[Finding, ...], paint: Paint, total: int) -> list[s
         where = f" {finding.path}" + (f":{finding.line}" if finding.line else "") if finding.path else ""
         if finding.path and finding.message.startswith(f"{finding.path}::"):
             where = ""  # the message starts with the test's node id, which names the file already
-        label = paint(finding.severity, "WAIVED" if waiver_of(finding) else finding.severity.upper())
+        label = paint(finding.severity, "WAIVED" if waiver_of(finding) else _SEVERITY_LABELS[finding.severity])
         rows.append(f"  {label} [{finding.rule}]{where} {finding.message}{_waived_note(finding)}")
         tail = finding.details.get("output_tail") if finding.details else None
         if tail:
