@@ -165,6 +165,17 @@ def test_the_no_tests_message_names_the_policys_test_paths(repo: ScratchRepo) ->
     assert "pytest looked in the policy's tests.paths (checks)" in done.stdout
 
 
+def test_a_tests_path_missing_from_the_tree_gets_one_message_and_exit_3(repo: ScratchRepo) -> None:
+    policy = {"verifier.yaml": "version: 1\ntests:\n  paths: [checks]\n", "tests/test_add.py": TEST_ADD}
+    base = repo.commit("Human: tests are said to live in checks/", policy)
+    head = repo.commit(machine("Add mul"), {"inkwell/sums.py": SUMS + "\n\ndef mul(a, b):\n    return a * b\n"})
+    done = verifier(repo.path, "check", f"{base}..{head}", "--sandbox", test_sandbox(), "--no-notes")
+    assert done.returncode == 3, done.stdout + done.stderr
+    output = done.stdout + done.stderr
+    assert "tests.paths names 'checks', which the tree under test does not have" in output
+    assert "file or directory not found" not in output and "Traceback" not in output  # no pytest console
+
+
 def test_a_repository_with_a_test_is_not_told_it_has_none(repo: ScratchRepo) -> None:
     base = repo.commit("Human: a test for add", {"tests/test_add.py": TEST_ADD})
     head = repo.commit(machine("Add in the other order"), {"inkwell/sums.py": SUMS.replace("a + b", "b + a")})

@@ -134,7 +134,7 @@ def prepare(
     (target / "coveragerc-parallel").write_text(COVERAGERC.format(folder=folder, patch=PARALLEL_PATCH))
     key = secrets.token_bytes(32)
     progress_token = f"verifier-progress-{secrets.token_hex(8)}" if on_test else None
-    targets = list(policy.test_paths) if selection.whole_suite else _test_files(tree, selection)
+    targets = _policy_targets(tree, policy) if selection.whole_suite else _test_files(tree, selection)
     settings = {
         "key": key.hex(),
         "plugin": plugin,
@@ -158,6 +158,23 @@ def prepare(
         on_output=ProgressReader(progress_token, on_test).feed if progress_token and on_test else None,
     )
     return Prepared(request, key, folder, analyses, known, progress_token)
+
+
+def _policy_targets(tree: Path, policy: Policy) -> list[str]:
+    """The policy's ``tests.paths``, each checked to exist in the tree: pytest would stop on a missing one
+    with its own console ("file or directory not found") and the run could not be judged."""
+    missing = [path for path in policy.test_paths if not (tree / path.split("::", 1)[0]).exists()]
+    if missing:
+        from verifier.errors import CannotVerify
+
+        shown = ", ".join(repr(path[:200]) for path in missing[:5])
+        raise CannotVerify(
+            f"the policy's tests.paths names {shown}, which the tree under test does not have "
+            f"(policy {policy.source}), so no test could be collected there",
+            hint="point tests.paths at folders or files that hold the tests (paths from the repository root), "
+            "or leave it empty for pytest's own discovery; a human changes it in the trusted policy",
+        )
+    return list(policy.test_paths)
 
 
 class ProgressReader:
