@@ -14,14 +14,17 @@ changes what is tested.
 
 from __future__ import annotations
 
+import contextlib
 import os
+import shutil
 import subprocess
+import tempfile
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
 from verifier.errors import CannotVerify, GitError, UsageError
-from verifier.models import Commit
+from verifier.models import INDEX, Commit
 
 _FIELD = "\x1f"
 _RECORD = "\x1e"
@@ -304,6 +307,21 @@ class Git:
         return self.run(args)
 
     # -- materialising ------------------------------------------------------------------------
+    @contextlib.contextmanager
+    def exported(self, revision: str, kind: str) -> Iterator[Path]:
+        """``revision`` (a commit, or ``INDEX``) written into a new temporary folder outside the repository,
+        removed when the block ends, whatever happens in it."""
+        workdir = Path(tempfile.mkdtemp(prefix=f"verifier-{kind}-"))
+        try:
+            tree = workdir / "tree"
+            if revision == INDEX:
+                self.export_index(tree)
+            else:
+                self.export_commit(revision, tree)
+            yield tree
+        finally:
+            shutil.rmtree(workdir, ignore_errors=True)
+
     def export_commit(self, sha: str, dest: Path) -> None:
         """Write the tree of ``sha`` into ``dest`` exactly as committed (no git attribute applies)."""
         self._materialise(sha, self.tree_entries(sha), dest)

@@ -249,17 +249,9 @@ def _run_in_sandbox(
     pending: list[tuple[int, Mutant, tuple[str, ...]]],
     durations: Mapping[str, float],
 ) -> tuple[dict[int, MutantOutcome], str | None]:
-    workdir = Path(tempfile.mkdtemp(prefix="verifier-mutants-"))
-    try:
-        tree = workdir / "tree"
-        if head == INDEX:
-            git.export_index(tree)
-        else:
-            git.export_commit(head, tree)
+    with git.exported(head, "mutants") as tree:
         request = prepare(tree, policy, pending, durations)
         result = backend.run(request)
-    finally:
-        shutil.rmtree(workdir, ignore_errors=True)
     records = read_results(result.files.get(RESULTS), {f"m{number}" for number, _m, _t in pending})
     problem = None
     if result.timed_out or result.limit_hit:

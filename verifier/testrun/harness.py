@@ -21,14 +21,12 @@ import os
 import re
 import secrets
 import shutil
-import tempfile
 from collections.abc import Mapping
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from verifier.models import (
-    INDEX,
     FileCoverage,
     Policy,
     RunResult,
@@ -269,26 +267,18 @@ def run_revision(
 ) -> HarnessRun:
     """Materialise ``revision`` (a commit, or INDEX) outside the repository and run its tests in ``backend``
     (``on_test``: per-test progress, for a display)."""
-    workdir = Path(tempfile.mkdtemp(prefix="verifier-tree-"))
-    try:
-        tree = workdir / "tree"
-        if revision == INDEX:
-            git.export_index(tree)
-        else:
-            git.export_commit(revision, tree)
+    with git.exported(revision, "tree") as tree:
         prepared = prepare(tree, policy, selection, report_files, on_test)
         result = backend.run(prepared.request)
-        return HarnessRun(
-            result,
-            prepared.key,
-            prepared.folder,
-            prepared.analyses,
-            tuple(report_files),
-            prepared.known,
-            prepared.progress_token,
-        )
-    finally:
-        shutil.rmtree(workdir, ignore_errors=True)
+    return HarnessRun(
+        result,
+        prepared.key,
+        prepared.folder,
+        prepared.analyses,
+        tuple(report_files),
+        prepared.known,
+        prepared.progress_token,
+    )
 
 
 # -- reading the run -----------------------------------------------------------------------------------

@@ -10,15 +10,13 @@ there (and passed at base: the census knows), whatever the syntax of the rewrite
 from __future__ import annotations
 
 import os
-import shutil
-import tempfile
 from collections.abc import Callable
 from dataclasses import replace
-from pathlib import Path
 from typing import TYPE_CHECKING
 
-from verifier.models import INDEX, Change, FileChange, OldTestsRun, Policy, Provenance, RunResult, Selection
+from verifier.models import Change, FileChange, OldTestsRun, Policy, Provenance, RunResult, Selection
 from verifier.testrun.census import touched_test_files
+from verifier.words import counted
 
 if TYPE_CHECKING:
     from verifier.gitio import Git
@@ -52,7 +50,7 @@ def with_old_tests(
     files = rewritten_files(change, provenance)
     if change.base is None or not files or run.status != "completed":
         return run
-    say(f"running the base version of {len(files)} changed test file(s) against the head code")
+    say(f"running the base version of {counted(len(files), 'changed test file')} against the head code")
     blobs = git.read_blobs([f"{change.base}:{f.old_path}" for f in files])
     overlay = {f.path: blobs.get(f"{change.base}:{f.old_path}", b"") for f in files}
     return replace(run, old_tests=_run(git, change.head, policy, backend, overlay))
@@ -63,13 +61,7 @@ def _run(git: Git, head: str, policy: Policy, backend: Backend, overlay: dict[st
 
     paths = tuple(sorted(overlay))
     selection = Selection(whole_suite=False, files=paths, reason="the base versions of the changed test files")
-    workdir = Path(tempfile.mkdtemp(prefix="verifier-oldtests-"))
-    try:
-        tree = workdir / "tree"
-        if head == INDEX:
-            git.export_index(tree)
-        else:
-            git.export_commit(head, tree)
+    with git.exported(head, "oldtests") as tree:
         for path, data in overlay.items():
             target = tree / path
             inside = os.path.realpath(target.parent).startswith(os.path.realpath(tree) + os.sep)
@@ -80,8 +72,6 @@ def _run(git: Git, head: str, policy: Policy, backend: Backend, overlay: dict[st
         result = backend.run(prepared.request)
         harness_run = testrun.HarnessRun(result, prepared.key, prepared.folder, known=prepared.known)
         outcome = testrun.read_run(harness_run)
-    finally:
-        shutil.rmtree(workdir, ignore_errors=True)
     status = outcome.status
     if status == "no-tests" and outcome.pytest_exit is not None:
         status = "completed"  # the base files hold no test that still collects: nothing to judge
