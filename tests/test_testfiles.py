@@ -31,9 +31,14 @@ def test_a_test_named_module_without_tests_is_code() -> None:
 
 
 def test_helpers_conftest_and_test_classes_are_test_code() -> None:
-    sources = {"tests/test_units.py": "class TestUnits:\n    def test_kilo(self):\n        assert 1\n"}
+    case = "import unittest\n\n\nclass KiloCheck(unittest.TestCase):\n    def test_kilo(self):\n        pass\n"
+    sources = {
+        "tests/test_units.py": "class TestUnits:\n    def test_kilo(self):\n        assert 1\n",
+        "tests/test_cases.py": case,
+    }
     is_test = classify_test_code(PATTERNS, sources)
     assert is_test("tests/test_units.py") and is_test("tests/helpers.py") and is_test("parcelkit/conftest.py")
+    assert is_test("tests/test_cases.py")  # a unittest case, whatever its name
 
 
 def test_code_hidden_in_a_test_named_module_is_judged(repo: ScratchRepo) -> None:

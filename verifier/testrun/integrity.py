@@ -6,7 +6,8 @@ when all of these agree: the seal is intact; the child's exit code, the ``finish
 exit status) and the ``end`` record are one and the same, and are 0 or 1 (pytest's documented exit
 codes "all passed" and "some failed"); exit 1 goes with a failure and exit 0 with none; exactly the
 collected tests have records, each with its setup and teardown phases and, when the setup passed, its
-call phase; no phase twice; nothing after the end. Any other shape is a problem: the gate cannot verify.
+call phase; no phase twice (a subtest's report is a record of its own kind, and a failed one fails its
+test); nothing after the end. Any other shape is a problem: the gate cannot verify.
 """
 
 from __future__ import annotations
@@ -131,7 +132,7 @@ def _walk(
         if end is not None:
             problems.append(f"a '{kind}' record arrived after the session's end")
             continue
-        if kind == "phase":
+        if kind in ("phase", "subtest"):  # a test's subtests travel with its phases; only a failure counts
             node_id = _text(record.get("nodeid"))
             phases.setdefault(node_id, []).append(record)
         elif kind == "collect-error":
@@ -169,7 +170,11 @@ def _exit_code(returncode: int | None, finish: int | None, end: int | None, prob
 
 
 def _check_phases(phases: Mapping[str, list[dict[str, Any]]], problems: list[str]) -> None:
-    for node_id, records in phases.items():
+    for node_id, every in phases.items():
+        records = [r for r in every if r.get("kind") != "subtest"]
+        if not records:
+            problems.append(f"{node_id}: subtests recorded, but none of the test's own phases")
+            continue
         seen = [str(r.get("when")) for r in records]
         outcomes = {str(r.get("when")): r.get("outcome") for r in records}
         if len(seen) != len(set(seen)) or not set(seen) <= set(PHASES):
@@ -178,7 +183,7 @@ def _check_phases(phases: Mapping[str, list[dict[str, Any]]], problems: list[str
             problems.append(f"{node_id}: no {'setup' if 'setup' not in outcomes else 'teardown'} phase recorded")
         elif outcomes["setup"] == "passed" and "call" not in outcomes:
             problems.append(f"{node_id}: its setup passed but no call phase was recorded")
-        if any(r.get("outcome") not in OUTCOMES for r in records):
+        if any(r.get("outcome") not in OUTCOMES for r in every):
             problems.append(f"{node_id}: an unknown outcome")
 
 
@@ -207,14 +212,15 @@ def _check_exit(exit_code: int, tests: tuple[TestOutcome, ...], errors: list[str
 
 def _fold(node_id: str, records: list[dict[str, Any]]) -> TestOutcome:
     """One outcome from a test's phases: a failed call fails, a failed setup or teardown is an error."""
-    duration = sum(float(r["duration"]) for r in records if isinstance(r.get("duration"), (int, float)))
+    own_phases = [r for r in records if r.get("kind") != "subtest"]
+    duration = sum(float(r["duration"]) for r in own_phases if isinstance(r.get("duration"), (int, float)))
     fixtures_value: list[Any] = next((r["fixtures"] for r in records if isinstance(r.get("fixtures"), list)), [])
     fixtures = tuple(str(name)[:200] for name in fixtures_value[:500])
-    for record in records:
+    for record in records:  # in the order they came: a failed subtest fails the test, though its call passed
         if record.get("outcome") == "failed":
             outcome: Literal["failed", "error"] = "failed" if record.get("when") == "call" else "error"
             return TestOutcome(node_id, outcome, _text(record.get("message")), duration, fixtures=fixtures)
-    if any(r.get("outcome") == "skipped" for r in records):
+    if any(r.get("outcome") == "skipped" for r in own_phases):
         return TestOutcome(node_id, "skipped", "", duration, fixtures=fixtures)
     return TestOutcome(node_id, "passed", "", duration, fixtures=fixtures)
 

@@ -5,7 +5,8 @@ code placed in ``mypackage/test_pricing.py`` would be skipped by both. So a file
 test patterns (``coverage.exclude``) counts as test code only when it is a ``conftest.py``, a helper module
 (not named like a test module), or a test module that defines something pytest collects: a ``test``
 function or a ``Test`` class at module level (pytest's documented default ``python_functions`` and
-``python_classes``). A test-named module with no test in it is code, and judged as code.
+``python_classes``), or a ``unittest.TestCase`` subclass of any name (pytest collects those too). A
+test-named module with no test in it is code, and judged as code.
 
 The answer depends on the committed source only, never on which tests a run (or a part of one) executed,
 so every part of a split run plans the same mutants.
@@ -45,7 +46,16 @@ def defines_tests(source: str) -> bool:
     for node in tree.body:
         if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef)) and node.name.startswith("test"):
             return True
-        if isinstance(node, ast.ClassDef) and node.name.startswith("Test"):
+        if isinstance(node, ast.ClassDef) and (node.name.startswith("Test") or _test_case_subclass(node)):
+            return True
+    return False
+
+
+def _test_case_subclass(node: ast.ClassDef) -> bool:
+    """A class deriving from a ``...TestCase`` (unittest's and its kin): pytest collects it whatever its name."""
+    for base in node.bases:
+        name = base.attr if isinstance(base, ast.Attribute) else base.id if isinstance(base, ast.Name) else ""
+        if name.endswith("TestCase"):
             return True
     return False
 

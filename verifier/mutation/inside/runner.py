@@ -259,13 +259,18 @@ def fork_child(mutant: dict[str, Any], items: list[Any], swap: tuple[types.Funct
 
 
 def run_items(items: list[Any]) -> dict[str, Any]:
-    """Run ``items`` in this process (pytest's own per-test protocol), stopping at the first failure."""
+    """Run ``items`` in this process (pytest's own per-test protocol), stopping at the first failure.
+    A failed subtest counts: pytest reports it through the log hook only (a unittest case whose subtest
+    failed has a passing call report of its own), so a watcher listens there too."""
     from _pytest.runner import runtestprotocol
 
+    watcher = FirstFailure()
+    if items:
+        items[0].config.pluginmanager.register(watcher, "verifier-mutant-watcher")
     for index, item in enumerate(items):
         nextitem = items[index + 1] if index + 1 < len(items) else None
         reports = runtestprotocol(item, nextitem=nextitem, log=False)
-        if any(report.failed for report in reports):
+        if watcher.failed or any(report.failed for report in reports):
             return {"status": "killed", "killed_by": item.nodeid}
     return {"status": "survived"}
 

@@ -64,10 +64,16 @@ def chosen(node_ids: Iterable[str], paths: Mapping[str, str], selection: Mapping
     return keep
 
 
+# pytest 9's own report of one subtest (``self.subTest`` in a unittest case, the ``subtests`` fixture), and
+# the earlier plugin's: extra reports of a test's call, which say whether that part of the test failed
+SUBTEST_REPORTS = ("SubtestReport", "SubTestReport")
+
+
 def phase_record(report: Any) -> dict[str, Any]:
-    """The record of one test phase (setup, call or teardown)."""
+    """The record of one test phase (setup, call or teardown), or of one subtest within the call."""
+    subtest = type(report).__name__ in SUBTEST_REPORTS
     return {
-        "kind": "phase",
+        "kind": "subtest" if subtest else "phase",
         "nodeid": str(report.nodeid),
         "when": str(report.when),
         "outcome": str(report.outcome),

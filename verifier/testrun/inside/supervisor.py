@@ -186,10 +186,10 @@ def run_child(settings: dict[str, Any], child: dict[str, Any], progress: str | N
 
 
 def failing(records: list[Any]) -> list[str]:
-    """Node ids with a failed phase (an expected failure excepted), in the order first seen."""
+    """Node ids with a failed phase or subtest (an expected failure excepted), in the order first seen."""
     found: dict[str, None] = {}
     for record in records:
-        if not isinstance(record, dict) or record.get("kind") != "phase" or record.get("xfail"):
+        if not isinstance(record, dict) or record.get("kind") not in ("phase", "subtest") or record.get("xfail"):
             continue
         if record.get("outcome") == "failed":
             found[str(record.get("nodeid"))] = None
