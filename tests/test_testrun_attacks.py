@@ -348,3 +348,30 @@ def test_honest_discount_passes_in_docker(repo: ScratchRepo, docker_ready: None)
     start(repo)
     code, _report = gate(repo, change(RIGHT), sandbox="docker")
     assert code == 0
+
+
+# The tree's own package is also installed in the sandbox's environment (here: unidiff, one of the gate's own
+# dependencies, so installed wherever the gate runs): the tests would import the installed copy, not the
+# committed one. The gate says so and cannot verify, rather than judge code it never ran.
+SHADOWED = {
+    "unidiff/__init__.py": "def hunk_count(patch):\n    return patch.count('@@') // 2\n",
+    "tests/test_count.py": (
+        "from unidiff import hunk_count\n\n\ndef test_count():\n    assert hunk_count('@@ a @@') == 1\n"
+    ),
+}
+
+
+def test_a_tree_package_shadowed_by_an_installed_copy_cannot_be_verified(repo: ScratchRepo) -> None:
+    start(repo)
+    code, report = gate(repo, SHADOWED)
+    messages = " ".join(f["message"] for f in report["findings"])
+    assert code == 3 and "the tree's module 'unidiff' would be imported from" in messages, report["findings"]
+
+
+def test_tree_packages_nothing_installed_shadows_pass(repo: ScratchRepo) -> None:
+    start(repo)
+    renamed = {
+        path.replace("unidiff", "hunkcount"): text.replace("unidiff", "hunkcount") for path, text in SHADOWED.items()
+    }
+    code, report = gate(repo, renamed)
+    assert (code, report["verdict"]) == (0, "pass"), report["findings"]

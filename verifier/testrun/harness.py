@@ -21,6 +21,7 @@ import os
 import re
 import secrets
 import shutil
+import sys
 from collections.abc import Mapping
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -137,6 +138,7 @@ def prepare(
         "key": key.hex(),
         "plugin": plugin,
         "path": list(policy.python_path),
+        "modules": tree_modules(tree, policy.python_path),
         # the tree's test folders go after the installed packages too (pytest docs: import modes)
         "args": ["-p", plugin, "-p", "no:cacheprovider", "--rootdir=.", "--import-mode=append"],
         "targets": [*policy.pytest_args, *targets],
@@ -210,6 +212,28 @@ class ProgressReader:
 def without_progress(output: str, token: str | None) -> str:
     """The output as the tests wrote it: the supervisor's progress lines taken out."""
     return output if token is None else re.sub(f"{re.escape(token)} [^\n]*\n", "", output)
+
+
+def tree_modules(tree: Path, folders: tuple[str, ...]) -> list[str]:
+    """The top-level modules and packages the tree offers on its import path (standard-library names left
+    out: they cannot be imported from a tree, and ``config.harness`` reports a machine-written one). The
+    session checks that each one it would import comes from the workspace, not from an installed copy.
+    The tools' own names are left out too: the harness keeps them first by design (``config.harness``
+    reports a machine-written module of that name)."""
+    from verifier.rules.harness import TOOL_MODULES
+
+    names: set[str] = set()
+    for folder in folders:
+        base = tree / folder
+        if not base.is_dir() or base.is_symlink():
+            continue
+        for entry in base.iterdir():
+            if entry.suffix == ".py" and entry.is_file():
+                names.add(entry.stem)
+            elif entry.is_dir() and (entry / "__init__.py").is_file():
+                names.add(entry.name)
+    skipped = sys.stdlib_module_names | TOOL_MODULES | {"conftest"}
+    return sorted(name for name in names if name.isidentifier() and name not in skipped)
 
 
 def python_files(tree: Path) -> frozenset[str]:

@@ -147,6 +147,8 @@ def _walk(
             end = _int(record.get("exit"))
             if end is None:
                 problems.append("the session's end record has no exit code")
+        elif kind == "shadowed":
+            problems += _shadowed(record.get("modules"))
         elif kind not in ("coverage", "start", "collect-skip"):  # a test's start feeds only the progress display
             problems.append(f"an unknown record kind on the results channel: {str(kind)[:40]!r}")
     return phases, errors, collected, shard, finish, end
@@ -167,6 +169,22 @@ def _exit_code(returncode: int | None, finish: int | None, end: int | None, prob
         problems.append(f"exit codes disagree: process {returncode}, pytest {finish}, session end {end}")
         return None
     return end
+
+
+def _shadowed(modules: Any) -> list[str]:
+    """Why a run whose tree modules resolve elsewhere did not test the committed code."""
+    if not isinstance(modules, dict) or not modules:
+        return ["a malformed record of shadowed modules"]
+    problems = []
+    for name, where in list(modules.items())[:5]:
+        problems.append(
+            f"the tree's module {_text(name)[:100]!r} would be imported from {_text(where)[:200]}, not from the "
+            "committed tree, so the tests would not run the committed code; run the gate from an environment "
+            f"where {_text(name)[:100]!r} is not installed (a virtual environment of its own), or with --sandbox docker"
+        )
+    if len(modules) > 5:
+        problems.append(f"and {len(modules) - 5} more modules of the tree are shadowed the same way")
+    return problems
 
 
 def _check_phases(phases: Mapping[str, list[dict[str, Any]]], problems: list[str]) -> None:

@@ -36,6 +36,28 @@ def tree_path(workspace: str, folders: list[str], harness: str) -> list[str]:
     return [entry for entry in sys.path if entry] + [*dict.fromkeys(tail), harness]
 
 
+def shadowed_modules(names: list[str], workspace: str) -> dict[str, str]:
+    """The tree's top-level modules that this interpreter would import from elsewhere (an installed copy
+    found first on the path, or an import hook that serves it): then the tests would not run the committed
+    code. Finding a spec runs no module code."""
+    import importlib.util
+
+    inside = os.path.realpath(workspace) + os.sep
+    found = {}
+    for name in names[:5000]:
+        try:
+            spec = importlib.util.find_spec(name)
+        except (ImportError, ValueError):
+            continue
+        if spec is None:
+            continue
+        places = [spec.origin] if spec.origin else list(spec.submodule_search_locations or [])
+        outside = [p for p in places if p and not os.path.realpath(p).startswith(inside)]
+        if outside:
+            found[name] = str(outside[0])[:300]
+    return found
+
+
 def file_digest(path: str) -> str | None:
     try:
         with open(path, "rb") as data:
@@ -76,11 +98,14 @@ def main(argv: list[str]) -> int:
     os.set_inheritable(records_fd, False)  # subprocesses the tests start do not get the channel
     settings = read_settings(settings_fd)
     sys.path[:] = tree_path(os.getcwd(), list(settings.get("path", [])), settings["harness"])
+    shadowed = shadowed_modules(list(settings.get("modules", [])), os.getcwd())
     cov = start_coverage(settings)
     import pytest
 
     recorder = __import__(settings["plugin"])
     send = recorder.pipe_writer(records_fd)
+    if shadowed:
+        send({"kind": "shadowed", "modules": shadowed})
     plugin = recorder.Recorder(send, settings.get("selection"))
     exit_code = int(pytest.main(list(settings["args"]), plugins=[plugin]))
     finish_coverage(cov, bool(settings.get("spread")), send)

@@ -284,6 +284,7 @@ def child_settings(settings: dict[str, Any], selection: Any, measure: bool, data
         "harness": settings["harness"],
         "plugin": settings["plugin"],
         "path": settings["path"],
+        "modules": settings.get("modules", []),
         "args": pytest_args(settings),
         "selection": selection,
         "spread": settings["spread"],
