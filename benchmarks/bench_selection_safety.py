@@ -31,7 +31,8 @@ committed with the Model-Written trailer, of these kinds (``FAULT_KINDS``):
 For each fault the script runs ``verifier check`` (smart selection; the base map is built once, then
 cached) and, as the reference, plain ``pytest`` over the whole suite of the same tree exported fresh,
 and compares the failing tests (a test file that fails to import, pytest's collection error, counts as
-caught when the gate ran that file and blocked). It prints each fault, then per library and in total the
+caught when the gate ran that file and did not pass; so does a failure of a file the gate ran when it could
+not verify the run, exit 3). It prints each fault, then per library and in total the
 faults, the failures of the whole suite, the failures the gate missed (the bar: zero) and the share of
 the suite (as collected at base) the gate ran; and per kind.
 
@@ -515,14 +516,17 @@ class GateRun:
     map_status: str
     whole_suite: bool
     selected_files: set[str]  # the test files it ran tests of (all of them for a whole-suite run)
-    blocked: bool
+    verdict: str
 
     def catches(self, failure: str) -> bool:
-        """A failing test of the whole suite the gate saw fail; a test file that failed to import (pytest's
-        collection error: no test of it ran) counts when the gate ran that file and blocked."""
-        if "::" in failure:
-            return failure in self.failing
-        return self.blocked and (self.whole_suite or failure in self.selected_files)
+        """A failing test of the whole suite the gate saw fail; or one of a test file the gate ran when it
+        could not verify the run (exit 3, a collection error, say: fail closed, never a pass); a test file
+        that failed to import (no test of it ran) counts when the gate ran it and did not pass."""
+        if failure in self.failing:
+            return True
+        ran_file = self.whole_suite or failure.split("::")[0] in self.selected_files
+        file_level = "::" not in failure
+        return ran_file and (self.verdict == "error" or (file_level and self.verdict == "block"))
 
 
 def gate_failures(repo: ScratchRepo, sha: str, out: Path) -> GateRun:
@@ -545,7 +549,7 @@ def gate_failures(repo: ScratchRepo, sha: str, out: Path) -> GateRun:
         map_status=str(selection.get("map", "?")),
         whole_suite=bool(selection.get("whole_suite")),
         selected_files={key.split("::")[0] for key in selection.get("selected", {})},
-        blocked=report.get("verdict") == "block",
+        verdict=str(report.get("verdict")),
     )
 
 
@@ -656,7 +660,7 @@ def run_library(
             print(f"    MISSED {test}", flush=True)
         results.append(
             {**asdict(fault), "library": requirement, "suite_failing": sorted(full), "missed": sorted(missed)}
-            | {"gate_failing": sorted(gate.failing), "ran": ran, "suite_size": size, "whole_suite": gate.whole_suite}
+            | {"gate_failing": sorted(gate.failing), "ran": ran, "suite_size": size, "verdict": gate.verdict}
         )
     return tally, by_kind
 
