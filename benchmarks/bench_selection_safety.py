@@ -31,10 +31,11 @@ committed with the Model-Written trailer, of these kinds (``FAULT_KINDS``):
 For each fault the script runs ``verifier check`` (smart selection; the base map is built once, then
 cached) and, as the reference, plain ``pytest`` over the whole suite of the same tree exported fresh,
 and compares the failing tests (a test file that fails to import, pytest's collection error, counts as
-caught when the gate ran that file and did not pass; so does a failure of a file the gate ran when it could
-not verify the run, exit 3). It prints each fault, then per library and in total the
-faults, the failures of the whole suite, the failures the gate missed (the bar: zero) and the share of
-the suite (as collected at base) the gate ran; and per kind.
+caught when the gate ran that file and did not pass; so does a failure of a file the gate ran when it
+could not verify the run, exit 3). A failing test the gate ran and saw pass (one that depends on chance,
+as a random-replacement cache's test does) is listed apart: the selection chose it. It prints each fault,
+then per library, per kind and in total the faults, the failures of the whole suite, the failures the
+gate missed (the bar: zero) and the share of the suite (as collected at base) the gate ran.
 
 Usage: python benchmarks/bench_selection_safety.py [--per-kind KIND=N ...] [--results FILE] [requirement ...]
 Needs the network for the downloads (PyPI only). Not run by CI.
@@ -517,6 +518,7 @@ class GateRun:
     whole_suite: bool
     selected_files: set[str]  # the test files it ran tests of (all of them for a whole-suite run)
     verdict: str
+    ran_ids: set[str]  # the tests it ran, with any outcome
 
     def catches(self, failure: str) -> bool:
         """A failing test of the whole suite the gate saw fail; or one of a test file the gate ran when it
@@ -550,6 +552,7 @@ def gate_failures(repo: ScratchRepo, sha: str, out: Path) -> GateRun:
         whole_suite=bool(selection.get("whole_suite")),
         selected_files={key.split("::")[0] for key in selection.get("selected", {})},
         verdict=str(report.get("verdict")),
+        ran_ids={outcome["node_id"] for outcome in tests.get("outcomes", [])},
     )
 
 
@@ -605,12 +608,14 @@ class Tally:
     failures: int = 0
     missed: int = 0
     shares: list[float] = field(default_factory=list)
+    differing: int = 0  # failures of tests the gate ran and saw pass (a test that depends on chance)
 
-    def add(self, failures: int, missed: int, share: float) -> None:
+    def add(self, failures: int, missed: int, share: float, differing: int = 0) -> None:
         self.faults += 1
         self.failures += failures
         self.missed += missed
         self.shares.append(share)
+        self.differing += differing
 
     def line(self, name: str) -> str:
         mean = sum(self.shares) / len(self.shares) if self.shares else 0.0
@@ -618,6 +623,7 @@ class Tally:
         return (
             f"{name:<24} faults {self.faults:>3}  failures {self.failures:>4}  missed {self.missed:>3}  "
             f"tests run: mean {mean:.1%} (min {low:.1%}, max {high:.1%})"
+            + (f"  (+{self.differing} run by the gate, passed there)" if self.differing else "")
         )
 
 
@@ -645,11 +651,13 @@ def run_library(
         started = time.monotonic()
         gate = gate_failures(repo, sha, folder)
         full, suite_size = suite_failures(repo, sha, folder)
-        missed = {failure for failure in full if not gate.catches(failure)}
+        not_caught = {failure for failure in full if not gate.catches(failure)}
+        differing = not_caught & gate.ran_ids  # run by the gate and passed there: not a selection miss
+        missed = not_caught - differing
         ran, why = gate.ran, "whole suite" if gate.whole_suite else "selected"
         share = min(ran / size, 1.0) if size else 0.0
-        tally.add(len(full), len(missed), share)
-        by_kind[fault.kind].add(len(full), len(missed), share)
+        tally.add(len(full), len(missed), share, len(differing))
+        by_kind[fault.kind].add(len(full), len(missed), share, len(differing))
         print(f"  [{fault.kind}] {fault.path}:{fault.line} {fault.old.strip()!r} -> {fault.new.strip()!r}")
         print(
             f"    suite: {len(full)} failing of {suite_size}; gate ({why}, map {gate.map_status}): ran {ran} "
@@ -658,8 +666,11 @@ def run_library(
         )
         for test in sorted(missed):
             print(f"    MISSED {test}", flush=True)
+        for test in sorted(differing):
+            print(f"    SAME TEST, OTHER OUTCOME (the gate ran it, it passed there) {test}", flush=True)
         results.append(
             {**asdict(fault), "library": requirement, "suite_failing": sorted(full), "missed": sorted(missed)}
+            | {"differing": sorted(differing)}
             | {"gate_failing": sorted(gate.failing), "ran": ran, "suite_size": size, "verdict": gate.verdict}
         )
     return tally, by_kind
@@ -690,10 +701,12 @@ def main() -> None:
                 kinds[kind].failures += counted.failures
                 kinds[kind].missed += counted.missed
                 kinds[kind].shares += counted.shares
+                kinds[kind].differing += counted.differing
             total.faults += tally.faults
             total.failures += tally.failures
             total.missed += tally.missed
             total.shares += tally.shares
+            total.differing += tally.differing
             if arguments.results:
                 arguments.results.write_text(json.dumps(results, indent=1))
     print("\nper library:")
