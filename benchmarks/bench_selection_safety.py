@@ -61,13 +61,15 @@ from bench_gate_overhead import fetch_sdist
 from verifier.demo.scratch import ScratchRepo
 
 # requirement -> (the package's folder, the test folder), both relative to the sdist's root
-# (more-itertools is left out: its unittest subTest()s give several "call" reports per test under pytest 9,
-# which the harness rejects as an incomplete run, so the gate never builds its map there.)
+# Left out: more-itertools (its unittest subTest()s give several "call" reports per test under pytest 9,
+# which the harness rejects as an incomplete run, so the gate never builds its map there) and idna (installed
+# beside verifier, a dependency of requests: the harness puts the tree's folders after the installed packages,
+# so in the namespace sandbox the installed idna shadows the tree's and the setup's modules are not found).
 LIBRARIES = {
     "toolz==1.0.0": ("toolz", "toolz/tests"),
     "cachetools==5.5.0": ("src/cachetools", "tests"),
     "boltons==26.2.0": ("boltons", "tests"),
-    "idna==3.10": ("idna", "tests"),
+    "simplejson==3.19.3": ("simplejson", "simplejson/tests"),
 }
 POLICY = "selection:\n  mode: smart\ncoverage:\n  threshold: 0\nrules:\n  tests.mutant-survived: off\n"
 AGENT = "quill-assist/2.3"
@@ -526,7 +528,10 @@ class GateRun:
         that failed to import (no test of it ran) counts when the gate ran it and did not pass."""
         if failure in self.failing:
             return True
-        ran_file = self.whole_suite or failure.split("::")[0] in self.selected_files
+        path = failure.split("::")[0]
+        ran_file = self.whole_suite or any(
+            f == path or (f.startswith(path) and path.endswith("/")) for f in self.selected_files
+        )
         file_level = "::" not in failure
         return ran_file and (self.verdict == "error" or (file_level and self.verdict == "block"))
 
@@ -588,9 +593,10 @@ def _junit_failures(junit: Path, tree: Path) -> tuple[set[str], int]:
 
 def _node_id(classname: str, name: str, tree: Path) -> str:
     """JUnit's dotted classname back to pytest's node id: the longest prefix that is a file of the tree; a
-    collection error (no classname, the module's dotted name) becomes the test file's path."""
-    if not classname and (tree / (name.replace(".", "/") + ".py")).is_file():
-        return name.replace(".", "/") + ".py"
+    collection error (no classname, the module's dotted name) becomes the test file's or folder's path."""
+    if not classname:  # a test file's path, or a folder's (a conftest.py that fails stops its whole folder)
+        path = name.replace(".", "/")
+        return f"{path}.py" if (tree / f"{path}.py").is_file() else f"{path}/" if (tree / path).is_dir() else name
     parts = classname.split(".")
     for cut in range(len(parts), 0, -1):
         path = "/".join(parts[:cut]) + ".py"
