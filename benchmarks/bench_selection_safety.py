@@ -38,7 +38,8 @@ then per library, per kind and in total the faults, the failures of the whole su
 gate missed (the bar: zero) and the share of the suite (as collected at base) the gate ran.
 
 Usage: python benchmarks/bench_selection_safety.py [--per-kind KIND=N ...] [--results FILE] [requirement ...]
-Needs the network for the downloads (PyPI only). Not run by CI.
+Needs the network for the downloads (PyPI only). Not run by CI. With the defaults (``FAULT_KINDS``, seed 14):
+102 faults, about 10 minutes here with the namespace sandbox (each library's map built once).
 """
 
 from __future__ import annotations
