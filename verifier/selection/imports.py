@@ -3,7 +3,9 @@
 The selection stage's safety net where the who-tests-what map is missing or cannot see a change (a
 module-level line, a file no test executed in-process): the tests that import a changed module directly
 or through other modules. Imports are found anywhere in a file (inside functions too), including
-``importlib.import_module("name")`` and ``__import__("name")`` with a literal name. A name can mean any
+``importlib.import_module("name")`` and ``__import__("name")`` with a literal name; a file that imports a
+name it computes (``import_module(__package__ + "._format_" + name)``, a plugin loader) may import any
+file, so it counts as importing every file of the tree but the test modules pytest loads itself. A name can mean any
 file whose dotted path ends with it, because the folders on ``sys.path`` (the policy's ``python_path``,
 those pytest's ``prepend`` import mode inserts for test files) decide which one Python finds (Python's
 docs, "The import system"; pytest's docs, "pytest import mechanisms and sys.path/PYTHONPATH"): the
@@ -16,6 +18,8 @@ import ast
 import posixpath
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
+
+ANY_FILE = "*"  # the name a computed dynamic import stands for: it may load any file of the tree
 
 
 @dataclass(frozen=True)
@@ -100,8 +104,9 @@ def _names_of(node: ast.AST, path: str) -> list[str]:
         return [package] + [f"{package}.{alias.name}" if package else alias.name for alias in node.names]
     if isinstance(node, ast.Call) and _is_dynamic_import(node.func) and node.args:
         first = node.args[0]
-        if isinstance(first, ast.Constant) and isinstance(first.value, str):
+        if isinstance(first, ast.Constant) and isinstance(first.value, str) and not first.value.startswith("."):
             return [first.value]
+        return [ANY_FILE]  # a computed (or relative) name: the graph cannot tell which file it loads
     return []
 
 
@@ -126,10 +131,19 @@ def _resolve(path: str, names: set[str], index: Mapping[str, set[str]]) -> set[s
     """The files ``names`` can mean, with the packages each one's import runs first."""
     targets: set[str] = set()
     for name in names:
+        if name == ANY_FILE:
+            targets |= {file for files in index.values() for file in files if not _is_test_module(file)}
+            continue
         for candidate in _with_parents(name):
             targets |= index.get(candidate, set())
     targets.discard(path)
     return targets
+
+
+def _is_test_module(path: str) -> bool:
+    """A file pytest loads itself (``test_*.py``, ``*_test.py``, ``conftest.py``): no plugin loader imports it."""
+    name = posixpath.basename(path)
+    return name.startswith("test_") or name.endswith("_test.py") or name == "conftest.py"
 
 
 def _with_parents(name: str) -> list[str]:

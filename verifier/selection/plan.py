@@ -18,7 +18,10 @@ A test is selected when it could behave differently at head than at base:
 * a module-level line of a file it depends on changed (a constant, an import, a decorator, a class
   body, a default argument): every test that executed the file and every test file that imports it,
   directly or through other modules (:mod:`verifier.selection.imports`);
-* it failed at base (so that a selection never hides a failure the whole suite would show).
+* it failed at base (so that a selection never hides a failure the whole suite would show);
+* its test file starts processes (``subprocess``, ``multiprocessing``, ``os.system``, ``sys.executable``
+  ...), itself or through a helper of the test folders it imports, and the change touches Python code:
+  coverage.py measures the test's own process only, so the map cannot see what the child runs.
 
 What the map cannot see runs everything: a change to ``conftest.py``, configuration, fixtures' data or
 any other file the tests may read (the policy's ``selection.whole_suite_paths``, and every non-Python
@@ -55,9 +58,14 @@ MAX_REASONS = 3  # per test, in the report
 
 Importers = Callable[[str, str], set[str]]  # (revision side "base"|"head", path) -> files importing it
 Referrers = Callable[[str], set[str]]  # a name -> the files of the head tree that mention it
+Spawners = Callable[[], set[str]]  # -> the test files of the head tree that start processes
 
 
 def no_referrers(_name: str) -> set[str]:
+    return set()
+
+
+def no_spawners() -> set[str]:
     return set()
 
 
@@ -114,8 +122,15 @@ def select_tests(
     impact, status = obtain_map(git, change.base, policy, backend, say, on_test)
     if impact is None and settings.without_map == "all":
         return whole_suite(f"no who-tests-what map of the base revision ({status})", shard, status), None
+    importers = importers_for(git, change, policy)
     picks = plan(
-        change, impact, base_sources, head_sources, importers_for(git, change, policy), referrers_for(git, change.head)
+        change,
+        impact,
+        base_sources,
+        head_sources,
+        importers,
+        referrers_for(git, change.head),
+        spawners_for(git, change.head, importers),
     )
     selection = to_selection(picks, impact, status, shard)
     if not selection.node_ids and not selection.files:
@@ -222,6 +237,7 @@ def plan(
     head_sources: Mapping[str, str],
     importers: Importers,
     referrers: Referrers = no_referrers,
+    spawners: Spawners = no_spawners,
 ) -> Picks:
     """The tests that can observe ``change``, each with its reasons."""
     picks = Picks()
@@ -236,6 +252,9 @@ def plan(
     if impact is not None:
         failing = [test for test, outcome in impact.outcomes.items() if outcome in ("failed", "error")]
         picks.add_tests(failing, "failed at base")
+    touches_python = any(path.endswith(".py") for f in change.files for path in (f.path, f.old_path or ""))
+    if touches_python and (picks.node_ids or picks.files):  # an empty selection runs every test anyway
+        picks.add_files(spawners(), "starts processes, whose code the map cannot see")
     return picks
 
 
@@ -619,6 +638,62 @@ def referrers_for(git: Git, head: str) -> Referrers:
     return referrers
 
 
+def spawners_for(git: Git, head: str | None, importers: Importers) -> Spawners:
+    """Which test files of ``head`` start processes, themselves or through a helper of the test folders
+    they import (read in one batch of the test side's files, when first asked)."""
+    found: list[set[str]] = []
+
+    def spawners() -> set[str]:
+        if not found:
+            sources = python_sources(git, head, keep=_test_side)
+            starting = {path for path, text in sources.items() if starts_processes(text)}
+            helpers = {test for path in starting - _tests_among(starting) for test in importers("head", path)}
+            found.append(_tests_among(starting | helpers))
+        return found[0]
+
+    return spawners
+
+
+TEST_FOLDERS = frozenset({"test", "tests", "testing"})
+PROCESS_MODULES = frozenset({"subprocess", "multiprocessing", "pty"})
+PROCESS_NAMES = frozenset({"create_subprocess_exec", "create_subprocess_shell", "ProcessPoolExecutor"})
+OS_PROCESS_CALLS = ("system", "popen", "fork", "forkpty", "spawn", "exec", "posix_spawn")
+
+
+def _test_side(path: str) -> bool:
+    """A test file, a ``conftest.py`` or a helper in a test folder: the code that may start the processes."""
+    return is_test_file(path) or path.rpartition("/")[2] == "conftest.py" or bool(TEST_FOLDERS & set(path.split("/")))
+
+
+def starts_processes(source: str) -> bool:
+    """Whether ``source`` may start a process (Python's docs: ``subprocess``, ``multiprocessing``, ``pty``,
+    ``os``'s process functions, ``asyncio``'s subprocesses, ``concurrent.futures.ProcessPoolExecutor``;
+    ``sys.executable``, what a test names to run Python again). Unparsable: assume it does."""
+    try:
+        tree = ast.parse(source)
+    except (SyntaxError, ValueError):
+        return True
+    return any(_starts_a_process(node) for node in ast.walk(tree))
+
+
+def _starts_a_process(node: ast.AST) -> bool:
+    if isinstance(node, ast.Import):
+        return any(alias.name.split(".")[0] in PROCESS_MODULES for alias in node.names)
+    if isinstance(node, ast.ImportFrom):
+        from_process_module = (node.module or "").split(".")[0] in PROCESS_MODULES
+        return from_process_module or any(a.name in PROCESS_NAMES or a.name == "executable" for a in node.names)
+    if isinstance(node, ast.Name):
+        return node.id in PROCESS_NAMES
+    return isinstance(node, ast.Attribute) and (node.attr in PROCESS_NAMES or _os_or_sys_process(node))
+
+
+def _os_or_sys_process(node: ast.Attribute) -> bool:
+    owner = node.value.id if isinstance(node.value, ast.Name) else None
+    if owner == "sys":
+        return node.attr == "executable"
+    return owner == "os" and node.attr.startswith(OS_PROCESS_CALLS)
+
+
 def _cached_graph(git: Git, revision: str | None, build: Callable[[], ImportGraph]) -> ImportGraph:
     """The import graph of a commit's tree, kept beside the who-tests-what maps (keyed by the tree hash,
     safe to delete); the index and the empty tree are read every time."""
@@ -639,8 +714,9 @@ def _cached_graph(git: Git, revision: str | None, build: Callable[[], ImportGrap
     return graph
 
 
-def python_sources(git: Git, revision: str | None) -> dict[str, str]:
-    """Every Python file of ``revision`` (a commit, INDEX, or None for the empty tree), read in one batch."""
+def python_sources(git: Git, revision: str | None, keep: Callable[[str], bool] = lambda _path: True) -> dict[str, str]:
+    """Every Python file of ``revision`` (a commit, INDEX, or None for the empty tree) whose path ``keep``
+    accepts, read in one batch."""
     if revision is None:
         return {}
     if revision == INDEX:
@@ -650,6 +726,6 @@ def python_sources(git: Git, revision: str | None) -> dict[str, str]:
         listing = git.run(["ls-tree", "-r", "-z", "--name-only", revision])
         names = listing.decode("utf-8", "surrogateescape").split("\0")
         prefix = f"{revision}:"
-    python = [name for name in names if name.endswith(".py")]
+    python = [name for name in names if name.endswith(".py") and keep(name)]
     blobs = git.read_blobs([f"{prefix}{name}" for name in python])
     return {name: blobs[f"{prefix}{name}"].decode("utf-8", "replace") for name in python if f"{prefix}{name}" in blobs}
