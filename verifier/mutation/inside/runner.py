@@ -114,6 +114,8 @@ class MutantServer:
         swap = None if mutant.get("scope") is None else find_swap(mutant, source)
         if swap is None:
             return spawn_fresh(self.plan_path, mutant)
+        for item in items:
+            _ = item.location  # worked out once here, not again in every child (a cached property of the item)
         return fork_child(mutant, items, swap)
 
     def report(
