@@ -3,10 +3,11 @@ is not importable there). It is copied into the workspace as a file and started 
 
 ``runner.py PLAN`` collects the tests once in one pytest session, then, instead of running them, tries
 the mutants: for each one it forks a child, which swaps the mutated function's code object (compiled from
-the mutated file's text, found by its qualified name) and runs only that mutant's tests, stopping at the
-first failure. A mutant at module level (or one whose function cannot be swapped) runs in a fresh
-interpreter instead (``runner.py --fresh PLAN ID FD``), which imports the mutated file's text through an
-import hook. Nothing of a mutant is written anywhere: its text lives in memory only.
+the mutated text of the top-level statement that holds it, or of the whole file, found by its qualified
+name) and runs only that mutant's tests, stopping at the first failure; the child reports the outcome
+only, so a failure is not formatted there. A mutant at module level (or one whose function cannot be
+swapped) runs in a fresh interpreter instead (``runner.py --fresh PLAN ID FD``), which imports the mutated
+file's text through an import hook. Nothing of a mutant is written anywhere: its text lives in memory only.
 
 A small pool of children runs at once; each has a time limit (the plan gives it) and is killed with its
 process group when it overruns. Every outcome is one JSON line in the results file, written once at the end
