@@ -99,9 +99,11 @@ def per_mutant_cost(repo: ScratchRepo, sample: int, scratch: Path) -> None:
         mutant_s = statistics.median(p[0] for p in pairs)
         tests_s = statistics.median(p[1] for p in pairs)
         extra = statistics.median(p[0] - p[1] for p in pairs)
+        ratio = statistics.median(p[0] / p[1] for p in pairs) if all(p[1] > 0 for p in pairs) else float("nan")
         print(
             f"  {how}: {len(pairs)} mutants, median per mutant {mutant_s * 1000:.1f} ms, median run time of its "
-            f"tests {tests_s * 1000:.1f} ms, median cost beyond the tests {extra * 1000:.1f} ms"
+            f"tests {tests_s * 1000:.1f} ms, median cost beyond the tests {extra * 1000:.1f} ms, "
+            f"median ratio per mutant {ratio:.2f}x (bar: close to 1x)"
         )
     tried = [o for o in report.mutation.outcomes if o.status not in ("not-run", "error")][:sample]
     agree = sum(1 for o in tried if whole_suite_kills(repo, o.mutant, scratch) == o.counts_as_killed)

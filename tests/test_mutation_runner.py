@@ -4,7 +4,9 @@ timeout, crashed, module-level mutants in a fresh interpreter, decorated functio
 from __future__ import annotations
 
 import hashlib
+import importlib.util
 import json
+import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -291,3 +293,153 @@ def test_runner_imports_without_the_verifier_package(tmp_path: Path) -> None:
     assert done.returncode == 0, done.stderr
     probe = subprocess.run([sys.executable, "-c", block + "import verifier.models"], cwd=tmp_path, capture_output=True)
     assert probe.returncode != 0  # the block works: an import of verifier would have failed above
+
+
+LAYERED = """\
+from __future__ import annotations
+
+import functools
+
+
+def logged(function):
+    @functools.wraps(function)
+    def wrapper(*args):
+        return function(*args)
+
+    return wrapper
+
+
+@logged
+def triple(x):
+    return x * 3
+
+
+class Meter(dict):
+    unit = "kg"
+
+    def total(self, extra: Later = 0):
+        def inner(y: Unknown) -> Missing:
+            return y + 1
+        return inner(super().get("a", 0) + extra)
+
+    @property
+    def reading(self):
+        return [n * 2 for n in range(3) if n > 0]
+
+
+if True:
+    def late(a, b=2):
+        return a - b if a > b else b - a
+"""
+
+
+def _load_runner():  # type: ignore[no-untyped-def]
+    spec = importlib.util.spec_from_file_location("mutant_runner_under_test", stage.RUNNER)
+    assert spec is not None and spec.loader is not None
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def test_one_statement_compiled_alone_gives_the_whole_files_code(tmp_path: Path, monkeypatch) -> None:  # type: ignore[no-untyped-def]
+    """The parent compiles only the top-level statement that holds a mutant (and the file's imports); the
+    reference is Python's own compile of the whole mutated file: code objects compare equal when their
+    bytecode, constants, names, line table and first line are equal (CPython's code object comparison)."""
+    runner = _load_runner()
+    (tmp_path / "layered.py").write_text(LAYERED)
+    monkeypatch.chdir(tmp_path)
+    live: dict = {}
+    exec(compile(LAYERED, "layered.py", "exec", dont_inherit=True), live)
+    mutator = FileMutator(LAYERED, "layered.py")
+    compared = set()
+    for line in range(1, len(mutator.rows) + 1):
+        for proposal in mutator.proposals(line):
+            rendered = mutator.render(proposal)
+            if rendered is None or rendered.scope is None:
+                continue
+            plan = {"path": "layered.py", "line": rendered.line, "end_line": rendered.end_line}
+            plan |= {"original": rendered.original, "mutated": rendered.mutated, "scope": rendered.scope}
+            target = live[rendered.scope.split(".")[0]]
+            for part in rendered.scope.split(".")[1:]:
+                target = getattr(target, part)
+            function = runner._unwrap(target, rendered.scope, str(tmp_path / "layered.py"))
+            source = runner.mutated_source(plan)
+            alone = runner.statement_code(plan, source, "layered.py", function)
+            whole = runner._code_named(compile(source, "layered.py", "exec", dont_inherit=True), rendered.scope)
+            assert alone is not None and alone == whole, (rendered.scope, rendered.mutated)
+            compared.add(rendered.scope)
+    assert compared == {"logged", "triple", "Meter.total", "Meter.reading"}
+
+
+OUTCOMES = """\
+import pytest
+
+from shop import calc
+
+
+@pytest.fixture
+def checked_in_setup():
+    assert calc.double(2) == 4
+    yield
+
+
+@pytest.fixture
+def checked_in_teardown():
+    yield
+    assert calc.double(2) == 4
+
+
+def test_setup_uses_double(checked_in_setup):
+    pass
+
+
+def test_teardown_uses_double(checked_in_teardown):
+    pass
+
+
+def test_skips_when_double_is_off():
+    if calc.double(2) != 4:
+        pytest.skip("double is off")
+
+
+@pytest.mark.xfail(strict=False)
+def test_expected_to_fail_anyway():
+    assert calc.double(2) == 5
+
+
+@pytest.mark.xfail(strict=True)
+def test_strict_expected_failure_that_passes_under_the_mutant():
+    assert calc.double(2) != 4
+
+
+class Unprintable(Exception):
+    def __str__(self):
+        raise RuntimeError("no text for this failure")
+
+
+def test_fails_with_an_exception_that_cannot_be_printed():
+    if calc.double(2) != 4:
+        raise Unprintable()
+"""
+
+
+def test_each_way_of_failing_is_judged_as_pytest_judges_it(tree: Path, tmp_path: Path) -> None:
+    """A child reports only the outcome (the failure is not formatted): for each way a test can end under
+    the mutant (an error in setup or teardown, a skip, an expected failure, a strict expected failure that
+    passes, an exception whose text cannot be made), the outcome must be pytest's own on the mutated tree
+    (exit status 0 when every test passed, skipped or failed as expected: pytest's documented exit codes)."""
+    (tree / "tests" / "test_outcomes.py").write_text(OUTCOMES)
+    wrong_double = mutant("return x * 2", "return x / 2")
+    names = [n.split("(")[0][4:] for n in OUTCOMES.split("\n") if n.startswith("def test_")]
+    tests = [f"tests/test_outcomes.py::{name}" for name in names]
+    records = run(tree, [(wrong_double, (test,)) for test in tests])
+    mutated_tree = tmp_path / "mutated"
+    shutil.copytree(tree, mutated_tree, ignore=shutil.ignore_patterns(stage.WORK_DIR))
+    calc = mutated_tree / "shop" / "calc.py"
+    calc.write_text(CALC.replace("return x * 2", "return x / 2"))
+    expected = []
+    for test in tests:
+        own = subprocess.run([sys.executable, "-m", "pytest", "-q", "-p", "no:cacheprovider", test], cwd=mutated_tree)
+        expected.append("survived" if own.returncode == 0 else "killed")
+    assert [r["status"] for r in records] == expected
+    assert expected == ["killed", "killed", "survived", "survived", "killed", "killed"]  # both kinds are tried

@@ -3,10 +3,11 @@ is not importable there). It is copied into the workspace as a file and started 
 
 ``runner.py PLAN`` collects the tests once in one pytest session, then, instead of running them, tries
 the mutants: for each one it forks a child, which swaps the mutated function's code object (compiled from
-the mutated file's text, found by its qualified name) and runs only that mutant's tests, stopping at the
-first failure. A mutant at module level (or one whose function cannot be swapped) runs in a fresh
-interpreter instead (``runner.py --fresh PLAN ID FD``), which imports the mutated file's text through an
-import hook. Nothing of a mutant is written anywhere: its text lives in memory only.
+the mutated text of the top-level statement that holds it, or of the whole file, found by its qualified
+name) and runs only that mutant's tests, stopping at the first failure; the child reports the outcome
+only, so a failure is not formatted there. A mutant at module level (or one whose function cannot be
+swapped) runs in a fresh interpreter instead (``runner.py --fresh PLAN ID FD``), which imports the mutated
+file's text through an import hook. Nothing of a mutant is written anywhere: its text lives in memory only.
 
 A small pool of children runs at once; each has a time limit (the plan gives it) and is killed with its
 process group when it overruns. Every outcome is one JSON line in the results file, written once at the end
@@ -17,6 +18,7 @@ detect a mutant and fail on purpose is not something a runner can see (the stati
 
 from __future__ import annotations
 
+import ast
 import contextlib
 import gc
 import importlib.abc
@@ -113,6 +115,8 @@ class MutantServer:
         swap = None if mutant.get("scope") is None else find_swap(mutant, source)
         if swap is None:
             return spawn_fresh(self.plan_path, mutant)
+        for item in items:
+            _ = item.location  # worked out once here, not again in every child (a cached property of the item)
         return fork_child(mutant, items, swap)
 
     def report(
@@ -152,20 +156,102 @@ def find_swap(mutant: dict[str, Any], source: str) -> tuple[types.FunctionType, 
     module = _module_of(path)
     if module is None:
         return None
-    try:
-        code = compile(source, module.__file__ or path, "exec", dont_inherit=True)
-    except (SyntaxError, ValueError):
-        return None
-    new = _code_named(code, mutant["scope"])
     target: Any = module
     for part in mutant["scope"].split("."):
         target = getattr(target, part, None)
         if target is None:
             return None
     function = _unwrap(target, mutant["scope"], path)
-    if new is None or function is None or new.co_freevars != function.__code__.co_freevars:
+    if function is None:
+        return None
+    filename = module.__file__ or path
+    try:
+        new = statement_code(mutant, source, filename, function)
+        if new is None:
+            new = _code_named(compile(source, filename, "exec", dont_inherit=True), mutant["scope"])
+    except (SyntaxError, ValueError):
+        return None
+    if new is None or new.co_freevars != function.__code__.co_freevars:
         return None
     return function, new
+
+
+class Layout:
+    """What of a file (as it is on disk) the compile of one of its statements needs: its rows, the lines of
+    each top-level statement (decorators included), and its module-level imports, each rewritten on one line
+    (the compiler emits other code for an attribute of an imported name)."""
+
+    def __init__(self, text: str) -> None:
+        tree = ast.parse(text)
+        self.rows = text.split("\n")
+        self.spans = [
+            (min([n.lineno, *(d.lineno for d in getattr(n, "decorator_list", []))]), n.end_lineno or n.lineno)
+            for n in tree.body
+        ]
+        imports: dict[int, list[str]] = {}
+        pending: list[ast.AST] = list(tree.body)
+        while pending:
+            node = pending.pop()
+            if isinstance(node, (ast.Import, ast.ImportFrom)):
+                imports.setdefault(node.lineno, []).append(ast.unparse(node))
+            elif isinstance(node, ast.stmt) and not isinstance(
+                node, (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef)
+            ):
+                pending.extend(
+                    child for child in ast.iter_child_nodes(node) if isinstance(child, (ast.stmt, ast.excepthandler))
+                )
+            elif isinstance(node, ast.ExceptHandler):
+                pending.extend(node.body)
+        self.imports = {line: "; ".join(reversed(found)) for line, found in imports.items()}
+
+    def statement_text(self, rows: list[str], span: tuple[int, int], grown: int) -> str:
+        """``rows`` (the file's, or the mutated file's with ``grown`` more rows inside ``span``) with only the
+        statement of ``span`` and the imports outside it kept, every other row blank: line numbers stay."""
+        first, last = span
+        text = [""] * len(rows)
+        for line, imports in self.imports.items():
+            if not first <= line <= last:
+                text[(line if line < first else line + grown) - 1] = imports
+        text[first - 1 : last + grown] = rows[first - 1 : last + grown]
+        return "\n".join(text)
+
+
+_LAYOUTS: dict[str, Layout | None] = {}
+_FAITHFUL: dict[tuple[str, tuple[int, int], str], bool] = {}  # (path, statement, scope) -> its compile alone is exact
+
+
+def statement_code(
+    mutant: dict[str, Any], source: str, filename: str, function: types.FunctionType
+) -> types.CodeType | None:
+    """The mutated code of the mutant's scope from a compile of the one top-level statement that holds it
+    (and the file's imports), not of the whole file: a fraction of the time, and the parent compiles once
+    per mutant while the children wait on it. Only where the statement compiled alone from the file on disk
+    gives exactly the live function's code object (CPython compares bytecode, constants, names, line table);
+    None otherwise, and then the whole file is compiled."""
+    path, scope = mutant["path"], mutant["scope"]
+    if path not in _LAYOUTS:
+        try:
+            with open(path, encoding="utf-8", newline="") as handle:
+                _LAYOUTS[path] = Layout(handle.read())
+        except (OSError, SyntaxError, ValueError):
+            _LAYOUTS[path] = None
+    layout = _LAYOUTS[path]
+    span = (
+        next((s for s in layout.spans if s[0] <= mutant["line"] and mutant["end_line"] <= s[1]), None)
+        if layout
+        else None
+    )
+    if layout is None or span is None:
+        return None
+    key = (path, span, scope)
+    if key not in _FAITHFUL:
+        alone = compile(layout.statement_text(layout.rows, span, 0), filename, "exec", dont_inherit=True)
+        _FAITHFUL[key] = _code_named(alone, scope) == function.__code__
+    if not _FAITHFUL[key]:
+        return None
+    grown = mutant["mutated"].count("\n") - (mutant["end_line"] - mutant["line"])
+    text = layout.statement_text(source.split("\n"), span, grown)
+    return _code_named(compile(text, filename, "exec", dont_inherit=True), scope)
 
 
 _MODULES: dict[str, Any] = {}  # real path of a module's file -> the module (built after the collection)
@@ -268,11 +354,25 @@ def run_items(items: list[Any]) -> dict[str, Any]:
     if items:
         items[0].config.pluginmanager.register(watcher, "verifier-mutant-watcher")
     for index, item in enumerate(items):
+        _plain_failures(item)
         nextitem = items[index + 1] if index + 1 < len(items) else None
         reports = runtestprotocol(item, nextitem=nextitem, log=False)
         if watcher.failed or any(report.failed for report in reports):
             return {"status": "killed", "killed_by": item.nodeid}
     return {"status": "survived"}
+
+
+def _plain_failures(item: Any) -> None:
+    """Make a failure of ``item`` cheap to report in this child. pytest settles a report's outcome from the
+    exception before it formats the failure (``TestReport.from_item_and_call``), and a child sends only the
+    outcome; the formatting (the source of every frame looked up and parsed) was most of a killed mutant's
+    time. The item is the child's copy: the parent's stays as it was."""
+
+    def failure_line(excinfo: Any, *_args: Any, **_kwargs: Any) -> str:
+        return f"failed: {getattr(excinfo, 'typename', 'error')}"
+
+    item.repr_failure = failure_line
+    item._repr_failure_py = failure_line
 
 
 def spawn_fresh(plan_path: str, mutant: dict[str, Any]) -> Child:
