@@ -109,7 +109,7 @@ def verify(repo: str | Path, spec: RevisionSpec, options: Options | None = None)
         # static rules (verifier.rules.marks and the rest); there is no machine-written code to run
         return _report(check, findings, notes=("no machine-written lines to verify",))
     check.say(_what_is_judged(provenance))
-    selection, run = options.premade if options.premade is not None else _select_and_run(check)
+    selection, run = _joined(check, options.premade) if options.premade is not None else _select_and_run(check)
     coverage = _coverage(check, run)
     dynamic = RuleContext(
         change, provenance, policy, head_sources, base_sources, run, coverage, waiver_of=waived_by(policy)
@@ -239,6 +239,21 @@ def _select_and_run(check: CheckContext) -> tuple[Selection, RunResult]:
 
         run = with_baseline(check.git, check.change, check.policy, selection, run, backend, impact, check.say)
     return selection, run
+
+
+def _joined(check: CheckContext, premade: tuple[Selection, RunResult]) -> tuple[Selection, RunResult]:
+    """Every part's run, joined: only here is the whole head run known, so the join takes the test census
+    and runs the changed test files' base versions (no part can: each saw its share only)."""
+    selection, run = premade
+    if run.status != "completed" or not _census_wanted(check.policy):
+        return selection, run
+    return selection, _census(check, selection, run, _backend(check), None)
+
+
+def _census_wanted(policy: Policy) -> bool:
+    from verifier.rules.census import REWRITTEN_ID, RULE_ID
+
+    return enabled_anywhere(policy, RULE_ID, "block") or enabled_anywhere(policy, REWRITTEN_ID, "block")
 
 
 def _census(
