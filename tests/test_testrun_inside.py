@@ -220,6 +220,22 @@ def test_a_spread_run_over_workers(tmp_path: Path) -> None:
     assert set(run.coverage["calc/ops.py"].contexts[2]) == {f"tests/test_ops.py::test_{n}" for n in range(6)}
 
 
+def test_a_whole_suite_run_without_a_count_spreads_by_the_tests_in_the_source(tmp_path: Path) -> None:
+    """No map yet (a first check builds it with the whole suite): the test functions counted in the source
+    decide the workers, and the spread run's per-test coverage is as complete as a single process's."""
+    tests = "".join(
+        f"def test_{n}():\n    from calc.ops import half\n    assert half({2 * n}) == {n}\n\n\n" for n in range(60)
+    )
+    files = {"calc/__init__.py": "", "calc/ops.py": "def half(x):\n    return x // 2\n", "tests/test_ops.py": tests}
+    assert harness.estimated_tests(Path("."), frozenset()) == 0
+    run = run_tree(tmp_path, files, judged=("calc/ops.py",), workers=0)
+    assert harness.estimated_tests(tmp_path / "tree", frozenset({"tests/test_ops.py", "calc/ops.py"})) == 60
+    assert (run.status, run.problems, len(run.tests)) == ("completed", (), 60), run.output_tail[-3000:]
+    if (os.cpu_count() or 1) >= 2:
+        assert "gw0" in run.output_tail or "2 workers" in run.output_tail
+    assert set(run.coverage["calc/ops.py"].contexts[2]) == {f"tests/test_ops.py::test_{n}" for n in range(60)}
+
+
 def test_a_judged_file_coverage_cannot_see_is_not_verified(tmp_path: Path) -> None:
     """coverage.py does not look for files whose names it cannot import (a comma, coverage.py's
     find_python_files): a judged file missing from its data is a problem, never covered."""

@@ -143,7 +143,7 @@ def prepare(
         "args": ["-p", plugin, "-p", "no:cacheprovider", "--rootdir=.", "--import-mode=append"],
         "targets": [*policy.pytest_args, *targets],
         "selection": _filter(tree, selection) if not selection.whole_suite or selection.shard else None,
-        "workers": workers_for(policy, selection),
+        "workers": workers_for(policy, selection, estimated_tests(tree, known) if selection.whole_suite else 0),
         "reruns": policy.selection.reruns,
         "measure": True,
         "progress": progress_token,
@@ -253,15 +253,34 @@ def _analyse(tree: Path, path: str, analyse: Any) -> SourceAnalysis | None:
     return analyse(source)
 
 
-def workers_for(policy: Policy, selection: Selection) -> int:
+def workers_for(policy: Policy, selection: Selection, estimate: int = 0) -> int:
     """How many pytest-xdist workers to use: the policy's number, or with ``auto`` (0) one per core but
-    no more than the tests to run repay; with no count known (no map), ``auto`` runs without xdist."""
+    no more than the tests to run repay. The count is the map's when there is one, else ``estimate`` (the
+    test functions of a whole-suite run, counted in the source); with neither, no xdist."""
     if policy.selection.workers:
         return policy.selection.workers
-    if not selection.known_tests:
+    expected = selection.known_tests - selection.left_out if selection.known_tests else estimate
+    if not expected:
         return 1
-    expected = selection.known_tests - selection.left_out
     return max(1, min(os.cpu_count() or 1, expected // TESTS_PER_WORKER))
+
+
+_TEST_FUNCTION = re.compile(rb"^[ \t]*(?:async[ \t]+)?def[ \t]+test", re.MULTILINE)
+
+
+def estimated_tests(tree: Path, files: frozenset[str]) -> int:
+    """The test functions defined in the tree's test modules (pytest's default ``test_*.py`` and
+    ``*_test.py``): enough to tell whether a whole-suite run repays starting workers (parametrized cases
+    and subtests only make it more)."""
+    total = 0
+    for path in files:
+        name = path.rsplit("/", 1)[-1]
+        if name.startswith("test_") or name.endswith("_test.py"):
+            try:
+                total += len(_TEST_FUNCTION.findall((tree / path).read_bytes()[:2_000_000]))
+            except OSError:
+                continue
+    return total
 
 
 def _filter(tree: Path, selection: Selection) -> dict[str, Any]:
