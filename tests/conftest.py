@@ -147,3 +147,25 @@ def run_audit_cli(repo: ScratchRepo | Path, *args: str, env: dict | None = None)
         env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin", **(env or {})},
         check=False,
     )
+
+
+def run_in_parts(repo: ScratchRepo, spec: str, folder: Path, parts: int = 2) -> tuple[int, dict, list[Outcome]]:
+    """``verifier check SPEC --part K/N`` for every K (real processes, JSON reports in ``folder``), then
+    ``verifier join`` of those reports; return join's exit code, its JSON report and each part's outcome."""
+    outcomes, files = [], []
+    for k in range(1, parts + 1):
+        part = run_check(repo, spec, "--part", f"{k}/{parts}")
+        assert part.report is not None, part.stderr
+        outcomes.append(part)
+        files.append(folder / f"part-{k}.json")
+        files[-1].write_text(json.dumps(part.report))
+    joined = folder / "joined.json"
+    command = [sys.executable, "-m", "verifier", "-C", str(repo.path), "join", *map(str, files)]
+    done = subprocess.run(
+        [*command, "--format", "json", "--output", str(joined)],
+        capture_output=True,
+        text=True,
+        env={**os.environ, "PYTHONPATH": str(ROOT)},
+    )
+    assert joined.exists(), done.stderr
+    return done.returncode, json.loads(joined.read_text()), outcomes

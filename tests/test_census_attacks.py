@@ -10,14 +10,10 @@ and ``pytest.importorskip``); ``__test__ = False`` is from memory of pytest's co
 
 from __future__ import annotations
 
-import json
-import os
-import subprocess
-import sys
 from pathlib import Path
 
 import pytest
-from conftest import ROOT, Outcome, machine, run_check
+from conftest import Outcome, machine, run_check, run_in_parts
 
 from verifier.demo.scratch import ScratchRepo
 
@@ -221,31 +217,13 @@ def test_a_census_that_cannot_be_taken_fails_closed(repo: ScratchRepo) -> None:
     assert out.code == 3
 
 
-def checked_in_parts(repo: ScratchRepo, sha: str, folder: Path) -> tuple[int, dict]:
-    """``check --part 1/2`` and ``2/2`` (each exits 4: no verdict of its own), then ``join`` of both."""
-    files = []
-    for k in (1, 2):
-        part = run_check(repo, sha, "--part", f"{k}/2")
-        assert part.code == 4 and part.report is not None, part.stderr
-        files.append(folder / f"part-{k}.json")
-        files[-1].write_text(json.dumps(part.report))
-    joined = folder / "joined.json"
-    command = [sys.executable, "-m", "verifier", "-C", str(repo.path), "join", *map(str, files)]
-    done = subprocess.run(
-        [*command, "--format", "json", "--output", str(joined)],
-        capture_output=True,
-        text=True,
-        env={**os.environ, "PYTHONPATH": str(ROOT)},
-    )
-    return done.returncode, json.loads(joined.read_text())
-
-
 def test_a_lost_test_blocks_when_the_tests_run_in_parts(repo: ScratchRepo, tmp_path: Path) -> None:
     """No part sees the whole head run, so the join takes the census: a module-level skip still blocks."""
     start(repo)
     files, _removed, expected, _why = ATTACKS["module-level skip"]
     sha = repo.commit(machine("Tidy the tests, in parts"), files)
-    code, report = checked_in_parts(repo, sha, tmp_path)
+    code, report, parts = run_in_parts(repo, sha, tmp_path)
+    assert [part.code for part in parts] == [4, 4]  # a part has no verdict of its own
     found = sorted(f["message"].split(" ", 1)[0] for f in report["findings"] if f["rule"] == "tests.lost")
     assert (code, found) == (1, expected), report["findings"]
 
@@ -256,5 +234,6 @@ def test_an_honest_change_checked_in_parts_passes(repo: ScratchRepo, tmp_path: P
         machine("Name the factor"),
         {"parcelkit/rates.py": "FACTOR = 2\n\n\ndef rate(weight):\n    return weight * FACTOR\n"},
     )
-    code, report = checked_in_parts(repo, sha, tmp_path)
+    code, report, parts = run_in_parts(repo, sha, tmp_path)
+    assert [part.code for part in parts] == [4, 4]  # a part has no verdict of its own
     assert (code, report["verdict"]) == (0, "pass"), report["findings"]

@@ -9,12 +9,11 @@ replacement still passes pytest's own run; a killed one fails it).
 from __future__ import annotations
 
 import json
-import os
 import subprocess
 import sys
 from pathlib import Path
 
-from conftest import ROOT, Outcome, machine, run_check, snapshot
+from conftest import Outcome, machine, run_check, run_in_parts, snapshot
 
 from verifier.demo.scratch import ScratchRepo
 
@@ -207,27 +206,14 @@ def test_parts_split_the_mutants_and_their_joined_reports_give_the_outcome_of_on
         {"shop/price.py": PRICE, "tests/test_price.py": STRONG, "tests/test_price_weak.py": WEAK},
     )
     whole = run_check(repo, "HEAD")
-    files = []
-    for k in (1, 2):
-        shard = run_check(repo, "HEAD", "--part", f"{k}/2")
-        assert shard.code == 4  # a part has no verdict of its own
-        files.append(tmp_path / f"part-{k}.json")
-        files[-1].write_text(json.dumps(report_of(shard)))
-    merged_file = tmp_path / "merged.json"
-    merge = [sys.executable, "-m", "verifier", "-C", str(repo.path), "join", *map(str, files)]
-    done = subprocess.run(
-        [*merge, "--format", "json", "--output", str(merged_file)],
-        capture_output=True,
-        text=True,
-        env={**os.environ, "PYTHONPATH": str(ROOT)},
-    )
-    merged = json.loads(merged_file.read_text())
+    code, merged, parts = run_in_parts(repo, "HEAD", tmp_path)
+    assert [part.code for part in parts] == [4, 4]  # a part has no verdict of its own
 
     def outcomes(report: dict) -> list[tuple]:
         return [(m["line"], m["mutated"], m["status"] == "survived", sorted(m["tests"])) for m in report["mutants"]]
 
     assert outcomes(merged) == outcomes(report_of(whole))
-    assert (done.returncode, merged["verdict"]) == (whole.code, report_of(whole)["verdict"])
+    assert (code, merged["verdict"]) == (whole.code, report_of(whole)["verdict"])
     assert merged["mutation"]["score"] == report_of(whole)["mutation"]["score"]
 
 

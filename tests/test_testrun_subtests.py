@@ -12,7 +12,7 @@ pytest's own call report for that test says passed.
 from __future__ import annotations
 
 import pytest
-from conftest import machine, run_check
+from conftest import Outcome, machine, run_check
 
 from verifier.demo.scratch import ScratchRepo
 
@@ -37,31 +37,29 @@ BASE = {
 }
 
 
-def policy(workers: int) -> str:
-    return f"version: 1\nselection:\n  workers: {workers}\n"
+def check_half(repo: ScratchRepo, half: str, style: str, workers: int) -> Outcome:
+    """A machine commit adding ``half`` and its subtests (in ``style``), checked with ``workers`` xdist workers."""
+    repo.commit("Start parcelkit", {**BASE, "verifier.yaml": f"version: 1\nselection:\n  workers: {workers}\n"})
+    test = UNITTEST if style == "unittest" else FIXTURE
+    repo.commit(machine("Add half"), {"parcelkit/half.py": half, "tests/test_half.py": test})
+    out = run_check(repo, "HEAD~1..HEAD")
+    assert out.report is not None, out.stderr
+    return out
 
 
 @pytest.mark.parametrize("workers", [1, 2])
 @pytest.mark.parametrize("style", ["unittest", "fixture"])
 def test_a_change_tested_with_subtests_passes(repo: ScratchRepo, style: str, workers: int) -> None:
-    repo.commit("Start parcelkit", {**BASE, "verifier.yaml": policy(workers)})
-    test = UNITTEST if style == "unittest" else FIXTURE
-    repo.commit(machine("Add half"), {"parcelkit/half.py": HALF, "tests/test_half.py": test})
-    out = run_check(repo, "HEAD~1..HEAD")
-    assert out.report is not None, out.stderr
-    assert out.code == 0 and out.report["findings"] == [], out.report["findings"]
-    assert out.report["mutation"]["survived"] == 0 and out.report["mutation"]["killed"] > 0
+    out = check_half(repo, HALF, style, workers)
+    report = out.report
+    assert report is not None and (out.code, report["findings"]) == (0, []), out.stdout
+    assert report["mutation"]["survived"] == 0 and report["mutation"]["killed"] > 0
 
 
 @pytest.mark.parametrize("workers", [1, 2])
 @pytest.mark.parametrize("style", ["unittest", "fixture"])
 def test_a_change_that_breaks_one_subtest_blocks(repo: ScratchRepo, style: str, workers: int) -> None:
-    repo.commit("Start parcelkit", {**BASE, "verifier.yaml": policy(workers)})
-    test = UNITTEST if style == "unittest" else FIXTURE
-    repo.commit(machine("Add half"), {"parcelkit/half.py": WRONG_HALF, "tests/test_half.py": test})
-    out = run_check(repo, "HEAD~1..HEAD")
-    assert out.report is not None, out.stderr
-    assert out.report["tests"]["failed_ids"] == [
-        "tests/test_half.py::" + ("HalfTest::" if style == "unittest" else "") + "test_half"
-    ]
-    assert out.code == 1, out.stdout
+    out = check_half(repo, WRONG_HALF, style, workers)
+    assert out.report is not None
+    test = "tests/test_half.py::" + ("HalfTest::" if style == "unittest" else "") + "test_half"
+    assert (out.report["tests"]["failed_ids"], out.code) == ([test], 1), out.stdout
