@@ -169,3 +169,19 @@ def run_in_parts(repo: ScratchRepo, spec: str, folder: Path, parts: int = 2) -> 
     )
     assert joined.exists(), done.stderr
     return done.returncode, json.loads(joined.read_text()), outcomes
+
+
+def report_of(outcome: Outcome) -> dict:
+    """The JSON report of a check, which must have written one."""
+    assert outcome.report is not None, outcome.stdout + outcome.stderr
+    return outcome.report
+
+
+def ran(outcome: Outcome) -> set[str]:
+    """The node ids of the tests a check ran at head."""
+    return {test["node_id"] for test in report_of(outcome)["tests"]["outcomes"]}
+
+
+def failed(outcome: Outcome) -> set[str]:
+    """The node ids of the tests that failed (or errored) in a check's run at head."""
+    return {t["node_id"] for t in report_of(outcome)["tests"]["outcomes"] if t["outcome"] in ("failed", "error")}

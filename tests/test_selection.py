@@ -10,7 +10,7 @@ import json
 import subprocess
 import sys
 
-from conftest import ROOT, machine, run_check
+from conftest import ROOT, machine, ran, run_check
 
 from verifier.demo.scratch import ScratchRepo
 
@@ -56,10 +56,6 @@ def library(repo: ScratchRepo, policy: str = OBSERVED, extra: dict[str, str] | N
 
 def change_heavy_branch(repo: ScratchRepo, new: str = "BASE + 1 + 1") -> None:
     repo.commit(machine("Spell out the heavy surcharge"), {"src/parcelkit/rates.py": RATES.replace("BASE + 2", new)})
-
-
-def ran(outcome) -> set[str]:  # type: ignore[no-untyped-def]
-    return {test["node_id"] for test in outcome.report["tests"]["outcomes"]}
 
 
 def test_selection_runs_exactly_the_tests_that_executed_the_changed_function_and_caches_the_map(repo):

@@ -16,7 +16,7 @@ selection still leaves unrelated tests out).
 
 from __future__ import annotations
 
-from conftest import Outcome, machine, run_check
+from conftest import failed, machine, ran, report_of, run_check
 
 from verifier.demo.scratch import ScratchRepo
 from verifier.selection.imports import build_graph
@@ -71,32 +71,19 @@ def library(repo: ScratchRepo) -> None:
     repo.commit("parcelkit carriers, command line and rates", LIBRARY)
 
 
-def report(outcome: Outcome) -> dict:
-    assert outcome.report is not None, outcome.stdout + outcome.stderr
-    return outcome.report
-
-
-def ran(outcome: Outcome) -> set[str]:
-    return {test["node_id"] for test in report(outcome)["tests"]["outcomes"]}
-
-
-def failed(outcome: Outcome) -> set[str]:
-    return {t["node_id"] for t in report(outcome)["tests"]["outcomes"] if t["outcome"] in ("failed", "error")}
-
-
 def test_a_constant_of_a_module_loaded_by_a_computed_name_cannot_escape_the_test_that_reads_it(repo):
     library(repo)
     honest = CARRIER.replace("MAX_KG = 30", "MAX_KG = 15 * 2")
     repo.commit(machine("Spell out the weight limit"), {"src/parcelkit/carrier_swift.py": honest})
     out = run_check(repo, "HEAD")
     assert out.code == 0, out.stdout + out.stderr
-    assert report(out)["selection"]["whole_suite"] is False
+    assert report_of(out)["selection"]["whole_suite"] is False
     assert {QUOTE, LIMIT} <= ran(out) and not {LIGHT, HEAVY} & ran(out)
 
     wrong = CARRIER.replace("MAX_KG = 30", "MAX_KG = 25")
     repo.commit(machine("Lower the weight limit"), {"src/parcelkit/carrier_swift.py": wrong})
     out = run_check(repo, "HEAD")
-    assert "tests/test_carriers.py" in report(out)["selection"]["selected"]  # an importer of every file
+    assert "tests/test_carriers.py" in report_of(out)["selection"]["selected"]  # an importer of every file
     assert failed(out) == {LIMIT}
     assert out.code == 1
 
@@ -107,7 +94,7 @@ def test_code_a_test_runs_in_a_subprocess_cannot_escape_that_test(repo):
     repo.commit(machine("Heavy from eleven kilos"), {"src/parcelkit/rates.py": honest})
     out = run_check(repo, "HEAD")
     assert out.code == 0, out.stdout + out.stderr
-    selection = report(out)["selection"]
+    selection = report_of(out)["selection"]
     assert "starts processes, whose code the map cannot see" in selection["selected"]["tests/test_cli.py"]
     assert ran(out) == {LIGHT, HEAVY, MAIN, COMMAND}  # the carriers' tests stay out
 

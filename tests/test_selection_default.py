@@ -8,7 +8,7 @@ function reached only dynamically, a fixture, a data file): it must end with exi
 
 from __future__ import annotations
 
-from conftest import Outcome, machine, run_check
+from conftest import failed, machine, ran, report_of, run_check
 
 from verifier.demo.scratch import ScratchRepo
 
@@ -77,26 +77,13 @@ def library(repo: ScratchRepo) -> None:
     repo.commit("parcelkit rates, tariffs and zones", LIBRARY)
 
 
-def report(outcome: Outcome) -> dict:
-    assert outcome.report is not None, outcome.stdout + outcome.stderr
-    return outcome.report
-
-
-def ran(outcome: Outcome) -> set[str]:
-    return {test["node_id"] for test in report(outcome)["tests"]["outcomes"]}
-
-
-def failed(outcome: Outcome) -> set[str]:
-    return {t["node_id"] for t in report(outcome)["tests"]["outcomes"] if t["outcome"] in ("failed", "error")}
-
-
 def test_the_default_policy_runs_only_the_tests_of_the_changed_function_and_a_wrong_change_still_fails(repo):
     library(repo)
     honest = RATES.replace('return 3 if zone == "remote" else 0', 'return 3 if zone in ("remote",) else 0')
     repo.commit(machine("Zones as a tuple"), {"src/parcelkit/rates.py": honest})
     out = run_check(repo, "HEAD")
     assert out.code == 0, out.stdout + out.stderr
-    selection = report(out)["selection"]
+    selection = report_of(out)["selection"]
     assert selection["whole_suite"] is False and selection["map"] == "built"
     assert set(selection["selected"]) == {REMOTE}  # only test_remote calls surcharge()
     assert ran(out) == {REMOTE}
@@ -106,9 +93,9 @@ def test_the_default_policy_runs_only_the_tests_of_the_changed_function_and_a_wr
     wrong = RATES.replace('return 3 if zone == "remote" else 0', 'return 4 if zone == "remote" else 0')
     repo.commit(machine("Remote zones cost four"), {"src/parcelkit/rates.py": wrong})
     out = run_check(repo, "HEAD")
-    assert report(out)["selection"]["map"] == "updated"  # a new base, one commit past the mapped one
+    assert report_of(out)["selection"]["map"] == "updated"  # a new base, one commit past the mapped one
     assert ran(out) == {REMOTE} and failed(out) == {REMOTE}
-    assert out.code == 1 and report(out)["verdict"] == "block"
+    assert out.code == 1 and report_of(out)["verdict"] == "block"
 
 
 def test_adding_a_method_selects_the_tests_of_its_class_not_every_importer(repo):
@@ -125,7 +112,7 @@ def test_adding_a_method_selects_the_tests_of_its_class_not_every_importer(repo)
     )
     out = run_check(repo, "HEAD")
     assert out.code == 0, out.stdout + out.stderr
-    selected = report(out)["selection"]["selected"]
+    selected = report_of(out)["selection"]["selected"]
     # test_price and test_describe ran Tariff's methods; test_limits.py is new; nothing else can reach the method
     assert set(selected) == {PRICE, DESCRIBE, "tests/test_limits.py"}
     assert selected[PRICE] == ["ran parcelkit.rates.Tariff, which gets the new method weight_limit"]
@@ -139,7 +126,7 @@ def test_a_module_level_change_is_reported_in_groups_not_one_line_per_test(repo)
     )
     out = run_check(repo, "HEAD")
     assert out.code == 0, out.stdout + out.stderr
-    selected = report(out)["selection"]["selected"]
+    selected = report_of(out)["selection"]["selected"]
     assert set(MANY) <= set(selected)  # the JSON report keeps every test and its reasons
     assert "tests: ran parcelkit.rates, whose module-level code changes" in out.stdout
     assert "test_many[" not in out.stdout  # the text report does not list the tests one by one
@@ -154,7 +141,7 @@ def test_a_fixture_change_in_conftest_runs_every_test_and_is_caught(repo):
         {"tests/conftest.py": "import pytest\n\n\n@pytest.fixture\ndef heavy_weight():\n    return 9\n"},
     )
     out = run_check(repo, "HEAD")
-    selection = report(out)["selection"]
+    selection = report_of(out)["selection"]
     assert selection["whole_suite"] is True and "tests/conftest.py" in selection["reason"]
     assert ran(out) == EVERY_TEST
     assert failed(out) == {HEAVY}  # base_rate(9) == 4, not 6
@@ -165,7 +152,7 @@ def test_a_data_file_a_test_reads_runs_every_test_and_is_caught(repo):
     library(repo)
     repo.commit(machine("Remote zones in the table"), {"tests/data/zones.json": '{"remote": 5}\n'})
     out = run_check(repo, "HEAD")
-    selection = report(out)["selection"]
+    selection = report_of(out)["selection"]
     assert selection["whole_suite"] is True and "tests/data/zones.json" in selection["reason"]
     assert failed(out) == {ZONES}
     assert out.code == 1
@@ -177,9 +164,9 @@ def test_a_function_reached_only_through_getattr_cannot_escape_its_test(repo):
     library(repo)
     repo.commit(machine("Totals round up"), {"src/parcelkit/hidden.py": HIDDEN.replace("a + b", "a + b + 1")})
     out = run_check(repo, "HEAD")
-    assert set(report(out)["selection"]["selected"]) == {HIDDEN_TEST}
+    assert set(report_of(out)["selection"]["selected"]) == {HIDDEN_TEST}
     assert failed(out) == {HIDDEN_TEST}
-    assert out.code == 1 and report(out)["verdict"] == "block"
+    assert out.code == 1 and report_of(out)["verdict"] == "block"
 
 
 def test_a_new_method_an_existing_getattr_picks_up_cannot_escape_the_tests_of_that_code(repo):
@@ -195,7 +182,7 @@ def test_a_new_method_an_existing_getattr_picks_up_cannot_escape_the_tests_of_th
     )
     repo.commit(machine("A discount of one"), {"src/parcelkit/rates.py": head})
     out = run_check(repo, "HEAD")
-    assert DESCRIBE in report(out)["selection"]["selected"]
+    assert DESCRIBE in report_of(out)["selection"]["selected"]
     assert failed(out) == {DESCRIBE}  # "2/kg less 1" != "2/kg"
     assert out.code == 1
 
@@ -205,9 +192,9 @@ def test_all_tests_and_the_policy_still_ask_for_every_test(repo):
     honest = RATES.replace('return 3 if zone == "remote" else 0', 'return 3 if zone in ("remote",) else 0')
     repo.commit(machine("Zones as a tuple"), {"src/parcelkit/rates.py": honest})
     out = run_check(repo, "HEAD", "--all-tests")
-    assert out.code == 0 and report(out)["selection"]["whole_suite"] is True and ran(out) == EVERY_TEST
+    assert out.code == 0 and report_of(out)["selection"]["whole_suite"] is True and ran(out) == EVERY_TEST
     repo.commit("Every test on every check", {"verifier.yaml": "selection:\n  run: all\n"})
     repo.commit(machine("Zones as a list"), {"src/parcelkit/rates.py": honest.replace('("remote",)', '["remote"]')})
     out = run_check(repo, "HEAD")
-    assert out.code == 0 and "selection.run is 'all'" in report(out)["selection"]["reason"]
+    assert out.code == 0 and "selection.run is 'all'" in report_of(out)["selection"]["reason"]
     assert ran(out) == EVERY_TEST
