@@ -6,8 +6,8 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
-from conftest import machine, run_check
-from test_selection_default import DESCRIBE, HIDDEN_TEST, LIBRARY, PRICE, RATES, REMOTE, report
+from conftest import machine, report_of, run_check
+from test_selection_default import DESCRIBE, HIDDEN_TEST, LIBRARY, PRICE, RATES, REMOTE
 
 from verifier.demo.scratch import ScratchRepo
 from verifier.models import FileChange
@@ -50,7 +50,7 @@ def test_a_map_updated_after_a_few_base_commits_equals_a_fresh_build(repo):
     repo.commit("parcelkit", LIBRARY)
     repo.commit(machine("Zones as a tuple"), {"src/parcelkit/rates.py": RATES.replace('== "remote"', 'in ("remote",)')})
     first = run_check(repo, "HEAD")
-    assert first.code == 0 and report(first)["selection"]["map"] == "built", first.stdout + first.stderr
+    assert first.code == 0 and report_of(first)["selection"]["map"] == "built", first.stdout + first.stderr
 
     # The base moves on: a person changes price() (lines shift below it), adds a test file, changes the hidden module.
     moved = RATES.replace(
@@ -72,8 +72,8 @@ def test_a_map_updated_after_a_few_base_commits_equals_a_fresh_build(repo):
     )
     second = run_check(repo, "HEAD")
     assert second.code == 0, second.stdout + second.stderr
-    assert report(second)["selection"]["map"] == "updated"
-    assert set(report(second)["selection"]["selected"]) == {REMOTE}
+    assert report_of(second)["selection"]["map"] == "updated"
+    assert set(report_of(second)["selection"]["selected"]) == {REMOTE}
     base_tree = repo.git("rev-parse", "HEAD~1^{tree}").strip()
     updated_file = next(path for path in maps(repo) if path.name.startswith(base_tree))
     updated = records_of(updated_file)
@@ -82,7 +82,7 @@ def test_a_map_updated_after_a_few_base_commits_equals_a_fresh_build(repo):
     for older in maps(repo):
         older.unlink()
     third = run_check(repo, "HEAD")
-    assert report(third)["selection"]["map"] == "built"
+    assert report_of(third)["selection"]["map"] == "built"
     built = records_of(next(path for path in maps(repo) if path.name.startswith(base_tree)))
     assert updated == built
     assert "tests/test_heavier.py::test_heavier" in updated["outcomes"]
