@@ -19,47 +19,38 @@ from collections.abc import Callable, Mapping
 from pathlib import PurePosixPath
 
 from verifier.pathglob import matches_any
+from verifier.rules.weakened import pytest_collects_file, read_module
 
 IsTestCode = Callable[[str], bool]
 
 
 def classify_test_code(patterns: tuple[str, ...], sources: Mapping[str, str]) -> IsTestCode:
-    """A predicate: is this repository path test code (kept out of coverage and mutants)?"""
+    """A predicate: is this repository path test code (kept out of coverage and mutants)? Each path is
+    decided once per check (the coverage summary and the mutation stage both ask)."""
+    decided: dict[str, bool] = {}
 
     def is_test_code(path: str) -> bool:
-        if not matches_any(path, patterns):
-            return False
-        name = PurePosixPath(path).name
-        if name == "conftest.py" or not _test_module_name(name):
-            return True
-        return path not in sources or defines_tests(sources[path])
+        if path not in decided:
+            decided[path] = _is_test_code(path, patterns, sources)
+        return decided[path]
 
     return is_test_code
 
 
+def _is_test_code(path: str, patterns: tuple[str, ...], sources: Mapping[str, str]) -> bool:
+    if not matches_any(path, patterns):
+        return False
+    if PurePosixPath(path).name == "conftest.py" or not pytest_collects_file(path):
+        return True
+    return path not in sources or defines_tests(sources[path])
+
+
 def defines_tests(source: str) -> bool:
-    """Whether pytest's default rules would collect a test from this module's top level."""
+    """Whether pytest would collect a test from this module, as the weakened-tests rule reads a test module
+    (:func:`verifier.rules.weakened.read_module`: ``test`` functions, ``Test`` classes without ``__init__``,
+    ``unittest.TestCase`` subclasses, ``__test__ = False`` honoured)."""
     try:
         tree = ast.parse(source)
     except (SyntaxError, ValueError):
         return True  # pytest reports it as a collection error, which fails the run
-    for node in tree.body:
-        if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef)) and node.name.startswith("test"):
-            return True
-        if isinstance(node, ast.ClassDef) and (node.name.startswith("Test") or _test_case_subclass(node)):
-            return True
-    return False
-
-
-def _test_case_subclass(node: ast.ClassDef) -> bool:
-    """A class deriving from a ``...TestCase`` (unittest's and its kin): pytest collects it whatever its name."""
-    for base in node.bases:
-        name = base.attr if isinstance(base, ast.Attribute) else base.id if isinstance(base, ast.Name) else ""
-        if name.endswith("TestCase"):
-            return True
-    return False
-
-
-def _test_module_name(name: str) -> bool:
-    """pytest's default ``python_files`` (``test_*.py``, ``*_test.py``; pytest's documentation)."""
-    return name.endswith(".py") and (name.startswith("test_") or name.endswith("_test.py"))
+    return any(not function.uncollected for function in read_module(tree).functions.values())
