@@ -1,11 +1,13 @@
 """Path globs as the policy and the scope trailer write them (``*``, ``**``, ``?``, ``dir/``).
 
 The pattern compiler lives with the trailer parser (it is on the commit hook's fast path); this module
-gives the other stages one matcher for a list of globs, compiled once into a single regex.
+gives the other stages one matcher for a list of globs, compiled once into a single regex, and the one
+test of pytest's default test file names.
 """
 
 from __future__ import annotations
 
+import fnmatch
 import functools
 import re
 from collections.abc import Callable, Iterable
@@ -38,3 +40,13 @@ def glob_matcher(globs: tuple[str, ...]) -> Callable[[str], bool]:
         return lambda _path: False
     combined = re.compile("|".join(parts), re.DOTALL)
     return lambda path: combined.fullmatch(path) is not None
+
+
+# pytest's default ``python_files`` (pytest's documentation, "Conventions for Python test discovery")
+PYTEST_FILES = ("test_*.py", "*_test.py")
+
+
+def pytest_collects_file(path: str) -> bool:
+    """Whether pytest's default file pattern matches ``path`` (it matches the base name)."""
+    name = path.rsplit("/", 1)[-1]
+    return any(fnmatch.fnmatchcase(name, pattern) for pattern in PYTEST_FILES)

@@ -15,9 +15,10 @@ import ast
 from collections.abc import Iterator, Mapping
 
 from verifier.models import Finding, RunResult, TestOutcome
+from verifier.pathglob import PYTEST_FILES, pytest_collects_file
 from verifier.rules import RuleContext, rule
 from verifier.rules.tests import _gist
-from verifier.rules.weakened import PYTEST_FILES, TestModule, pytest_collects_file, read_module
+from verifier.rules.weakened import TestModule, read_module
 
 RULE_ID = "tests.lost"
 

@@ -5,8 +5,8 @@ from __future__ import annotations
 from collections.abc import Iterator
 
 from verifier.models import INDEX, RUN_STATUS_TEXT, Finding
+from verifier.pathglob import PYTEST_FILES
 from verifier.rules import RuleContext, rule
-from verifier.rules.weakened import PYTEST_FILES
 from verifier.testrun.differential import classify
 from verifier.words import counted
 

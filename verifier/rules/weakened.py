@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import ast
 import builtins
-import fnmatch
 import functools
 import weakref
 from collections import Counter, deque
@@ -18,6 +17,7 @@ from dataclasses import dataclass, field
 
 from verifier.astnames import Names, canonical, is_literal, module_index, module_names, resolve, span, walk
 from verifier.models import FileChange, Finding
+from verifier.pathglob import PYTEST_FILES, pytest_collects_file
 from verifier.rules import RuleContext, rule
 from verifier.rules.machine import base_text, glob_matcher, head_text, machine_lines, machine_removed, option
 from verifier.rules.testbody import RAISES_CALLS, Check, assertion_helpers, called_names, check_reads, checks_of
@@ -45,15 +45,6 @@ SKIP_EXCEPTIONS = frozenset(
 
 
 # pytest's default ``python_files`` (pytest documentation, "Conventions for Python test discovery").
-PYTEST_FILES = ("test_*.py", "*_test.py")
-
-
-def pytest_collects_file(path: str) -> bool:
-    """Whether pytest's default file pattern matches ``path`` (it matches the base name)."""
-    name = path.rsplit("/", 1)[-1]
-    return any(fnmatch.fnmatchcase(name, pattern) for pattern in PYTEST_FILES)
-
-
 _UNSET = object()
 _IGNORED_FIELDS = ("ctx", "kind", "type_comment")
 

@@ -19,6 +19,8 @@ import posixpath
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 
+from verifier.pathglob import pytest_collects_file
+
 ANY_FILE = "*"  # the name a computed dynamic import stands for: it may load any file of the tree
 
 
@@ -142,8 +144,7 @@ def _resolve(path: str, names: set[str], index: Mapping[str, set[str]]) -> set[s
 
 def _is_test_module(path: str) -> bool:
     """A file pytest loads itself (``test_*.py``, ``*_test.py``, ``conftest.py``): no plugin loader imports it."""
-    name = posixpath.basename(path)
-    return name.startswith("test_") or name.endswith("_test.py") or name == "conftest.py"
+    return pytest_collects_file(path) or posixpath.basename(path) == "conftest.py"
 
 
 def _with_parents(name: str) -> list[str]:

@@ -21,8 +21,9 @@ from typing import TYPE_CHECKING
 
 from verifier import cache
 from verifier.models import Change, Policy, RunResult, Selection
+from verifier.pathglob import pytest_collects_file
 from verifier.rules.machine import glob_matcher
-from verifier.rules.weakened import DEFAULT_TEST_GLOBS, pytest_collects_file
+from verifier.rules.weakened import DEFAULT_TEST_GLOBS
 from verifier.selection import impactmap
 from verifier.selection.impactmap import ImpactMap
 

@@ -38,6 +38,7 @@ from verifier.models import (
     TestOutcome,
     TestProgress,
 )
+from verifier.pathglob import pytest_collects_file
 from verifier.testrun import integrity
 
 if TYPE_CHECKING:
@@ -273,13 +274,11 @@ def estimated_tests(tree: Path, files: frozenset[str]) -> int:
     ``*_test.py``): enough to tell whether a whole-suite run repays starting workers (parametrized cases
     and subtests only make it more)."""
     total = 0
-    for path in files:
-        name = path.rsplit("/", 1)[-1]
-        if name.startswith("test_") or name.endswith("_test.py"):
-            try:
-                total += len(_TEST_FUNCTION.findall((tree / path).read_bytes()[:2_000_000]))
-            except OSError:
-                continue
+    for path in filter(pytest_collects_file, files):
+        try:
+            total += len(_TEST_FUNCTION.findall((tree / path).read_bytes()[:2_000_000]))
+        except OSError:
+            continue
     return total
 
 

@@ -18,8 +18,8 @@ import ast
 from collections.abc import Callable, Mapping
 from pathlib import PurePosixPath
 
-from verifier.pathglob import matches_any
-from verifier.rules.weakened import pytest_collects_file, read_module
+from verifier.pathglob import matches_any, pytest_collects_file
+from verifier.rules.weakened import read_module
 
 IsTestCode = Callable[[str], bool]
 
