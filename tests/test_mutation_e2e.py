@@ -245,3 +245,32 @@ def test_a_new_test_that_passes_at_base_too_is_reported(repo: ScratchRepo) -> No
     [finding] = [f for f in report["findings"] if f["rule"] == "tests.passes-at-base"]
     assert finding["severity"] == "info" and "test_members_still_get_ten_percent" in finding["message"]
     assert out.code == 0, out.stdout  # info by default; the line's mutants are all killed
+
+
+NEW_UNITTEST = """\
+import unittest
+
+from shop.price import discount
+
+
+class DiscountCheck(unittest.TestCase):  # pytest collects a unittest case whatever its name
+    def test_members_still_get_ten_percent(self):
+        self.assertEqual(discount(200, True), 20)
+
+    def test_others_get_four_percent(self):
+        self.assertEqual(discount(200, False), 8)
+"""
+
+
+def test_a_new_unittest_case_that_passes_at_base_too_is_reported(repo: ScratchRepo) -> None:
+    start(repo, {"shop/price.py": PRICE})
+    changed = PRICE.replace("return total // 20", "return total // 25")
+    repo.commit(
+        machine("Lower the discount of non-members"), {"shop/price.py": changed, "tests/test_new.py": NEW_UNITTEST}
+    )
+    report = report_of(run_check(repo, "HEAD"))
+    at_base = {entry["test"]: entry["status"] for entry in report["tests_at_base"]}
+    assert at_base == {
+        "tests/test_new.py::DiscountCheck::test_members_still_get_ten_percent": "survived",
+        "tests/test_new.py::DiscountCheck::test_others_get_four_percent": "killed",
+    }

@@ -21,7 +21,7 @@ import os
 import shutil
 import tempfile
 import time
-from collections.abc import Callable, Iterable, Iterator, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -210,8 +210,12 @@ def plan_reverts(
 def _changed_test_functions(
     provenance: Provenance, is_test_code: Callable[[str], bool], sources: Mapping[str, str]
 ) -> set[str]:
-    """Node ids (without parameters) of test functions with a machine-written line, in test files."""
+    """Node ids (without parameters) of test functions with a machine-written line, in test files (the
+    functions pytest collects, as :func:`verifier.rules.weakened.read_module` reads them: unittest cases
+    of any class name included)."""
     import ast
+
+    from verifier.rules.weakened import read_module
 
     found: set[str] = set()
     for path, lines in provenance.machine_lines.items():
@@ -222,20 +226,12 @@ def _changed_test_functions(
         except (SyntaxError, ValueError):
             continue
         machine = set(lines)
-        for node, prefix in _test_functions(tree.body, ""):
-            if machine.intersection(range(node.lineno, (node.end_lineno or node.lineno) + 1)):
-                found.add(f"{path}::{prefix}{node.name}")
+        for qualname, function in read_module(tree).functions.items():
+            node = function.node
+            body = range(node.lineno, (node.end_lineno or node.lineno) + 1)
+            if not function.uncollected and machine.intersection(body):
+                found.add(f"{path}::{qualname.replace('.', '::')}")
     return found
-
-
-def _test_functions(body: list, prefix: str) -> Iterator[tuple[Any, str]]:
-    import ast
-
-    for node in body:
-        if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef)) and node.name.startswith("test"):
-            yield node, prefix
-        elif isinstance(node, ast.ClassDef) and node.name.startswith("Test"):
-            yield from _test_functions(node.body, f"{prefix}{node.name}::")
 
 
 # -- the sandboxed run -------------------------------------------------------------------------------------------
